@@ -1,0 +1,218 @@
+"""The wxshock command: serve, demo, ingest, describe, verify, compute, submit, openapi."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from service import __version__
+from service.errors import WxshockError
+
+
+def _var_mapping(pairs: Sequence[str]) -> dict[str, str]:
+    """Parse repeated --var tmax=NAME options into {"tmax": "NAME"}."""
+    mapping: dict[str, str] = {}
+    for pair in pairs:
+        key, sep, value = pair.partition("=")
+        if not sep or key not in ("tmax", "tmin", "prcp") or not value:
+            raise SystemExit(f"wxshock: --var takes tmax=NAME, tmin=NAME or prcp=NAME, got {pair!r}")
+        mapping[key] = value
+    return mapping
+
+
+def _settings(args: argparse.Namespace):  # noqa: ANN202 - Settings, imported lazily to keep start-up quick
+    """Settings from the environment, overridden by the command's own options."""
+    from service.settings import Settings
+
+    overrides = {
+        key: value
+        for key, value in {
+            "data_dir": getattr(args, "data_dir", None),
+            "stores": getattr(args, "store", None) or None,
+            "host": getattr(args, "host", None),
+            "port": getattr(args, "port", None),
+            "scheduler": getattr(args, "scheduler", None),
+        }.items()
+        if value is not None
+    }
+    return Settings(**overrides)
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    """Run the HTTP service with uvicorn."""
+    from service.app import serve
+
+    serve(_settings(args))
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    """Build the invented demo store and its communities.geojson."""
+    from service.demo import build_demo
+
+    build_demo(Path(args.path), size=args.size, progress=not args.quiet)
+    return 0
+
+
+def cmd_ingest(args: argparse.Namespace) -> int:
+    """Ingest CF NetCDF files into a store (new, or appended to)."""
+    from service.ingest import ingest_files
+
+    settings = _settings(args)
+    fingerprint = ingest_files(
+        [Path(f) for f in args.files],
+        args.out,
+        variables=_var_mapping(args.var),
+        storage_options=settings.storage_options() if str(args.out).startswith("s3://") else None,
+        progress=not args.quiet,
+    )
+    print(f"{args.out}: fingerprint {fingerprint}")
+    return 0
+
+
+def cmd_describe(args: argparse.Namespace) -> int:
+    """Print what a store holds."""
+    from service.store import open_store
+
+    settings = _settings(args)
+    store = open_store(args.store, storage_options=settings.storage_options())
+    info = store.describe()
+    if args.json:
+        print(json.dumps(info, indent=2, sort_keys=True, default=str))
+    else:
+        for key, value in info.items():
+            print(f"{key:>14}: {value}")
+    return 0
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    """Recompute a store's fingerprint and compare it with the recorded one."""
+    from service.store import verify_store
+
+    settings = _settings(args)
+    result = verify_store(args.store, storage_options=settings.storage_options())
+    print(f"recorded {result.recorded}\ncomputed {result.computed}")
+    print("ok" if result.ok else "MISMATCH: the store changed since it was written")
+    return 0 if result.ok else 1
+
+
+def cmd_compute(args: argparse.Namespace) -> int:
+    """Run the whole chain locally: weights, aggregation, indicators, encoding."""
+    from service.pipeline import compute_to_file
+
+    compute_to_file(
+        store_location=args.store,
+        request_path=Path(args.request),
+        features_path=Path(args.features) if args.features else None,
+        out_path=Path(args.out),
+        settings=_settings(args),
+        progress=not args.quiet,
+    )
+    return 0
+
+
+def cmd_submit(args: argparse.Namespace) -> int:
+    """Send a batch job to a server, follow it with a progress bar, and save the result."""
+    from service.client import submit_files
+
+    submit_files(
+        server=args.server,
+        request_path=Path(args.request),
+        features_path=Path(args.features) if args.features else None,
+        out_path=Path(args.out),
+        token=args.token,
+        progress=not args.quiet,
+    )
+    return 0
+
+
+def cmd_openapi(args: argparse.Namespace) -> int:
+    """Write the app's OpenAPI document (the committed contract) to a file or stdout."""
+    from service.app import openapi_document
+
+    text = json.dumps(openapi_document(), indent=2, sort_keys=True) + "\n"
+    if args.out == "-":
+        sys.stdout.write(text)
+    else:
+        Path(args.out).write_text(text, encoding="utf-8")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of every subcommand."""
+    parser = argparse.ArgumentParser(prog="wxshock", description=__doc__)
+    parser.add_argument("--version", action="version", version=f"wxshock {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("serve", help="run the HTTP service")
+    p.add_argument("--store", action="append", help="store to serve (repeatable); default: the demo dataset")
+    p.add_argument("--host", help="address to listen on (default 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port (default 8000)")
+    p.add_argument("--data-dir", help="demo store, job database and results")
+    p.add_argument("--scheduler", help="dask.distributed scheduler address, e.g. tcp://host:8786")
+    p.set_defaults(func=cmd_serve)
+
+    p = sub.add_parser("demo", help="build the invented demo store")
+    p.add_argument("path", help="directory of the store to write")
+    p.add_argument("--size", choices=["small", "large"], default="small")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("ingest", help="ingest CF NetCDF files into a store")
+    p.add_argument("files", nargs="+", help="NetCDF files (one per year and variable, or any split)")
+    p.add_argument("--out", required=True, help="store directory or s3:// URL; appended to when it exists")
+    p.add_argument("--var", action="append", default=[], help="explicit variable, e.g. tmax=tasmax (repeatable)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_ingest)
+
+    p = sub.add_parser("describe", help="print what a store holds")
+    p.add_argument("store")
+    p.add_argument("--json", action="store_true", help="as JSON")
+    p.set_defaults(func=cmd_describe)
+
+    p = sub.add_parser("verify", help="recompute a store's fingerprint")
+    p.add_argument("store")
+    p.set_defaults(func=cmd_verify)
+
+    p = sub.add_parser("compute", help="compute indicators locally, without a server")
+    p.add_argument("--store", required=True, help="store directory or s3:// URL")
+    p.add_argument("--request", required=True, help="request JSON (the same body as POST /v1/indicators)")
+    p.add_argument("--features", help="GeoJSON file of communities (replaces the request's features)")
+    p.add_argument("--out", required=True, help="output file: .parquet, .csv or .json")
+    p.add_argument("--scheduler", help="dask.distributed scheduler address")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_compute)
+
+    p = sub.add_parser("submit", help="send a batch job to a wxshock server and save its result")
+    p.add_argument("--server", required=True, help="base URL, e.g. http://127.0.0.1:8000")
+    p.add_argument("--request", required=True, help="request JSON")
+    p.add_argument("--features", help="GeoJSON file of communities (replaces the request's features)")
+    p.add_argument("--out", required=True, help="output file: .parquet, .csv or .json")
+    p.add_argument("--token", help="bearer token (or set WXSHOCK_TOKEN)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_submit)
+
+    p = sub.add_parser("openapi", help="write the OpenAPI document")
+    p.add_argument("--out", default="openapi/openapi.json", help="file, or - for stdout")
+    p.set_defaults(func=cmd_openapi)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the wxshock command; a user's mistake prints its reason and exits 2."""
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args))
+    except WxshockError as exc:
+        print(f"wxshock {args.command}: {exc.detail}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("wxshock: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,304 @@
+"""The request and response models: the single schema that the API, the CLI and the client share."""
+
+from __future__ import annotations
+
+import re
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+_MONTH_DAY = re.compile(r"^(0[1-9]|1[0-2])-(0[1-9]|[12][0-9]|3[01])$")
+_NAME = re.compile(r"^[a-z][a-z0-9_]{0,39}$")
+
+
+class _Model(BaseModel):
+    """Strict about unknown fields, so a misspelt option is an error rather than silently ignored."""
+
+    model_config = ConfigDict(extra="forbid")
+
+
+# --- features ---------------------------------------------------------------------------------------------
+
+
+class GeoJSONFeature(BaseModel):
+    """One RFC 7946 Feature; its geometry is checked in service.geometry, which names the feature on failure."""
+
+    model_config = ConfigDict(extra="allow")
+    type: Literal["Feature"]
+    id: str | int | None = None
+    geometry: dict[str, Any] | None
+    properties: dict[str, Any] | None = None
+
+
+class GeoJSONFeatureCollection(BaseModel):
+    """An RFC 7946 FeatureCollection of communities."""
+
+    model_config = ConfigDict(extra="allow")
+    type: Literal["FeatureCollection"]
+    features: list[GeoJSONFeature] = Field(min_length=1)
+
+
+# --- time ---------------------------------------------------------------------------------------------------
+
+
+class YearSpan(_Model):
+    """Inclusive span of season-years."""
+
+    start: int = Field(ge=1, le=9999)
+    end: int = Field(ge=1, le=9999)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> YearSpan:
+        """start must not come after end."""
+        if self.start > self.end:
+            raise ValueError(f"start ({self.start}) is after end ({self.end}); swap them")
+        return self
+
+
+class MonthsSeason(_Model):
+    """A season of whole months, one contiguous run that may cross the new year ([11, 12, 1, 2])."""
+
+    months: list[int] = Field(min_length=1, max_length=12)
+
+    @field_validator("months")
+    @classmethod
+    def _contiguous(cls, months: list[int]) -> list[int]:
+        """Months are 1..12, unique, and consecutive in the order given (12 may be followed by 1)."""
+        for m in months:
+            if not 1 <= m <= 12:
+                raise ValueError(f"month {m!r} is not in 1..12")
+        if len(set(months)) != len(months):
+            raise ValueError(f"months {months!r} repeat a month")
+        for a, b in zip(months, months[1:], strict=False):
+            if b != a % 12 + 1:
+                raise ValueError(
+                    f"months {months!r} are not one consecutive run in calendar order (after {a} comes "
+                    f"{a % 12 + 1}, not {b}); a season is one run of months, e.g. [11, 12, 1, 2]"
+                )
+        return months
+
+
+class WindowSeason(_Model):
+    """A season from one day of the year to another, both inclusive, 'MM-DD'; it may cross the new year."""
+
+    start: str
+    end: str
+
+    @field_validator("start", "end")
+    @classmethod
+    def _month_day(cls, value: str) -> str:
+        """'MM-DD' with a real month and a day that exists in some year."""
+        if not _MONTH_DAY.match(value):
+            raise ValueError(f"{value!r} is not a month and day written 'MM-DD', e.g. '11-01'")
+        month, day = int(value[:2]), int(value[3:])
+        if day > (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31)[month - 1]:
+            raise ValueError(f"{value!r}: that month has no day {day}")
+        return value
+
+
+class PropertySeason(_Model):
+    """Each feature's own season, read from a feature property that holds a months list or a window."""
+
+    property: str = Field(min_length=1)
+
+
+Season = Literal["year"] | MonthsSeason | WindowSeason | PropertySeason
+
+
+class FixedBaseline(_Model):
+    """The normal is the same span of season-years for every season."""
+
+    start: int = Field(ge=1, le=9999)
+    end: int = Field(ge=1, le=9999)
+
+    @model_validator(mode="after")
+    def _span(self) -> FixedBaseline:
+        """At least three seasons, in order."""
+        if self.start > self.end:
+            raise ValueError(f"baseline start ({self.start}) is after its end ({self.end})")
+        if self.end - self.start + 1 < 3:
+            raise ValueError(f"baseline {self.start}-{self.end} has fewer than 3 seasons; a normal needs at least 3")
+        return self
+
+
+class TrailingBaseline(_Model):
+    """A moving normal: the N season-years before each season-year."""
+
+    trailing: int = Field(ge=3, le=100)
+
+
+# --- what to compute ----------------------------------------------------------------------------------------
+
+
+class IndicatorSpec(BaseModel):
+    """An indicator by name with parameters; parameters are checked against the catalog."""
+
+    model_config = ConfigDict(extra="allow")
+    name: str = Field(min_length=1)
+
+    def params(self) -> dict[str, Any]:
+        """The parameters given beside the name."""
+        return dict(self.model_extra or {})
+
+
+class Classes(_Model):
+    """Class edges in standard-deviation units; n edges make n + 1 classes numbered around 0."""
+
+    edges: list[float] = Field(default_factory=lambda: [-2.0, -1.0, 1.0, 2.0], min_length=1, max_length=12)
+
+    @field_validator("edges")
+    @classmethod
+    def _increasing(cls, edges: list[float]) -> list[float]:
+        """Edges must be finite and strictly increasing."""
+        for e in edges:
+            if e != e or e in (float("inf"), float("-inf")):
+                raise ValueError(f"edge {e!r} is not a finite number")
+        if any(b <= a for a, b in zip(edges, edges[1:], strict=False)):
+            raise ValueError(f"edges {edges!r} are not strictly increasing")
+        return edges
+
+
+class SpellCondition(_Model):
+    """One condition of a spell: bounds on an indicator's class and/or z (all given bounds must hold)."""
+
+    indicator: str
+    class_min: int | None = None
+    class_max: int | None = None
+    z_min: float | None = None
+    z_max: float | None = None
+
+    @model_validator(mode="after")
+    def _some_bound(self) -> SpellCondition:
+        """A condition without a bound would always hold."""
+        if all(v is None for v in (self.class_min, self.class_max, self.z_min, self.z_max)):
+            raise ValueError(f"condition on {self.indicator!r} gives none of class_min, class_max, z_min, z_max")
+        return self
+
+
+class Spell(_Model):
+    """A named condition over seasons; yields <name>_run and <name>_count over the last `window` seasons."""
+
+    name: str
+    window: int = Field(default=5, ge=1, le=100)
+    when: list[SpellCondition] = Field(min_length=1)
+
+    @field_validator("name")
+    @classmethod
+    def _column_name(cls, name: str) -> str:
+        """The name becomes a column prefix: lower-case letters, digits and underscores."""
+        if not _NAME.match(name):
+            raise ValueError(f"spell name {name!r} must be lower-case letters, digits and '_', starting with a letter")
+        return name
+
+
+class LayerWeighting(_Model):
+    """Area weights times a static weight layer of the store (population, cropland, ...)."""
+
+    layer: str = Field(min_length=1)
+
+
+Weighting = Literal["area", "centers"] | LayerWeighting
+
+
+class _FeatureRequest(_Model):
+    """Fields shared by every request that sends communities."""
+
+    dataset: str | None = Field(default=None, description="Dataset name; default: the first served dataset.")
+    features: GeoJSONFeatureCollection | GeoJSONFeature
+    id_property: str | None = Field(
+        default=None, description="Feature property that holds the community id; default: the Feature's own id."
+    )
+    crs: str | None = Field(
+        default=None, description="CRS of the coordinates (any pyproj-readable string); default: WGS84 lon/lat."
+    )
+    weighting: Weighting = "area"
+    repair: bool = Field(default=False, description="Make invalid polygons valid (and report it) instead of failing.")
+
+
+class IndicatorRequest(_FeatureRequest):
+    """A request for season indicators: POST /v1/indicators, POST /v1/jobs, `wxshock compute`."""
+
+    years: YearSpan | None = Field(default=None, description="Default: all years the baseline and lags allow.")
+    season: Season = "year"
+    baseline: FixedBaseline | TrailingBaseline | None = Field(
+        default=None, description="Default: the first ten season-years of data."
+    )
+    indicators: list[str | IndicatorSpec] | None = Field(default=None, description="Default: the default set.")
+    classes: Classes = Field(default_factory=Classes)
+    lags: list[int] = Field(default_factory=lambda: [0], min_length=1, max_length=50)
+    pairs: list[tuple[str, str]] = Field(default_factory=list, max_length=20)
+    sequences: list[tuple[int, int]] = Field(default_factory=list, max_length=20)
+    spells: list[Spell] = Field(default_factory=list, max_length=20)
+    layout: Literal["wide", "long"] = "wide"
+    max_missing_share: float | None = Field(
+        default=None, ge=0.0, le=1.0, description="Share of missing days above which a season is not reported."
+    )
+
+    @field_validator("lags")
+    @classmethod
+    def _lags(cls, lags: list[int]) -> list[int]:
+        """Lags are distinct non-negative whole numbers of seasons."""
+        for k in lags:
+            if k < 0:
+                raise ValueError(f"lag {k!r} is negative; lags count seasons back from the season itself (0)")
+        if len(set(lags)) != len(lags):
+            raise ValueError(f"lags {lags!r} repeat a lag")
+        return sorted(lags)
+
+    @field_validator("sequences")
+    @classmethod
+    def _sequences(cls, sequences: list[tuple[int, int]]) -> list[tuple[int, int]]:
+        """A sequence pairs two different non-negative lags, the more recent first."""
+        for a, b in sequences:
+            if a < 0 or b < 0 or a >= b:
+                raise ValueError(f"sequence {[a, b]!r} must be two lags a < b, both >= 0, e.g. [0, 1]")
+        return sequences
+
+    @model_validator(mode="after")
+    def _spell_names_unique(self) -> IndicatorRequest:
+        """Spell names become column prefixes and must differ."""
+        names = [s.name for s in self.spells]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise ValueError(f"spell names {dupes!r} are used more than once")
+        return self
+
+
+class SeriesRequest(_FeatureRequest):
+    """A request for the daily area-weighted series themselves: POST /v1/series."""
+
+    years: YearSpan | None = Field(default=None, description="Default: all years of the dataset.")
+    variables: list[Literal["tmax", "tmin", "tmean", "prcp"]] = Field(
+        default_factory=lambda: ["tmax", "tmin", "tmean", "prcp"], min_length=1
+    )
+
+
+# --- answers ------------------------------------------------------------------------------------------------
+
+
+class Provenance(BaseModel):
+    """What produced a result: enough to reproduce it byte for byte."""
+
+    dataset: str
+    fingerprint: str
+    software: str
+    request_hash: str
+    request: dict[str, Any]
+
+
+class ResultWarning(BaseModel):
+    """A value left null for a stated reason (baseline without spread, short season, ...)."""
+
+    feature_id: str | None = None
+    indicator: str | None = None
+    year: int | None = None
+    reason: str
+
+
+class IndicatorResult(BaseModel):
+    """The JSON form of an indicator table: rows as records, with provenance and warnings."""
+
+    provenance: Provenance
+    columns: list[str]
+    rows: list[dict[str, Any]]
+    warnings: list[ResultWarning] = Field(default_factory=list)

@@ -1,0 +1,102 @@
+"""The service's one settings object; every field can be set by a WXSHOCK_* environment variable."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+
+from pydantic import Field, SecretStr, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+def _default_data_dir() -> Path:
+    """Where built demo stores, job records and results live unless told otherwise."""
+    return Path.home() / ".local" / "share" / "wxshock"
+
+
+class Settings(BaseSettings):
+    """Validated at start; passed in (create_app(settings), run(..., settings)) rather than read globally."""
+
+    model_config = SettingsConfigDict(env_prefix="WXSHOCK_", extra="ignore")
+
+    # where data lives
+    data_dir: Path = Field(default_factory=_default_data_dir, description="Demo store, job database and results.")
+    stores: list[str] = Field(
+        default_factory=list,
+        description="Store locations (directories or s3:// URLs), each served as a dataset named after its stem. "
+        "Empty: serve the demo dataset, building it in data_dir on first start.",
+    )
+    demo_size: str = Field(default="small", description="Size of the demo store built on first start: small or large.")
+
+    # serving
+    host: str = "127.0.0.1"
+    port: int = Field(default=8000, ge=1, le=65535)
+    cors_origins: list[str] = Field(default_factory=list, description="Allowed CORS origins; empty means CORS off.")
+    tokens: list[SecretStr] = Field(
+        default_factory=list, description="Bearer tokens (plain); when any token is configured every /v1 route needs one."
+    )
+    token_file: Path | None = Field(
+        default=None, description="File of SHA-256 hex digests of bearer tokens, one a line ('#' starts a comment)."
+    )
+
+    # limits
+    max_body_bytes: int = Field(default=50_000_000, ge=1_000)
+    max_features_on_demand: int = Field(default=200, ge=1)
+    max_features_per_job: int = Field(default=100_000, ge=1)
+    max_vertices_per_feature: int = Field(default=100_000, ge=4)
+    max_cells_per_feature: int = Field(default=250_000, ge=1)
+    max_years_per_request: int = Field(default=200, ge=1)
+    max_missing_share: float = Field(
+        default=0.10, ge=0.0, le=1.0, description="Default share of missing days above which a season is not reported."
+    )
+
+    # execution
+    scheduler: str | None = Field(default=None, description="dask.distributed scheduler address; None: local threads.")
+    threads: int | None = Field(default=None, ge=1, description="Local dask threads; None: one per core.")
+    weights_cache_size: int = Field(default=64, ge=0, description="Weight matrices kept in memory, by geometry hash.")
+    job_workers: int = Field(default=1, ge=1, le=16)
+    job_retention_hours: float = Field(default=168.0, gt=0)
+
+    # object storage (s3:// stores)
+    s3_endpoint_url: str | None = None
+    s3_access_key_id: SecretStr | None = None
+    s3_secret_access_key: SecretStr | None = None
+    s3_region: str | None = None
+
+    @field_validator("stores", "cors_origins", mode="before")
+    @classmethod
+    def _split_commas(cls, value: object) -> object:
+        """Accept a comma-separated string from the environment as well as a JSON list."""
+        if isinstance(value, str) and not value.lstrip().startswith("["):
+            return [item.strip() for item in value.split(",") if item.strip()]
+        return value
+
+    @field_validator("demo_size")
+    @classmethod
+    def _check_demo_size(cls, value: str) -> str:
+        """Only the two generator sizes exist."""
+        if value not in ("small", "large"):
+            raise ValueError(f"demo_size must be 'small' or 'large', got {value!r}")
+        return value
+
+    def storage_options(self) -> dict[str, object]:
+        """fsspec options for s3:// stores (endpoint and credentials); empty when none are set."""
+        options: dict[str, object] = {}
+        if self.s3_access_key_id is not None:
+            options["key"] = self.s3_access_key_id.get_secret_value()
+        if self.s3_secret_access_key is not None:
+            options["secret"] = self.s3_secret_access_key.get_secret_value()
+        client_kwargs: dict[str, str] = {}
+        if self.s3_endpoint_url:
+            client_kwargs["endpoint_url"] = self.s3_endpoint_url
+        if self.s3_region:
+            client_kwargs["region_name"] = self.s3_region
+        if client_kwargs:
+            options["client_kwargs"] = client_kwargs
+        return options
+
+
+@lru_cache(maxsize=1)
+def get_settings() -> Settings:
+    """Settings from the environment, read once (the CLI's default; tests build their own Settings)."""
+    return Settings()
