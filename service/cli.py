@@ -157,7 +157,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="build the invented demo store")
     p.add_argument("path", help="directory of the store to write")
-    p.add_argument("--size", choices=["small", "large"], default="small")
+    p.add_argument("--size", choices=["tiny", "small", "large"], default="small")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_demo)
 

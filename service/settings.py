@@ -26,7 +26,7 @@ class Settings(BaseSettings):
         description="Store locations (directories or s3:// URLs), each served as a dataset named after its stem. "
         "Empty: serve the demo dataset, building it in data_dir on first start.",
     )
-    demo_size: str = Field(default="small", description="Size of the demo store built on first start: small or large.")
+    demo_size: str = Field(default="small", description="Size of the demo store built on first start: tiny (tests), small or large.")
 
     # serving
     host: str = "127.0.0.1"
@@ -75,8 +75,8 @@ class Settings(BaseSettings):
     @classmethod
     def _check_demo_size(cls, value: str) -> str:
         """Only the two generator sizes exist."""
-        if value not in ("small", "large"):
-            raise ValueError(f"demo_size must be 'small' or 'large', got {value!r}")
+        if value not in ("tiny", "small", "large"):
+            raise ValueError(f"demo_size must be 'tiny', 'small' or 'large', got {value!r}")
         return value
 
     def storage_options(self) -> dict[str, object]:
