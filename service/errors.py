@@ -185,12 +185,55 @@ class JobStateError(WxshockError, RuntimeError):
     title = "Job not in that state"
 
 
+class RunCancelledError(WxshockError):
+    """A run was cancelled (a job's DELETE) between two feature batches."""
+
+    status = 409
+    slug = "cancelled"
+    title = "Cancelled"
+
+
+def pointer_from_loc(loc: tuple[int | str, ...] | list[int | str]) -> str:
+    """An RFC 6901 JSON pointer from a pydantic error location, e.g. ('features', 0, 'id') -> /features/0/id."""
+    parts = [str(p).replace("~", "~0").replace("/", "~1") for p in loc]
+    return "/" + "/".join(parts) if parts else ""
+
+
+def validation_items(errors: list[dict[str, Any]], drop_prefix: tuple[str, ...] = ()) -> list[dict[str, Any]]:
+    """Pydantic's error list as problem-document items: a pointer, the message and the offending value."""
+    items = []
+    for error in errors:
+        loc = list(error.get("loc", ()))
+        # pydantic adds the chosen union member's tag ('MonthsSeason', 'function-after[...]') to the
+        # location; a user cannot act on those, so keep only the field names and list positions.
+        loc = [p for p in loc if isinstance(p, int) or not (str(p)[:1].isupper() or "[" in str(p))]
+        if drop_prefix and tuple(loc[: len(drop_prefix)]) == drop_prefix:
+            loc = loc[len(drop_prefix) :]
+        message = str(error.get("msg", "")).removeprefix("Value error, ")
+        item: dict[str, Any] = {"pointer": pointer_from_loc(loc), "message": message}
+        if "input" in error and isinstance(error["input"], str | int | float | bool | type(None)):
+            item["value"] = error["input"]
+        items.append(item)
+    return items
+
+
 class AuthError(WxshockError, PermissionError):
     """Missing or wrong bearer token."""
 
     status = 401
     slug = "unauthorized"
     title = "Unauthorized"
+
+
+# --- execution ------------------------------------------------------------------------------------------------
+
+
+class ClusterUnavailableError(WxshockError, ConnectionError):
+    """The configured dask scheduler cannot be reached, has no workers, or kept losing the workers of a task."""
+
+    status = 503
+    slug = "cluster-unavailable"
+    title = "Compute cluster unavailable"
 
 
 def problem_for(exc: BaseException, instance: str | None = None) -> tuple[int, dict[str, Any]]:

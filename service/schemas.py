@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import re
-from typing import Any, Literal
+from typing import Annotated, Any, Literal, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
 
 _MONTH_DAY = re.compile(r"^(0[1-9]|1[0-2])-(0[1-9]|[12][0-9]|3[01])$")
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,39}$")
+_M = TypeVar("_M", bound=BaseModel)
 
 
 class _Model(BaseModel):
@@ -102,7 +103,34 @@ class PropertySeason(_Model):
     property: str = Field(min_length=1)
 
 
-Season = Literal["year"] | MonthsSeason | WindowSeason | PropertySeason
+def _by_keys(**tags: str):  # noqa: ANN202 - a pydantic discriminator callable
+    """A discriminator choosing a union member by which key a dict carries (strings are tagged 'name')."""
+
+    def choose(value: object) -> str | None:
+        if isinstance(value, str):
+            return "Name"
+        keys = value.keys() if isinstance(value, dict) else vars(value).keys() if hasattr(value, "__dict__") else ()
+        for key, tag in tags.items():
+            if key in keys:
+                return tag
+        return None
+
+    return choose
+
+
+# Discriminated unions, so that a mistake in one form is reported for that form only.
+Season = Annotated[
+    Annotated[Literal["year"], Tag("Name")]
+    | Annotated[MonthsSeason, Tag("Months")]
+    | Annotated[WindowSeason, Tag("Window")]
+    | Annotated[PropertySeason, Tag("Property")],
+    Discriminator(
+        _by_keys(months="Months", start="Window", end="Window", property="Property"),
+        custom_error_type="season",
+        custom_error_message="season must be \"year\", {\"months\": [...]}, {\"start\": \"MM-DD\", "
+        "\"end\": \"MM-DD\"} or {\"property\": NAME}",
+    ),
+]
 
 
 class FixedBaseline(_Model):
@@ -197,14 +225,30 @@ class LayerWeighting(_Model):
     layer: str = Field(min_length=1)
 
 
-Weighting = Literal["area", "centers"] | LayerWeighting
+Weighting = Annotated[
+    Annotated[Literal["area", "centers"], Tag("Name")] | Annotated[LayerWeighting, Tag("Layer")],
+    Discriminator(
+        _by_keys(layer="Layer"),
+        custom_error_type="weighting",
+        custom_error_message='weighting must be "area", "centers" or {"layer": NAME}',
+    ),
+]
 
 
 class _FeatureRequest(_Model):
     """Fields shared by every request that sends communities."""
 
     dataset: str | None = Field(default=None, description="Dataset name; default: the first served dataset.")
-    features: GeoJSONFeatureCollection | GeoJSONFeature
+    features: Annotated[
+        Annotated[GeoJSONFeatureCollection, Tag("FeatureCollection")] | Annotated[GeoJSONFeature, Tag("Feature")],
+        Discriminator(
+            lambda v: (v.get("type") if isinstance(v, dict) else getattr(v, "type", None))
+            if (v.get("type") if isinstance(v, dict) else getattr(v, "type", None)) in ("Feature", "FeatureCollection")
+            else None,
+            custom_error_type="features",
+            custom_error_message="features must be a GeoJSON FeatureCollection or Feature (RFC 7946)",
+        ),
+    ]
     id_property: str | None = Field(
         default=None, description="Feature property that holds the community id; default: the Feature's own id."
     )
@@ -220,10 +264,26 @@ class IndicatorRequest(_FeatureRequest):
 
     years: YearSpan | None = Field(default=None, description="Default: all years the baseline and lags allow.")
     season: Season = "year"
-    baseline: FixedBaseline | TrailingBaseline | None = Field(
+    baseline: Annotated[
+        Annotated[FixedBaseline, Tag("Fixed")] | Annotated[TrailingBaseline, Tag("Trailing")],
+        Discriminator(
+            _by_keys(trailing="Trailing", start="Fixed", end="Fixed"),
+            custom_error_type="baseline",
+            custom_error_message='baseline must be {"start": YEAR, "end": YEAR} or {"trailing": N}',
+        ),
+    ] | None = Field(
         default=None, description="Default: the first ten season-years of data."
     )
-    indicators: list[str | IndicatorSpec] | None = Field(default=None, description="Default: the default set.")
+    indicators: list[
+        Annotated[
+            Annotated[str, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
+            Discriminator(
+                _by_keys(name="Spec"),
+                custom_error_type="indicator",
+                custom_error_message='an indicator is a name or {"name": NAME, PARAMETER: VALUE, ...}',
+            ),
+        ]
+    ] | None = Field(default=None, description="Default: the default set.")
     classes: Classes = Field(default_factory=Classes)
     lags: list[int] = Field(default_factory=lambda: [0], min_length=1, max_length=50)
     pairs: list[tuple[str, str]] = Field(default_factory=list, max_length=20)
@@ -302,3 +362,22 @@ class IndicatorResult(BaseModel):
     columns: list[str]
     rows: list[dict[str, Any]]
     warnings: list[ResultWarning] = Field(default_factory=list)
+
+
+def validate_request(model: type[_M], data: object) -> _M:
+    """``data`` as a ``model`` instance, or RequestValidationFailed listing every failing field by pointer."""
+    from pydantic import ValidationError
+
+    from service.errors import RequestValidationFailed, validation_items
+
+    try:
+        return model.model_validate(data)
+    except ValidationError as exc:
+        items = validation_items(exc.errors(include_url=False))
+        first = items[0]
+        where = first["pointer"] or "the request"
+        raise RequestValidationFailed(
+            f"{len(items)} field(s) failed validation; first: {where}: {first['message']}",
+            errors=items,
+            pointer=first["pointer"] or None,
+        ) from None
