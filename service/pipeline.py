@@ -1,0 +1,426 @@
+"""The one place where a request's work is scheduled and computed.
+
+request -> features -> weights -> chunked aggregation (dask, computed once per feature batch)
+-> daily series -> indicator table -> provenance. Routes, the CLI and the job worker all call ``run``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from service import __version__, cluster
+from service.aggregate import aggregate
+from service.errors import LimitExceededError, OutOfRangeError, RunCancelledError, UnknownDatasetError
+from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
+from service.indicators.base import DailySeries
+from service.indicators.table import compute_table, resolve_request
+from service.schemas import IndicatorRequest, SeriesRequest, validate_request
+from service.settings import Settings
+from service.store import Store, open_store
+
+Progress = Callable[[int, int], None]
+Cancelled = Callable[[], bool]
+
+# Features per aggregation batch: bounds memory (batch x days x 4 variables x 8 bytes; 1,000 features
+# over 48 years is about 0.6 GB) while keeping one dask computation large enough to use every core.
+DEFAULT_BATCH_FEATURES = 1000
+
+
+@dataclass
+class RunResult:
+    """A computed table with what produced it and the values it left null, and why."""
+
+    frame: pd.DataFrame
+    provenance: dict[str, Any]
+    warnings: list[dict[str, Any]] = field(default_factory=list)
+
+
+# --- requests, datasets ---------------------------------------------------------------------------------------
+
+
+def pick_store(stores: Mapping[str, Store], name: str | None) -> Store:
+    """The store serving dataset ``name`` (the first one when None), or UnknownDatasetError."""
+    if not stores:
+        raise UnknownDatasetError("no dataset is served", field="dataset")
+    if name is None:
+        return next(iter(stores.values()))
+    try:
+        return stores[name]
+    except KeyError:
+        raise UnknownDatasetError(
+            f"unknown dataset {name!r}; served datasets: {', '.join(sorted(stores))}",
+            field="dataset",
+            pointer="/dataset",
+        ) from None
+
+
+def request_hash(resolved: IndicatorRequest | SeriesRequest, fingerprint: str) -> str:
+    """SHA-256 over the resolved request, the dataset fingerprint and the software version."""
+    payload = {
+        "request": resolved.model_dump(mode="json"),
+        "fingerprint": fingerprint,
+        "software": __version__,
+    }
+    canonical = json.dumps(payload, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+    return "sha256:" + hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
+def provenance(
+    resolved: IndicatorRequest | SeriesRequest, store: Store, parsed: ParsedFeatures
+) -> dict[str, Any]:
+    """Dataset, fingerprint, software, request hash and the resolved request (features by count and hash)."""
+    request = resolved.model_dump(mode="json")
+    features_json = json.dumps(
+        request.pop("features"), sort_keys=True, separators=(",", ":"), ensure_ascii=False
+    )
+    request["features"] = {
+        "count": len(parsed.features),
+        "sha256": hashlib.sha256(features_json.encode("utf-8")).hexdigest(),
+        "repaired": list(parsed.repaired),
+    }
+    request["dataset"] = store.name
+    return {
+        "dataset": store.name,
+        "fingerprint": store.fingerprint,
+        "software": f"wxshock {__version__}",
+        "request_hash": request_hash(resolved, store.fingerprint),
+        "request": request,
+    }
+
+
+def _check_years(years: tuple[int, int], settings: Settings) -> None:
+    """Refuse a request spanning more season-years than the configured limit."""
+    count = years[1] - years[0] + 1
+    if count > settings.max_years_per_request:
+        raise LimitExceededError(
+            f"the request spans {count} years ({years[0]}-{years[1]}); at most {settings.max_years_per_request} "
+            "are allowed (setting max_years_per_request); ask for fewer years",
+            limit="max_years_per_request",
+            allowed=settings.max_years_per_request,
+            got=count,
+            pointer="/years",
+        )
+
+
+# --- features and weights ------------------------------------------------------------------------------------
+
+
+def features_and_weights(
+    request: IndicatorRequest | SeriesRequest, store: Store, settings: Settings
+) -> tuple[ParsedFeatures, Weights]:
+    """Parse and check the request's features, then their weights on the store's grid."""
+    parsed = parse_features(
+        request.features.model_dump(mode="json", exclude_none=False),
+        id_property=request.id_property,
+        crs=request.crs,
+        repair=request.repair,
+        max_vertices=settings.max_vertices_per_feature,
+    )
+    weighting = request.weighting
+    layer = None
+    if not isinstance(weighting, str):
+        if weighting.layer not in store.layers:
+            raise UnknownDatasetError(
+                f"dataset {store.name!r} has no weight layer {weighting.layer!r}; its layers: "
+                f"{', '.join(store.layers) or 'none'}",
+                field="weighting.layer",
+                pointer="/weighting/layer",
+            )
+        layer = store.read_layer(weighting.layer)
+        weighting = "area"
+    weights = compute_weights(
+        parsed,
+        store.grid,
+        weighting=weighting,
+        layer=layer,
+        data_mask=store.data_mask(),
+        max_cells=settings.max_cells_per_feature,
+    )
+    return parsed, weights
+
+
+def take_weights(weights: Weights, rows: np.ndarray) -> Weights:
+    """The weights of a subset of features (rows in the given order)."""
+    n = weights.matrix.shape[0]
+    changes: dict[str, Any] = {}
+    for f in fields(weights):
+        value = getattr(weights, f.name)
+        if f.name == "matrix":
+            changes[f.name] = value[rows]
+        elif f.name == "key":
+            changes[f.name] = f"{value}:{hashlib.sha256(np.asarray(rows).tobytes()).hexdigest()[:16]}"
+        elif isinstance(value, np.ndarray) and value.shape[:1] == (n,):
+            changes[f.name] = value[rows]
+        elif isinstance(value, list | tuple) and len(value) == n:
+            changes[f.name] = type(value)(value[i] for i in rows)
+    return replace(weights, **changes)
+
+
+def feature_batches(weights: Weights, batch_size: int) -> list[np.ndarray]:
+    """Feature rows grouped into batches of neighbours, so that a batch touches few chunks."""
+    matrix = weights.matrix.tocsr()
+    n = matrix.shape[0]
+    if n <= batch_size:
+        return [np.arange(n)]
+    # The first cell a feature touches orders features along the grid's rows; neighbours share chunks.
+    starts = matrix.indptr[:-1]
+    first_cell = np.where(np.diff(matrix.indptr) > 0, matrix.indices[np.minimum(starts, matrix.nnz - 1)], 0)
+    order = np.argsort(first_cell, kind="stable")
+    return [order[i : i + batch_size] for i in range(0, n, batch_size)]
+
+
+def time_span(store: Store, last_year: int) -> slice:
+    """Time steps from the first day of data to the last day of calendar year ``last_year``."""
+    years = store.dates.year
+    stop = int(np.searchsorted(years, last_year, side="right"))
+    if stop == 0:
+        raise OutOfRangeError(
+            f"year {last_year} is before the data of dataset {store.name!r} (from {int(years[0])})",
+            pointer="/years",
+        )
+    return slice(0, stop)
+
+
+def _daily_series(ds: Any, store: Store, span: slice, latitude: np.ndarray) -> DailySeries:
+    """The computed aggregation as the indicators' DailySeries."""
+    dates = store.dates
+    return DailySeries(
+        tmax=np.asarray(ds["tmax"].values, dtype=np.float64),
+        tmin=np.asarray(ds["tmin"].values, dtype=np.float64),
+        prcp=np.asarray(ds["prcp"].values, dtype=np.float64),
+        year=np.asarray(dates.year[span]),
+        month=np.asarray(dates.month[span]),
+        day=np.asarray(dates.day[span]),
+        dayofyear=np.asarray(dates.dayofyear[span]),
+        calendar=store.calendar,
+        latitude=np.asarray(latitude, dtype=np.float64),
+    )
+
+
+def _feature_columns(frame: pd.DataFrame, weights: Weights, rows: np.ndarray) -> pd.DataFrame:
+    """Add each feature's coverage, cell count and area to its rows."""
+    by_id = pd.DataFrame(
+        {
+            "feature_id": [weights.feature_ids[i] for i in rows],
+            "coverage": np.asarray(weights.coverage)[rows],
+            "cells": np.asarray(weights.n_cells)[rows].astype("int64"),
+            "area_km2": np.asarray(weights.area_km2)[rows],
+        }
+    )
+    merged = frame.merge(by_id, on="feature_id", how="left", sort=False)
+    return merged
+
+
+# --- the runs -------------------------------------------------------------------------------------------------
+
+
+def run(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    progress: Progress | None = None,
+    cancelled: Cancelled | None = None,
+    batch_size: int = DEFAULT_BATCH_FEATURES,
+) -> RunResult:
+    """Season indicators for every feature of the request, one row per (feature_id, year)."""
+    resolved = resolve_request(request, store.dates)
+    _check_years((resolved.years.start, resolved.years.end), settings)
+    parsed, weights = features_and_weights(resolved, store, settings)
+    span = time_span(store, resolved.years.end)
+    properties = [f.properties for f in parsed.features]
+    total = len(parsed.features)
+    frames: list[pd.DataFrame] = []
+    warnings: list[dict[str, Any]] = []
+    done = 0
+    if progress is not None:
+        progress(0, total)
+    for rows in feature_batches(weights, batch_size):
+        if cancelled is not None and cancelled():
+            raise RunCancelledError(f"cancelled after {done} of {total} features")
+        batch = take_weights(weights, rows)
+        (daily_ds,) = cluster.compute(aggregate(store, batch, time=span), settings=settings)
+        daily = _daily_series(daily_ds, store, span, np.asarray(batch.latitude))
+        table = compute_table(daily, list(batch.feature_ids), [properties[i] for i in rows], resolved)
+        frames.append(_feature_columns(table.frame, weights, rows))
+        warnings.extend(table.warnings)
+        done += len(rows)
+        if progress is not None:
+            progress(done, total)
+    frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
+    warnings = _warnings_in_order(warnings, weights.feature_ids)
+    for feature_id in parsed.repaired:
+        warnings.append({"feature_id": feature_id, "reason": "invalid geometry was repaired (make_valid)"})
+    return RunResult(frame=frame, provenance=provenance(resolved, store, parsed), warnings=warnings)
+
+
+def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFrame:
+    """Rows in request order of features (then as the table gave them), whatever the batching."""
+    position = {fid: i for i, fid in enumerate(feature_ids)}
+    order = frame["feature_id"].map(position).to_numpy()
+    frame = frame.iloc[np.argsort(order, kind="stable")].reset_index(drop=True)
+    return frame
+
+
+def _warnings_in_order(warnings: list[dict[str, Any]], feature_ids: list[str]) -> list[dict[str, Any]]:
+    """Warnings sorted by feature in request order, then year and indicator, for stable bytes."""
+    position = {fid: i for i, fid in enumerate(feature_ids)}
+
+    def key(w: dict[str, Any]) -> tuple[int, int, str, str]:
+        return (
+            position.get(w.get("feature_id"), -1),
+            int(w.get("year") or 0),
+            str(w.get("indicator") or ""),
+            str(w.get("reason") or ""),
+        )
+
+    return sorted(warnings, key=key)
+
+
+def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunResult:
+    """The daily area-weighted series of every feature: one row per (feature_id, date)."""
+    dates = store.dates
+    first, last = int(dates.year[0]), int(dates.year[-1])
+    years = (request.years.start, request.years.end) if request.years else (first, last)
+    if years[0] < first or years[1] > last:
+        raise OutOfRangeError(
+            f"years {years[0]}-{years[1]} fall outside the data of dataset {store.name!r} ({first}-{last})",
+            pointer="/years",
+        )
+    _check_years(years, settings)
+    parsed, weights = features_and_weights(request, store, settings)
+    start = int(np.searchsorted(dates.year, years[0], side="left"))
+    stop = int(np.searchsorted(dates.year, years[1], side="right"))
+    span = slice(start, stop)
+    (daily_ds,) = cluster.compute(aggregate(store, weights, time=span), settings=settings)
+    labels = [
+        f"{y:04d}-{m:02d}-{d:02d}"
+        for y, m, d in zip(dates.year[span], dates.month[span], dates.day[span], strict=True)
+    ]
+    n_feature, n_time = len(weights.feature_ids), len(labels)
+    columns: dict[str, Any] = {
+        "feature_id": np.repeat(np.asarray(weights.feature_ids, dtype=object), n_time),
+        "date": np.tile(np.asarray(labels, dtype=object), n_feature),
+    }
+    for variable in request.variables:
+        values = (
+            (daily_ds["tmax"].values + daily_ds["tmin"].values) / 2
+            if variable == "tmean"
+            else daily_ds[variable].values
+        )
+        columns[variable] = np.asarray(values, dtype=np.float64).reshape(-1)
+    frame = pd.DataFrame(columns)
+    return RunResult(frame=frame, provenance=provenance(request, store, parsed), warnings=[])
+
+
+# --- the CLI's local run --------------------------------------------------------------------------------------
+
+
+def load_request(request_path: Path, features_path: Path | None) -> IndicatorRequest:
+    """The request of a JSON file, with its features replaced by a GeoJSON file's when one is given."""
+    from service.errors import RequestError
+
+    try:
+        data = json.loads(request_path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError) as exc:
+        raise RequestError(f"cannot read the request {str(request_path)!r}: {exc}", field="request") from None
+    if not isinstance(data, dict):
+        raise RequestError(f"the request {str(request_path)!r} is not a JSON object", field="request")
+    if features_path is not None:
+        try:
+            data["features"] = json.loads(features_path.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError) as exc:
+            raise RequestError(
+                f"cannot read the features {str(features_path)!r}: {exc}", field="features"
+            ) from None
+    return validate_request(IndicatorRequest, data)
+
+
+def write_atomically(path: Path, data: bytes) -> None:
+    """Write ``data`` to a temporary file beside ``path`` and rename it, so no partial file is ever seen."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def compute_to_file(
+    *,
+    store_location: str,
+    request_path: Path,
+    features_path: Path | None,
+    out_path: Path,
+    settings: Settings,
+    progress: bool = True,
+) -> RunResult:
+    """`wxshock compute`: the whole chain locally, written to a .parquet, .csv or .json file."""
+    from service.encode import encode, format_from_suffix
+
+    fmt = format_from_suffix(out_path.suffix)
+    request = load_request(request_path, features_path)
+    store = open_store(store_location, storage_options=settings.storage_options())
+    if request.dataset is not None and request.dataset != store.name:
+        raise UnknownDatasetError(
+            f"the request names dataset {request.dataset!r} but the store {store_location!r} is dataset "
+            f"{store.name!r}; drop 'dataset' or name the right store",
+            field="dataset",
+        )
+    bar = _progress_bar(progress)
+    try:
+        result = run(request, store, settings, progress=bar.update if bar else None)
+    finally:
+        if bar:
+            bar.close()
+    body, _, _ = encode(result, fmt)
+    write_atomically(out_path, body)
+    if fmt == "csv":
+        # CSV has no metadata; keep the provenance beside it.
+        sidecar = out_path.with_name(out_path.name + ".provenance.json")
+        write_atomically(
+            sidecar,
+            json.dumps({"provenance": result.provenance, "warnings": result.warnings}, indent=2).encode(
+                "utf-8"
+            ),
+        )
+    return result
+
+
+class _Bar:
+    """A tqdm bar fed with (done, total) feature counts."""
+
+    def __init__(self) -> None:
+        from tqdm import tqdm
+
+        self._bar = tqdm(total=0, unit="feature", desc="wxshock", leave=True)
+
+    def update(self, done: int, total: int) -> None:
+        """Move the bar to ``done`` of ``total`` features."""
+        self._bar.total = total
+        self._bar.n = done
+        self._bar.refresh()
+
+    def close(self) -> None:
+        """Finish the bar."""
+        self._bar.close()
+
+
+def _progress_bar(enabled: bool) -> _Bar | None:
+    """A progress bar when asked for and the output is a terminal-like stream."""
+    return _Bar() if enabled else None
