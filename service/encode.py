@@ -10,6 +10,7 @@ from __future__ import annotations
 import io
 import json
 import math
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -27,6 +28,15 @@ FORMATS: dict[str, str] = {
 _MEDIA_TO_FORMAT = {media: fmt for fmt, media in FORMATS.items()} | {"application/x-parquet": "parquet"}
 PARQUET_METADATA_KEY = b"wxshock.provenance"
 FLOAT_DECIMALS = 6
+
+
+@dataclass
+class RunResult:
+    """A computed table with what produced it and the values it left null, and why."""
+
+    frame: pd.DataFrame
+    provenance: dict[str, Any]
+    warnings: list[dict[str, Any]] = field(default_factory=list)
 
 
 def format_from(accept: str | None, format_param: str | None, default: str = "json") -> str:
@@ -135,10 +145,12 @@ def to_parquet(frame: pd.DataFrame, provenance: dict[str, Any], warnings: list[d
     return sink.getvalue()
 
 
-def encode(result: Any, fmt: str) -> tuple[bytes, str, dict[str, str]]:
+def encode(result: RunResult, fmt: str) -> tuple[bytes, str, dict[str, str]]:
     """Bytes, media type and headers of a RunResult in the format ``fmt`` (json, csv or parquet)."""
     if fmt not in FORMATS:
-        raise NotAcceptableError(f"format {fmt!r} is not offered; choose one of {', '.join(FORMATS)}", field="format")
+        raise NotAcceptableError(
+            f"format {fmt!r} is not offered; choose one of {', '.join(FORMATS)}", field="format"
+        )
     frame = stable_frame(result.frame)
     headers = provenance_headers(result.provenance)
     if fmt == "json":

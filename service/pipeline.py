@@ -11,7 +11,7 @@ import json
 import os
 import tempfile
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import fields, replace
 from pathlib import Path
 from typing import Any
 
@@ -20,6 +20,7 @@ import pandas as pd
 
 from service import __version__, cluster
 from service.aggregate import aggregate
+from service.encode import RunResult
 from service.errors import LimitExceededError, OutOfRangeError, RunCancelledError, UnknownDatasetError
 from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
 from service.indicators.base import DailySeries
@@ -34,15 +35,6 @@ Cancelled = Callable[[], bool]
 # Features per aggregation batch: bounds memory (batch x days x 4 variables x 8 bytes; 1,000 features
 # over 48 years is about 0.6 GB) while keeping one dask computation large enough to use every core.
 DEFAULT_BATCH_FEATURES = 1000
-
-
-@dataclass
-class RunResult:
-    """A computed table with what produced it and the values it left null, and why."""
-
-    frame: pd.DataFrame
-    provenance: dict[str, Any]
-    warnings: list[dict[str, Any]] = field(default_factory=list)
 
 
 # --- requests, datasets ---------------------------------------------------------------------------------------
