@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import json
 from functools import lru_cache
 from pathlib import Path
+from typing import Annotated
 
 from pydantic import Field, SecretStr, field_validator
-from pydantic_settings import BaseSettings, SettingsConfigDict
+from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 
 def _default_data_dir() -> Path:
@@ -20,23 +22,32 @@ class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix="WXSHOCK_", extra="ignore")
 
     # where data lives
-    data_dir: Path = Field(default_factory=_default_data_dir, description="Demo store, job database and results.")
-    stores: list[str] = Field(
+    data_dir: Path = Field(
+        default_factory=_default_data_dir, description="Demo store, job database and results."
+    )
+    stores: Annotated[list[str], NoDecode] = Field(
         default_factory=list,
         description="Store locations (directories or s3:// URLs), each served as a dataset named after its stem. "
         "Empty: serve the demo dataset, building it in data_dir on first start.",
     )
-    demo_size: str = Field(default="small", description="Size of the demo store built on first start: tiny (tests), small or large.")
+    demo_size: str = Field(
+        default="small",
+        description="Size of the demo store built on first start: tiny (tests), small or large.",
+    )
 
     # serving
     host: str = "127.0.0.1"
     port: int = Field(default=8000, ge=1, le=65535)
-    cors_origins: list[str] = Field(default_factory=list, description="Allowed CORS origins; empty means CORS off.")
-    tokens: list[SecretStr] = Field(
-        default_factory=list, description="Bearer tokens (plain); when any token is configured every /v1 route needs one."
+    cors_origins: Annotated[list[str], NoDecode] = Field(
+        default_factory=list, description="Allowed CORS origins; empty means CORS off."
+    )
+    tokens: Annotated[list[SecretStr], NoDecode] = Field(
+        default_factory=list,
+        description="Bearer tokens (plain); when any token is configured every /v1 route needs one.",
     )
     token_file: Path | None = Field(
-        default=None, description="File of SHA-256 hex digests of bearer tokens, one a line ('#' starts a comment)."
+        default=None,
+        description="File of SHA-256 hex digests of bearer tokens, one a line ('#' starts a comment).",
     )
 
     # limits
@@ -47,13 +58,20 @@ class Settings(BaseSettings):
     max_cells_per_feature: int = Field(default=250_000, ge=1)
     max_years_per_request: int = Field(default=200, ge=1)
     max_missing_share: float = Field(
-        default=0.10, ge=0.0, le=1.0, description="Default share of missing days above which a season is not reported."
+        default=0.10,
+        ge=0.0,
+        le=1.0,
+        description="Default share of missing days above which a season is not reported.",
     )
 
     # execution
-    scheduler: str | None = Field(default=None, description="dask.distributed scheduler address; None: local threads.")
+    scheduler: str | None = Field(
+        default=None, description="dask.distributed scheduler address; None: local threads."
+    )
     threads: int | None = Field(default=None, ge=1, description="Local dask threads; None: one per core.")
-    weights_cache_size: int = Field(default=64, ge=0, description="Weight matrices kept in memory, by geometry hash.")
+    weights_cache_size: int = Field(
+        default=64, ge=0, description="Weight matrices kept in memory, by geometry hash."
+    )
     job_workers: int = Field(default=1, ge=1, le=16)
     job_retention_hours: float = Field(default=168.0, gt=0)
 
@@ -63,11 +81,13 @@ class Settings(BaseSettings):
     s3_secret_access_key: SecretStr | None = None
     s3_region: str | None = None
 
-    @field_validator("stores", "cors_origins", mode="before")
+    @field_validator("stores", "cors_origins", "tokens", mode="before")
     @classmethod
     def _split_commas(cls, value: object) -> object:
         """Accept a comma-separated string from the environment as well as a JSON list."""
-        if isinstance(value, str) and not value.lstrip().startswith("["):
+        if isinstance(value, str):
+            if value.lstrip().startswith("["):
+                return json.loads(value)
             return [item.strip() for item in value.split(",") if item.strip()]
         return value
 
