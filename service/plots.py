@@ -1,0 +1,364 @@
+"""Pictures of shocks: a community's seasonal z-scores over the years, and one season-year's anomaly map.
+
+Pure matplotlib on the Agg canvas (no pyplot, so it is safe in a threaded server), arrays and frames in,
+PNG bytes out; nothing here knows about HTTP or stores. Colours and class words are wxshock's own.
+"""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from matplotlib.colors import LinearSegmentedColormap, Normalize
+from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
+
+from service.errors import RequestError
+
+DEFAULT_EDGES: tuple[float, ...] = (-2.0, -1.0, 1.0, 2.0)
+
+# wxshock's own palette: sand and umber for the dry side, sea-green and deep teal for the wet side;
+# slate for the cool side, clay and brick for the warm side. Index 0 is the mildest shade.
+DRY = ("#d2ad73", "#9a6a2f", "#5e3b12")
+WET = ("#86c2b1", "#2f7f73", "#154a44")
+COOL = ("#a3b8d9", "#4a6fa5", "#22385e")
+WARM = ("#eba98b", "#b5492f", "#6e2114")
+NEUTRAL = "#b9b4aa"
+MISSING = "#d9d9d9"
+OUTLINE = "#141414"
+SPELL = "#6a3d8f"
+
+_FAMILIES: dict[str, dict[str, Any]] = {
+    "precipitation": {"low": DRY, "high": WET, "low_word": "drier", "high_word": "wetter"},
+    "temperature": {"low": COOL, "high": WARM, "low_word": "cooler", "high_word": "warmer"},
+}
+_INTENSITY = ("", "much ", "far ")
+
+
+def class_word(family: str, class_number: int) -> str:
+    """Our plain word for a class centred on 0: 'near normal', 'drier', 'much warmer', ..."""
+    if class_number == 0:
+        return "near normal"
+    side = _FAMILIES[family]["high_word" if class_number > 0 else "low_word"]
+    depth = abs(class_number) - 1
+    prefix = _INTENSITY[depth] if depth < len(_INTENSITY) else f"{depth + 1}x "
+    return f"{prefix}{side}"
+
+
+def class_numbers(edges: Sequence[float]) -> list[int]:
+    """Class numbers for n edges: n + 1 classes numbered so that the class holding z = 0 is 0."""
+    edges = list(edges)
+    zero = int(np.searchsorted(np.asarray(edges), 0.0, side="right"))
+    return [i - zero for i in range(len(edges) + 1)]
+
+
+def class_colour(family: str, class_number: int) -> str:
+    """The fill colour of a class: neutral at 0, deeper shades further from normal."""
+    if class_number == 0:
+        return NEUTRAL
+    shades = _FAMILIES[family]["high" if class_number > 0 else "low"]
+    return shades[min(abs(class_number), len(shades)) - 1]
+
+
+def _check_edges(edges: Sequence[float]) -> list[float]:
+    """Edges as floats, finite and strictly increasing."""
+    values = [float(e) for e in edges]
+    if (
+        not values
+        or any(not np.isfinite(e) for e in values)
+        or any(b <= a for a, b in zip(values, values[1:], strict=False))
+    ):
+        raise RequestError(
+            f"class edges {list(edges)!r} must be finite and strictly increasing, e.g. [-2, -1, 1, 2]",
+            field="classes.edges",
+        )
+    return values
+
+
+def _z_column(frame: pd.DataFrame, indicator: str) -> str | None:
+    """The column holding an indicator's z-score: '<name>_z', or the value itself for SPI/SPEI-like ones."""
+    if f"{indicator}_z" in frame.columns:
+        return f"{indicator}_z"
+    if indicator in ("spi", "spei") and indicator in frame.columns:
+        return indicator
+    return None
+
+
+def _png(fig: Figure) -> bytes:
+    """Render a figure to PNG bytes at its own size (no tight crop, so the size is what was asked)."""
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", metadata={"Software": "wxshock"})
+    return buffer.getvalue()
+
+
+def _figure(size_px: tuple[int, int], dpi: int) -> Figure:
+    """A white figure of exactly size_px pixels."""
+    width, height = size_px
+    if width < 200 or height < 150 or width > 4000 or height > 4000:
+        raise RequestError(f"plot size {size_px!r} pixels is outside 200x150 .. 4000x4000", field="size")
+    return Figure(figsize=(width / dpi, height / dpi), dpi=dpi, facecolor="white")
+
+
+def _z_panel(ax: Any, years: np.ndarray, z: np.ndarray, edges: list[float], family: str, name: str) -> None:
+    """One panel: class bands shaded behind bars of z, each bar coloured by its class."""
+    finite = z[np.isfinite(z)]
+    reach = max(
+        3.0,
+        float(np.max(np.abs(finite))) + 0.5 if finite.size else 3.0,
+        abs(edges[0]) + 0.5,
+        abs(edges[-1]) + 0.5,
+    )
+    bounds = [-reach, *edges, reach]
+    numbers = class_numbers(edges)
+    for low, high, number in zip(bounds[:-1], bounds[1:], numbers, strict=False):
+        if number != 0:
+            ax.axhspan(low, high, color=class_colour(family, number), alpha=0.16, linewidth=0, zorder=0)
+        ax.text(
+            1.005,
+            (max(low, -reach) + min(high, reach)) / 2,
+            class_word(family, number),
+            transform=ax.get_yaxis_transform(),
+            fontsize=7.5,
+            va="center",
+            ha="left",
+            color="#444444",
+        )
+    classes = np.searchsorted(np.asarray(edges), np.where(np.isfinite(z), z, 0.0), side="right")
+    zero = numbers.index(0)
+    colours = [class_colour(family, int(c) - zero) for c in classes]
+    ok = np.isfinite(z)
+    ax.bar(
+        years[ok],
+        z[ok],
+        width=0.72,
+        color=[c for c, good in zip(colours, ok, strict=False) if good],
+        edgecolor="#333333",
+        linewidth=0.4,
+        zorder=3,
+    )
+    if (~ok).any():
+        ax.scatter(
+            years[~ok], np.zeros((~ok).sum()), marker="x", color="#777777", s=18, zorder=4, label="no value"
+        )
+        ax.legend(loc="upper left", fontsize=7, frameon=False)
+    ax.axhline(0.0, color="#333333", linewidth=0.8, zorder=2)
+    ax.set_ylim(-reach, reach)
+    ax.set_ylabel(f"{name}\nz (SD from normal)", fontsize=8.5)
+    ax.tick_params(labelsize=8)
+    ax.grid(axis="x", color="#e4e4e4", linewidth=0.5, zorder=1)
+
+
+def series_plot(
+    frame: pd.DataFrame,
+    feature_id: str,
+    *,
+    precipitation: str = "prcp_total",
+    temperature: str = "tmean",
+    edges: Sequence[float] = DEFAULT_EDGES,
+    spells: Sequence[str] | None = None,
+    title: str | None = None,
+    size_px: tuple[int, int] = (1000, 640),
+    dpi: int = 100,
+) -> bytes:
+    """PNG of one community's seasonal z-scores (precipitation above, temperature below) over the years.
+
+    ``frame`` is a wide indicator table (one row per feature_id and year, columns ``<indicator>_z``);
+    class bands between ``edges`` (SD units) are shaded; a strip at the foot marks the seasons where each
+    spell (columns ``<name>_run``; all of them when ``spells`` is None) is running, with its run length.
+    Years without a value are marked with a grey cross at 0, never drawn as 0.
+    """
+    edges = _check_edges(edges)
+    if "feature_id" not in frame.columns or "year" not in frame.columns:
+        raise RequestError(
+            "the table has no 'feature_id' and 'year' columns; ask for the wide layout", field="layout"
+        )
+    rows = frame[frame["feature_id"].astype(str) == str(feature_id)].sort_values("year")
+    if rows.empty:
+        known = sorted(frame["feature_id"].astype(str).unique())[:10]
+        raise RequestError(
+            f"feature {feature_id!r} is not in the table; it holds {known!r}",
+            feature_id=str(feature_id),
+            field="feature_id",
+        )
+    panels = [(precipitation, "precipitation"), (temperature, "temperature")]
+    panels = [(name, family, _z_column(rows, name)) for name, family in panels]
+    panels = [(name, family, column) for name, family, column in panels if column is not None]
+    if not panels:
+        raise RequestError(
+            f"the series plot needs the z-scores of {precipitation!r} or {temperature!r}; add them to "
+            f"'indicators'",
+            field="indicators",
+        )
+    if spells is None:
+        spells = [c[: -len("_run")] for c in rows.columns if c.endswith("_run")]
+    missing = [s for s in spells if f"{s}_run" not in rows.columns]
+    if missing:
+        raise RequestError(
+            f"spell {missing[0]!r} has no '{missing[0]}_run' column; name a spell of the request",
+            field="spells",
+        )
+    years = rows["year"].to_numpy(dtype=int)
+
+    fig = _figure(size_px, dpi)
+    heights = [3.0] * len(panels) + ([0.45 * len(spells) + 0.35] if spells else [])
+    grid = fig.add_gridspec(
+        len(heights), 1, height_ratios=heights, left=0.09, right=0.86, top=0.91, bottom=0.09, hspace=0.12
+    )
+    axes = [fig.add_subplot(grid[i, 0]) for i in range(len(heights))]
+    for ax in axes[1:]:
+        ax.sharex(axes[0])
+    for ax, (name, family, column) in zip(axes, panels, strict=False):
+        z = pd.to_numeric(rows[column], errors="coerce").to_numpy(dtype=float)
+        _z_panel(ax, years, z, edges, family, name)
+    if spells:
+        _spell_strip(axes[-1], rows, years, list(spells))
+    for ax in axes[:-1]:
+        ax.tick_params(labelbottom=False)
+    axes[-1].set_xlabel("season-year", fontsize=9)
+    axes[-1].xaxis.set_major_locator(MaxNLocator(integer=True))
+    axes[0].set_xlim(years.min() - 0.6, years.max() + 0.6)
+    fig.suptitle(title or f"community {feature_id}: seasonal anomalies", fontsize=11, x=0.09, ha="left")
+    return _png(fig)
+
+
+def _spell_strip(ax: Any, rows: pd.DataFrame, years: np.ndarray, spells: list[str]) -> None:
+    """A row per spell: a mark on each season where the spell runs, labelled with the run length."""
+    for i, name in enumerate(spells):
+        run = pd.to_numeric(rows[f"{name}_run"], errors="coerce").to_numpy(dtype=float)
+        on = np.isfinite(run) & (run >= 1)
+        ax.scatter(years[on], np.full(on.sum(), i), marker="s", s=70, color=SPELL, zorder=3)
+        for year, length in zip(years[on], run[on], strict=False):
+            ax.text(year, i, f"{int(length)}", color="white", fontsize=6, ha="center", va="center", zorder=4)
+    ax.set_yticks(range(len(spells)), spells, fontsize=8)
+    ax.set_ylim(-0.6, len(spells) - 0.4)
+    ax.tick_params(labelsize=8)
+    ax.text(
+        1.005,
+        0.5,
+        "spell running\n(run length)",
+        transform=ax.transAxes,
+        fontsize=7.5,
+        va="center",
+        color="#444444",
+    )
+    ax.grid(axis="x", color="#e4e4e4", linewidth=0.5, zorder=1)
+
+
+def anomaly_colours(family: str) -> LinearSegmentedColormap:
+    """Our diverging scale for a family: deep low shade -> pale neutral -> deep high shade; grey for no data."""
+    if family not in _FAMILIES:
+        raise RequestError(f"family {family!r} has no map colours; use 'precipitation' or 'temperature'")
+    low, high = _FAMILIES[family]["low"], _FAMILIES[family]["high"]
+    stops = [low[2], low[1], low[0], "#f5f2ec", high[0], high[1], high[2]]
+    return LinearSegmentedColormap.from_list(f"wxshock_{family}", stops, N=256).with_extremes(bad=MISSING)
+
+
+def _rings(geometry: Any) -> list[np.ndarray]:
+    """Coordinate arrays of every ring or line of a shapely geometry (points give none)."""
+    kind = geometry.geom_type
+    if kind == "Polygon":
+        return [np.asarray(geometry.exterior.coords)] + [np.asarray(r.coords) for r in geometry.interiors]
+    if kind == "LineString" or kind == "LinearRing":
+        return [np.asarray(geometry.coords)]
+    if kind.startswith("Multi") or kind == "GeometryCollection":
+        return [ring for part in geometry.geoms for ring in _rings(part)]
+    return []
+
+
+def _points(geometry: Any) -> list[tuple[float, float]]:
+    """Point positions of a shapely geometry (polygons and lines give none)."""
+    if geometry.geom_type == "Point":
+        return [(geometry.x, geometry.y)]
+    if geometry.geom_type in ("MultiPoint", "GeometryCollection"):
+        return [p for part in geometry.geoms for p in _points(part)]
+    return []
+
+
+def map_plot(
+    field: np.ndarray,
+    x_edges: np.ndarray,
+    y_edges: np.ndarray,
+    outlines: Sequence[Any],
+    *,
+    labels: Sequence[str] | None = None,
+    family: str = "precipitation",
+    limit: float = 3.0,
+    title: str | None = None,
+    colour_label: str = "z (SD from normal)",
+    geographic: bool = True,
+    size_px: tuple[int, int] = (900, 700),
+    dpi: int = 100,
+) -> bytes:
+    """PNG of one season-year's anomaly field over the grid, with the communities outlined.
+
+    ``field`` is (ny, nx) in the units of ``colour_label`` (NaN cells grey), ``x_edges`` (nx + 1,) and
+    ``y_edges`` (ny + 1,) are the cell edges in the grid CRS (either direction), ``outlines`` are shapely
+    geometries in that same CRS, labelled with ``labels`` when given. The colour scale runs from -limit to
+    +limit; values beyond are drawn at the end colours. Geographic grids keep a true aspect at mid-latitude.
+    """
+    field = np.asarray(field, dtype=float)
+    x_edges = np.asarray(x_edges, dtype=float)
+    y_edges = np.asarray(y_edges, dtype=float)
+    if field.ndim != 2 or field.shape != (y_edges.size - 1, x_edges.size - 1):
+        raise RequestError(
+            f"field of shape {field.shape!r} does not match edges of {y_edges.size} y and {x_edges.size} x "
+            f"values (expected ({y_edges.size - 1}, {x_edges.size - 1}))",
+            field="field",
+        )
+    if not np.isfinite(limit) or limit <= 0:
+        raise RequestError(f"colour limit {limit!r} must be a positive number", field="limit")
+    if labels is not None and len(labels) != len(outlines):
+        raise RequestError(
+            f"{len(labels)} labels for {len(outlines)} outlines; give one label per outline", field="labels"
+        )
+    fig = _figure(size_px, dpi)
+    ax = fig.add_axes((0.08, 0.1, 0.74, 0.8))
+    bar = fig.add_axes((0.85, 0.18, 0.025, 0.64))
+    mesh = ax.pcolormesh(
+        x_edges,
+        y_edges,
+        np.ma.masked_invalid(field),
+        cmap=anomaly_colours(family),
+        norm=Normalize(-limit, limit),
+        shading="flat",
+    )
+    colourbar = fig.colorbar(mesh, cax=bar, extend="both")
+    colourbar.set_label(colour_label, fontsize=9)
+    colourbar.ax.tick_params(labelsize=8)
+    for i, geometry in enumerate(outlines):
+        for ring in _rings(geometry):
+            ax.plot(ring[:, 0], ring[:, 1], color=OUTLINE, linewidth=1.6, solid_joinstyle="round")
+        points = _points(geometry)
+        if points:
+            px, py = zip(*points, strict=False)
+            ax.scatter(px, py, marker="o", s=28, facecolor="none", edgecolor=OUTLINE, linewidth=1.4)
+        if labels is not None and not geometry.is_empty:
+            where = geometry.representative_point()
+            ax.annotate(
+                str(labels[i]),
+                (where.x, where.y),
+                fontsize=7,
+                ha="center",
+                va="center",
+                color=OUTLINE,
+                xytext=(0, 9),
+                textcoords="offset points",
+            )
+    ax.set_xlim(x_edges.min(), x_edges.max())
+    ax.set_ylim(y_edges.min(), y_edges.max())
+    if geographic:
+        middle = np.deg2rad((y_edges.min() + y_edges.max()) / 2)
+        ax.set_aspect(1.0 / max(np.cos(middle), 0.05), adjustable="box")
+        ax.set_xlabel("longitude (degrees east)", fontsize=9)
+        ax.set_ylabel("latitude (degrees north)", fontsize=9)
+    else:
+        ax.set_aspect("equal", adjustable="box")
+        ax.set_xlabel("x (grid CRS)", fontsize=9)
+        ax.set_ylabel("y (grid CRS)", fontsize=9)
+    ax.tick_params(labelsize=8)
+    if title:
+        ax.set_title(title, fontsize=11, loc="left")
+    return _png(fig)

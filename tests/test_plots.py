@@ -1,0 +1,183 @@
+"""The series and map pictures: right size, and the drawn content where it should be."""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+from matplotlib.colors import to_hex, to_rgb
+from PIL import Image
+
+from service.errors import RequestError
+from service.plots import (
+    DRY,
+    OUTLINE,
+    SPELL,
+    WARM,
+    WET,
+    anomaly_colours,
+    class_colour,
+    class_numbers,
+    class_word,
+    map_plot,
+    series_plot,
+)
+
+
+def _pixels(png: bytes) -> np.ndarray:
+    """The PNG as an (height, width, 3) float array in 0..1."""
+    image = Image.open(io.BytesIO(png))
+    assert image.format == "PNG"
+    return np.asarray(image.convert("RGB"), dtype=float) / 255.0
+
+
+def _near(pixels: np.ndarray, colour: str, tolerance: float = 0.06) -> np.ndarray:
+    """Boolean mask of the pixels within ``tolerance`` (each channel) of a named colour."""
+    return (np.abs(pixels - np.asarray(to_rgb(colour))) <= tolerance).all(axis=2)
+
+
+def _frame() -> pd.DataFrame:
+    """Twenty season-years of one community with a very wet 1995, a very hot 2003 and a dry-hot spell."""
+    years = np.arange(1991, 2011)
+    prcp_z = np.zeros(years.size)
+    tmean_z = np.zeros(years.size)
+    prcp_z[years == 1995] = 2.6  # much wetter
+    prcp_z[years == 2000] = np.nan  # no value: must not be drawn as a bar
+    tmean_z[years == 2003] = 2.4  # much warmer
+    run = np.where((years >= 2005) & (years <= 2007), years - 2004, 0)
+    other = pd.DataFrame({"feature_id": "c-02", "year": years, "prcp_total_z": -3.0, "tmean_z": -3.0})
+    one = pd.DataFrame(
+        {"feature_id": "c-01", "year": years, "prcp_total_z": prcp_z, "tmean_z": tmean_z, "dry_hot_run": run}
+    )
+    return pd.concat([other, one], ignore_index=True)
+
+
+def test_series_plot_draws_each_shock_in_its_panel_and_year() -> None:
+    png = series_plot(_frame(), "c-01", size_px=(1000, 640))
+    pixels = _pixels(png)
+    assert pixels.shape == (640, 1000, 3)
+    height, width = pixels.shape[:2]
+
+    much_wetter = _near(pixels, class_colour("precipitation", 2))
+    much_warmer = _near(pixels, class_colour("temperature", 2))
+    spell = _near(pixels, SPELL)
+    # Each shock is one bar of a few hundred pixels; nothing of the other community (z = -3) is drawn.
+    assert much_wetter.sum() > 300 and much_warmer.sum() > 300 and spell.sum() > 100
+    assert _near(pixels, class_colour("precipitation", -2)).sum() == 0
+
+    rows_wet, cols_wet = np.nonzero(much_wetter)
+    rows_warm, cols_warm = np.nonzero(much_warmer)
+    rows_spell, cols_spell = np.nonzero(spell)
+    # Panels top to bottom: precipitation above temperature above the spell strip.
+    assert rows_wet.max() < rows_warm.min()
+    assert rows_warm.max() < rows_spell.min()
+    assert rows_wet.mean() < height / 2 < rows_warm.mean()
+    # Along the year axis: the wet 1995 is left of the hot 2003, which is left of the 2005-2007 spell.
+    assert cols_wet.mean() < cols_warm.mean() < cols_spell.mean()
+    assert cols_wet.mean() < width / 2
+    # A bar of z above 0 rises from the middle of its panel: its pixels lie above the panel's zero line.
+    assert (cols_wet.max() - cols_wet.min()) < width / 30  # one bar, not a band
+
+
+def test_series_plot_shades_the_class_bands() -> None:
+    pixels = _pixels(series_plot(_frame(), "c-01"))
+    # Band shading is the class colour at low opacity on white: bluish-green above, sandy below, in the top panel.
+    top = pixels[: pixels.shape[0] // 2]
+    greenish = (top[..., 1] > top[..., 0] + 0.02) & (top.min(axis=2) > 0.8)
+    sandy = (top[..., 0] > top[..., 2] + 0.03) & (top.min(axis=2) > 0.8)
+    assert greenish.sum() > 5_000 and sandy.sum() > 5_000
+    assert np.nonzero(greenish)[0].mean() < np.nonzero(sandy)[0].mean()
+
+
+def test_series_plot_without_spells_and_only_temperature() -> None:
+    frame = _frame().drop(columns=["prcp_total_z", "dry_hot_run"])
+    pixels = _pixels(series_plot(frame, "c-01", size_px=(600, 400)))
+    assert pixels.shape == (400, 600, 3)
+    assert _near(pixels, class_colour("temperature", 2)).sum() > 100
+    assert _near(pixels, SPELL).sum() == 0
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"feature_id": "nowhere"}, "feature 'nowhere' is not in the table"),
+        ({"feature_id": "c-01", "precipitation": "wet_days", "temperature": "gdd"}, "needs the z-scores"),
+        ({"feature_id": "c-01", "spells": ["hot_wet"]}, "spell 'hot_wet' has no 'hot_wet_run' column"),
+        ({"feature_id": "c-01", "edges": [1, -1]}, "strictly increasing"),
+        ({"feature_id": "c-01", "size_px": (50, 50)}, "outside 200x150"),
+    ],
+)
+def test_series_plot_refuses_what_it_cannot_draw(kwargs: dict, message: str) -> None:
+    feature_id = kwargs.pop("feature_id")
+    with pytest.raises(RequestError, match=message):
+        series_plot(_frame(), feature_id, **kwargs)
+
+
+def test_class_words_and_numbers() -> None:
+    assert class_numbers([-2, -1, 1, 2]) == [-2, -1, 0, 1, 2]
+    assert class_numbers([0.5, 1.5]) == [0, 1, 2]
+    assert class_numbers([-1.0]) == [-1, 0]
+    assert class_word("precipitation", -2) == "much drier"
+    assert class_word("temperature", 1) == "warmer"
+    assert class_word("temperature", 0) == "near normal"
+    assert class_colour("precipitation", 1) == WET[0] and class_colour("precipitation", -1) == DRY[0]
+    assert class_colour("temperature", 5) == WARM[-1]
+
+
+def _map(size_px: tuple[int, int] = (900, 700), **kwargs: object) -> np.ndarray:
+    """A 20 x 30 geographic grid, z running from -3 (west) to +3 (east), one square community outlined."""
+    x_edges = np.linspace(10.0, 13.0, 31)
+    y_edges = np.linspace(6.0, 4.0, 21)  # north to south, as stores usually hold it
+    field = np.tile(np.linspace(-3, 3, 30), (20, 1))
+    field[0, 0] = np.nan
+    outline = shapely.box(11.0, 4.5, 12.0, 5.5)
+    return _pixels(map_plot(field, x_edges, y_edges, [outline], labels=["c-01"], size_px=size_px, **kwargs))
+
+
+def test_map_plot_places_the_anomalies_and_the_outline() -> None:
+    pixels = _map()
+    assert pixels.shape == (700, 900, 3)
+    scale = anomaly_colours("precipitation")
+    deep_dry = _near(pixels, to_hex(scale(0.02)))
+    deep_wet = _near(pixels, to_hex(scale(0.98)))
+    assert deep_dry.sum() > 2_000 and deep_wet.sum() > 2_000
+    dry_cols = np.nonzero(deep_dry)[1]
+    wet_cols = np.nonzero(deep_wet)[1]
+    map_dry, map_wet = dry_cols[dry_cols < 700], wet_cols[wet_cols < 700]  # leave the colour bar out
+    assert map_dry.size > 1_000 and map_wet.size > 1_000
+    assert map_dry.mean() < map_wet.mean()  # dry in the west, wet in the east
+
+    # The outline is a dark square in the middle third of the map, lower half (4.5-5.5 N of 4-6 N).
+    dark = _near(pixels, OUTLINE, tolerance=0.12)
+    rows, cols = np.nonzero(dark[:, :700])
+    square = (cols > map_dry.min() + 100) & (cols < map_wet.max() - 100)
+    assert square.sum() > 400
+    map_rows = np.nonzero(deep_dry[:, :700].any(axis=1) | deep_wet[:, :700].any(axis=1))[0]
+    middle_of_map = (map_rows.min() + map_rows.max()) / 2
+    assert np.median(rows[square]) > middle_of_map  # south of the map's middle
+
+
+def test_map_plot_marks_missing_cells_grey_and_takes_points() -> None:
+    x_edges, y_edges = np.arange(0.0, 5.1, 1.0), np.arange(0.0, 4.1, 1.0)
+    field = np.full((4, 5), np.nan)
+    png = map_plot(field, x_edges, y_edges, [shapely.Point(2.5, 2.5)], family="temperature", geographic=False)
+    pixels = _pixels(png)
+    assert _near(pixels, "#d9d9d9", tolerance=0.02).sum() > 50_000
+    assert _near(pixels, OUTLINE, tolerance=0.12).sum() > 20
+
+
+@pytest.mark.parametrize(
+    ("field_shape", "kwargs", "message"),
+    [
+        ((3, 3), {}, r"does not match edges"),
+        ((4, 5), {"limit": 0.0}, "positive number"),
+        ((4, 5), {"labels": ["a", "b"]}, "2 labels for 1 outlines"),
+        ((4, 5), {"family": "wind"}, "no map colours"),
+    ],
+)
+def test_map_plot_refuses_bad_input(field_shape: tuple[int, int], kwargs: dict, message: str) -> None:
+    with pytest.raises(RequestError, match=message):
+        map_plot(np.zeros(field_shape), np.arange(6.0), np.arange(5.0), [shapely.box(1, 1, 2, 2)], **kwargs)
