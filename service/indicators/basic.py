@@ -1,0 +1,175 @@
+"""Plain season values: precipitation total and wet days, mean temperatures, diurnal range.
+
+Every function here works on (feature, year, day) arrays of a :class:`~service.indicators.base.SeasonCube`
+along the last axis and returns a (feature, year) float64 array. Padding days (outside the season) and
+missing days are NaN: totals and means skip them, counts do not count them, and a season-year without a
+single valid day gives NaN. The core (seasons.py) nulls seasons with too many missing days; these functions
+never decide that. The small helpers at the top (valid-day counts, runs) are shared by the other value
+modules.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import numpy as np
+
+from service.indicators.base import Baseline, Indicator, SeasonCube, register
+
+WET_DAY_MM = 1.0  # a wet day has at least 1 mm (ETCCDI, Zhang et al. 2011)
+
+
+# --- shared helpers ---------------------------------------------------------------------------------------------
+
+
+def valid_days(values: np.ndarray) -> np.ndarray:
+    """Number of non-NaN days per (feature, year) along the last axis (int64)."""
+    return np.count_nonzero(~np.isnan(values), axis=-1)
+
+
+def null_where_empty(result: np.ndarray, *arrays: np.ndarray) -> np.ndarray:
+    """``result`` as float64 with NaN where any of ``arrays`` has no valid day in that season-year."""
+    out = np.asarray(result, dtype=np.float64)
+    empty = np.zeros(out.shape, dtype=bool)
+    for values in arrays:
+        empty |= valid_days(values) == 0
+    if empty.any():
+        out = out.copy() if out is result else out
+        out[empty] = np.nan
+    return out
+
+
+def season_sum(values: np.ndarray) -> np.ndarray:
+    """Sum over the valid days of each season-year (same units as ``values``); NaN when none is valid."""
+    return null_where_empty(np.nansum(values, axis=-1), values)
+
+
+def season_mean(values: np.ndarray) -> np.ndarray:
+    """Mean over the valid days of each season-year (same units as ``values``); NaN when none is valid."""
+    count = valid_days(values)
+    total = np.nansum(values, axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan)
+
+
+def count_days(condition: np.ndarray, *arrays: np.ndarray) -> np.ndarray:
+    """Days on which ``condition`` holds per season-year; NaN when ``arrays`` have no valid day."""
+    return null_where_empty(np.count_nonzero(condition, axis=-1).astype(np.float64), *arrays)
+
+
+def longest_run(condition: np.ndarray) -> np.ndarray:
+    """Length (days) of the longest run of consecutive True along the last axis, as int.
+
+    False (and so a missing or padding day, whose comparisons are False) ends a run; only days of the array
+    count, so a run is cut at both ends of the season. Vectorised: for each day, the distance to the last
+    False day before it is the length of the run ending there.
+    """
+    n_day = condition.shape[-1]
+    dtype = np.int16 if n_day < 32_000 else np.int32
+    position = np.arange(n_day, dtype=dtype)
+    last_break = np.where(condition, np.array(-1, dtype=dtype), position)
+    np.maximum.accumulate(last_break, axis=-1, out=last_break)
+    if n_day == 0:
+        return np.zeros(condition.shape[:-1], dtype=np.int64)
+    run = position - last_break
+    return run.max(axis=-1).astype(np.int64)
+
+
+# --- the indicators -----------------------------------------------------------------------------------------
+
+
+def prcp_total(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Season precipitation total (mm): sum of the valid days' precipitation."""
+    return season_sum(cube.prcp)
+
+
+def wet_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Number of wet days (prcp >= 1 mm) in the season (days)."""
+    return count_days(cube.prcp >= WET_DAY_MM, cube.prcp)
+
+
+def tmean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Season mean of the daily mean temperature (tmax + tmin) / 2 (degC); days missing either are skipped."""
+    return season_mean(cube.tmean)
+
+
+def tmax_mean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Season mean of the daily maximum temperature (degC)."""
+    return season_mean(cube.tmax)
+
+
+def tmin_mean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Season mean of the daily minimum temperature (degC)."""
+    return season_mean(cube.tmin)
+
+
+def dtr(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Season mean diurnal temperature range tmax - tmin (degC); days missing either are skipped."""
+    return season_mean(cube.tmax - cube.tmin)
+
+
+ETCCDI = (
+    "ETCCDI core indices: Zhang et al. 2011, WIREs Climate Change 2:851; Klein Tank et al. 2009, WCDMP-No. 72"
+)
+
+register(
+    Indicator(
+        name="prcp_total",
+        unit="mm",
+        definition="Total precipitation of the season (sum of daily precipitation over the days with data).",
+        source="Season sum of daily precipitation (PRCPTOT-like, but over all days; " + ETCCDI + ")",
+        family="precipitation",
+        compute=prcp_total,
+        percent_of_normal=True,
+    )
+)
+register(
+    Indicator(
+        name="wet_days",
+        unit="days",
+        definition="Number of days in the season with at least 1 mm of precipitation.",
+        source="Wet-day definition RR >= 1 mm of the " + ETCCDI,
+        family="count",
+        compute=wet_days,
+    )
+)
+register(
+    Indicator(
+        name="tmean",
+        unit="degC",
+        definition="Mean over the season of the daily mean temperature, (tmax + tmin) / 2.",
+        source="Daily mean as (TX + TN) / 2, common practice (" + ETCCDI + ")",
+        family="temperature",
+        compute=tmean,
+    )
+)
+register(
+    Indicator(
+        name="tmax_mean",
+        unit="degC",
+        definition="Mean over the season of the daily maximum temperature.",
+        source="Season mean of TX (" + ETCCDI + ")",
+        family="temperature",
+        compute=tmax_mean,
+    )
+)
+register(
+    Indicator(
+        name="tmin_mean",
+        unit="degC",
+        definition="Mean over the season of the daily minimum temperature.",
+        source="Season mean of TN (" + ETCCDI + ")",
+        family="temperature",
+        compute=tmin_mean,
+    )
+)
+register(
+    Indicator(
+        name="dtr",
+        unit="degC",
+        definition="Mean over the season of the daily temperature range, tmax - tmin.",
+        source="DTR, mean of TX - TN (" + ETCCDI + ")",
+        family="temperature",
+        compute=dtr,
+    )
+)
