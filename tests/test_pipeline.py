@@ -1,0 +1,263 @@
+"""The whole chain on the tiny demo store: request -> weights -> aggregation -> indicators -> bytes."""
+
+from __future__ import annotations
+
+import io
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
+import pytest
+
+from service.cli import main
+from service.encode import encode, read_parquet_provenance
+from service.errors import LimitExceededError, UnknownDatasetError
+from service.pipeline import pick_store, run, run_series
+from service.schemas import IndicatorRequest, SeriesRequest, validate_request
+from service.settings import Settings
+from service.store import open_store
+
+
+def example_request(features: dict[str, Any]) -> dict[str, Any]:
+    """The example request of the indicator issue, on the demo's communities and years."""
+    return {
+        "dataset": "demo",
+        "features": features,
+        "years": {"start": 1991, "end": 2018},
+        "season": {"months": [5, 6, 7, 8, 9, 10]},
+        "baseline": {"start": 1980, "end": 1990},
+        "indicators": [
+            "prcp_total",
+            "tmean",
+            "cdd",
+            {"name": "gdd", "base": 10, "cap": 30},
+            {"name": "edd", "threshold": 29},
+            {"name": "spei"},
+        ],
+        "classes": {"edges": [-2, -1, 1, 2]},
+        "lags": [0, 1, 2],
+        "pairs": [["prcp_total", "tmean"]],
+        "sequences": [[1, 2]],
+        "spells": [
+            {
+                "name": "dry_hot",
+                "window": 5,
+                "when": [
+                    {"indicator": "prcp_total", "class_max": -1},
+                    {"indicator": "tmean", "class_min": 1},
+                ],
+            }
+        ],
+        "weighting": "area",
+        "layout": "wide",
+    }
+
+
+@pytest.fixture(scope="module")
+def settings(tmp_path_factory: pytest.TempPathFactory) -> Settings:
+    return Settings(data_dir=tmp_path_factory.mktemp("data"), threads=2)
+
+
+@pytest.fixture(scope="module")
+def store(tiny_demo: Path):
+    return open_store(tiny_demo)
+
+
+@pytest.fixture(scope="module")
+def example_result(store, settings, tiny_communities):
+    request = validate_request(IndicatorRequest, example_request(tiny_communities))
+    return run(request, store, settings)
+
+
+def test_one_row_per_feature_and_year(example_result, tiny_communities) -> None:
+    frame = example_result.frame
+    ids = [str(f.get("id", f.get("properties", {}).get("id"))) for f in tiny_communities["features"]]
+    assert len(frame) == len(ids) * (2018 - 1991 + 1)
+    assert not frame.duplicated(["feature_id", "year"]).any()
+    assert frame["feature_id"].drop_duplicates().tolist() == ids  # request order kept
+    for column in [
+        "prcp_total",
+        "prcp_total_z",
+        "prcp_total_class",
+        "tmean_z_lag2",
+        "coverage",
+        "season_complete",
+        "dry_hot_run",
+        "dry_hot_count",
+    ]:
+        assert column in frame.columns, column
+    assert frame["coverage"].between(0, 1).all()
+
+
+def test_values_are_plausible_for_the_demo_climate(example_result) -> None:
+    # The demo generator makes a clear rainy season and tmean of roughly 15-30 degC (its own design).
+    frame = example_result.frame
+    assert (frame["prcp_total"].dropna() > 0).all()
+    assert frame["tmean"].dropna().between(0, 40).all()
+    z = frame["prcp_total_z"].dropna()
+    assert abs(z.mean()) < 1.5 and 0.3 < z.std() < 3.0
+
+
+def test_provenance_names_the_data_and_the_request(example_result, store) -> None:
+    prov = example_result.provenance
+    assert prov["dataset"] == store.name and prov["fingerprint"] == store.fingerprint
+    assert prov["request_hash"].startswith("sha256:")
+    assert prov["request"]["baseline"] == {"start": 1980, "end": 1990}
+    assert prov["request"]["features"]["count"] == example_result.frame["feature_id"].nunique()
+
+
+def test_same_request_same_bytes_whatever_the_batching(
+    store, settings, tiny_communities, example_result
+) -> None:
+    request = validate_request(IndicatorRequest, example_request(tiny_communities))
+    batched = run(request, store, settings, batch_size=7)
+    for fmt in ("json", "csv", "parquet"):
+        assert encode(batched, fmt)[0] == encode(example_result, fmt)[0], fmt
+
+
+def test_progress_reports_features(store, settings, tiny_communities) -> None:
+    seen: list[tuple[int, int]] = []
+    request = validate_request(IndicatorRequest, {**example_request(tiny_communities), "lags": [0]})
+    run(request, store, settings, progress=lambda done, total: seen.append((done, total)), batch_size=10)
+    total = len(tiny_communities["features"])
+    assert seen[0] == (0, total) and seen[-1] == (total, total)
+    assert [d for d, _ in seen] == sorted(d for d, _ in seen)
+
+
+def test_parquet_merges_onto_a_person_year_panel(tmp_path: Path, tiny_demo: Path, tiny_communities) -> None:
+    request_path = tmp_path / "request.json"
+    features_path = tmp_path / "communities.geojson"
+    body = example_request(tiny_communities)
+    body.pop("features")
+    request_path.write_text(json.dumps(body))
+    features_path.write_text(json.dumps(tiny_communities))
+    out = tmp_path / "shocks.parquet"
+    code = main(
+        [
+            "compute",
+            "--store",
+            str(tiny_demo),
+            "--request",
+            str(request_path),
+            "--features",
+            str(features_path),
+            "--out",
+            str(out),
+            "--quiet",
+        ]
+    )
+    assert code == 0
+    shocks = pq.read_table(out).to_pandas()
+    # A toy person-year panel: three people per community, each observed in three survey years.
+    ids = shocks["feature_id"].unique()
+    rng = np.random.default_rng(7)
+    panel = pd.DataFrame(
+        [
+            {"person": f"p{i}-{j}", "feature_id": fid, "year": int(year)}
+            for i, fid in enumerate(ids)
+            for j in range(3)
+            for year in rng.choice(np.arange(1991, 2019), 3, replace=False)
+        ]
+    )
+    merged = panel.merge(shocks, on=["feature_id", "year"], how="left", validate="many_to_one")
+    assert len(merged) == len(panel)
+    assert merged["prcp_total"].notna().mean() > 0.9
+    assert (
+        read_parquet_provenance(out.read_bytes())["provenance"]["fingerprint"]
+        == open_store(tiny_demo).fingerprint
+    )
+
+
+def test_cli_reports_a_bad_request_without_a_traceback(tmp_path: Path, tiny_demo: Path, capsys) -> None:
+    request_path = tmp_path / "bad.json"
+    request_path.write_text(json.dumps({"features": {"type": "FeatureCollection", "features": []}}))
+    code = main(
+        [
+            "compute",
+            "--store",
+            str(tiny_demo),
+            "--request",
+            str(request_path),
+            "--out",
+            str(tmp_path / "x.csv"),
+            "--quiet",
+        ]
+    )
+    assert code == 2
+    assert "/features/features" in capsys.readouterr().err
+    assert not (tmp_path / "x.csv").exists()
+
+
+def test_csv_output_has_a_provenance_sidecar(tmp_path: Path, tiny_demo: Path, tiny_communities) -> None:
+    request_path = tmp_path / "request.json"
+    request_path.write_text(
+        json.dumps({"features": {**tiny_communities, "features": tiny_communities["features"][:3]}})
+    )
+    out = tmp_path / "out.csv"
+    assert (
+        main(
+            [
+                "compute",
+                "--store",
+                str(tiny_demo),
+                "--request",
+                str(request_path),
+                "--out",
+                str(out),
+                "--quiet",
+            ]
+        )
+        == 0
+    )
+    frame = pd.read_csv(out)
+    assert frame["feature_id"].nunique() == 3
+    sidecar = json.loads((tmp_path / "out.csv.provenance.json").read_text())
+    assert sidecar["provenance"]["dataset"] == "demo"
+
+
+def test_series_are_daily_rows(store, settings, tiny_communities) -> None:
+    request = validate_request(
+        SeriesRequest,
+        {
+            "features": {**tiny_communities, "features": tiny_communities["features"][:2]},
+            "years": {"start": 2000, "end": 2001},
+            "variables": ["prcp", "tmean"],
+        },
+    )
+    result = run_series(request, store, settings)
+    assert list(result.frame.columns) == ["feature_id", "date", "prcp", "tmean"]
+    days = int(np.sum(np.isin(store.dates.year, [2000, 2001])))
+    assert len(result.frame) == 2 * days
+    assert result.frame["date"].iloc[0] == "2000-01-01"
+    parquet = pq.read_table(io.BytesIO(encode(result, "parquet")[0])).to_pandas()
+    assert len(parquet) == len(result.frame)
+
+
+def test_unknown_layer_and_year_limit(store, tiny_communities, tmp_path: Path) -> None:
+    few = {**tiny_communities, "features": tiny_communities["features"][:1]}
+    request = validate_request(IndicatorRequest, {"features": few, "weighting": {"layer": "goats"}})
+    with pytest.raises(UnknownDatasetError, match="no weight layer 'goats'"):
+        run(request, store, Settings(data_dir=tmp_path))
+    request = validate_request(IndicatorRequest, {"features": few})
+    with pytest.raises(LimitExceededError, match="max_years_per_request"):
+        run(request, store, Settings(data_dir=tmp_path, max_years_per_request=5))
+
+
+def test_population_weighting_runs(store, settings, tiny_communities) -> None:
+    few = {**tiny_communities, "features": tiny_communities["features"][:4]}
+    request = validate_request(
+        IndicatorRequest,
+        {"features": few, "weighting": {"layer": "population"}, "indicators": ["prcp_total"]},
+    )
+    assert run(request, store, settings).frame["prcp_total"].notna().any()
+
+
+def test_pick_store() -> None:
+    with pytest.raises(UnknownDatasetError, match="no dataset is served"):
+        pick_store({}, None)
+    with pytest.raises(UnknownDatasetError, match="served datasets: a, b"):
+        pick_store({"a": 1, "b": 2}, "c")  # type: ignore[dict-item]
+    assert pick_store({"a": 1, "b": 2}, None) == 1  # type: ignore[dict-item]
