@@ -1,0 +1,137 @@
+"""Where dask work executes: a dask.distributed scheduler when one is configured, else local threads.
+
+``compute`` is the one place the service turns lazy dask collections into values; ``pipeline.py`` calls it
+once per run (or once per feature batch of a job). Both paths run the same task graph, so a result computed
+on the cluster is identical, bit for bit, to the one computed on local threads.
+
+A worker lost in the middle of a computation is handled by the scheduler: it reschedules the tasks that
+worker was running and recomputes the results it held on the workers that remain. Only a task that kept
+taking its worker down (``distributed.scheduler.allowed-failures`` times, 3 by default) fails the run, and
+then as a :class:`~service.errors.ClusterUnavailableError` (503), like a scheduler that does not answer.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+from typing import TYPE_CHECKING, Any
+
+import dask
+
+from service.errors import ClusterUnavailableError, WxshockError
+
+if TYPE_CHECKING:
+    import distributed
+
+    from service.settings import Settings
+
+log = logging.getLogger(__name__)
+
+# Seconds to wait for the scheduler to answer when the first client is made.
+CONNECT_TIMEOUT_S = 10.0
+# Seconds a computation waits for at least one worker to be connected before it is refused.
+WORKER_WAIT_S = 30.0
+# Times a task that raised is run again before its error is the run's error. A lost worker is not counted
+# here (the scheduler reschedules those tasks by itself); this covers a transient read error on a worker,
+# for example an object store that answered one request with a throttling error.
+TASK_RETRIES = 2
+
+_clients: dict[str, distributed.Client] = {}
+_lock = threading.Lock()
+
+
+def client_for(settings: Settings) -> distributed.Client | None:
+    """The cached distributed client of ``settings.scheduler``; None when work runs on local threads."""
+    address = (settings.scheduler or "").strip()
+    if not address:
+        return None
+    with _lock:
+        client = _clients.get(address)
+        if client is not None and client.status in ("running", "connecting"):
+            return client
+        if client is not None:
+            _close_quietly(client)
+        client = _connect(address)
+        _clients[address] = client
+        return client
+
+
+def _connect(address: str) -> distributed.Client:
+    """A new client of the scheduler at ``address``; it does not become dask's global default."""
+    from distributed import Client
+
+    try:
+        # set_as_default=False: a plain dask.compute elsewhere in the process must not silently move to
+        # the cluster; only compute() below sends work there.
+        client = Client(address, timeout=CONNECT_TIMEOUT_S, set_as_default=False, name="wxshock")
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise ClusterUnavailableError(
+            f"dask scheduler {address!r} did not answer within {CONNECT_TIMEOUT_S:g} s "
+            f"({type(exc).__name__}: {exc}); start the scheduler, correct WXSHOCK_SCHEDULER / --scheduler "
+            "(e.g. tcp://host:8786), or unset it to compute on local threads",
+            field="scheduler",
+        ) from exc
+    log.info("connected to dask scheduler %s", address)
+    return client
+
+
+def _close_quietly(client: distributed.Client) -> None:
+    """Close a client whose connection is gone, ignoring errors from the already closed comms."""
+    try:
+        client.close(timeout=2)
+    except Exception:  # noqa: BLE001 - a dead client may fail to close in many ways; it is dropped anyway
+        log.debug("closing a stale dask client failed", exc_info=True)
+
+
+def close_clients() -> None:
+    """Close every cached client (server shutdown, tests)."""
+    with _lock:
+        clients = list(_clients.values())
+        _clients.clear()
+    for client in clients:
+        _close_quietly(client)
+
+
+def compute(*collections: Any, settings: Settings) -> tuple[Any, ...]:
+    """Compute dask collections (arrays, xarray objects, delayed) together; non-dask arguments pass through.
+
+    Runs on the scheduler named by ``settings.scheduler``, else on ``settings.threads`` local threads (one
+    per core when None). Returns a tuple with one computed value per argument, in order, like
+    ``dask.compute``. Errors raised inside a task reach the caller with their own type.
+    """
+    client = client_for(settings)
+    if client is None:
+        return dask.compute(*collections, scheduler="threads", num_workers=settings.threads)
+    return _compute_on_cluster(client, collections, settings.scheduler or "")
+
+
+def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...], address: str) -> tuple:
+    """Run the collections on the cluster, waiting briefly for a worker; lost workers are the scheduler's."""
+    from distributed import KilledWorker
+    from distributed.comm.core import CommClosedError
+
+    try:
+        client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+    except TimeoutError as exc:
+        raise ClusterUnavailableError(
+            f"dask scheduler {address!r} has no worker (waited {WORKER_WAIT_S:g} s); start at least one "
+            f"'dask worker {address}' or unset WXSHOCK_SCHEDULER to compute on local threads",
+            field="scheduler",
+        ) from exc
+    try:
+        return dask.compute(*collections, scheduler=client, retries=TASK_RETRIES)
+    except WxshockError:
+        raise  # a domain error raised inside a task (a store that cannot be read) keeps its own type
+    except KilledWorker as exc:
+        raise ClusterUnavailableError(
+            f"dask task {exc.task!r} was running on {exc.allowed_failures + 1} workers that each died while "
+            f"running it (the last was {exc.last_worker.address}), more often than the scheduler allows "
+            "(distributed.scheduler.allowed-failures); check the workers' memory limit and logs",
+            field="scheduler",
+        ) from exc
+    except CommClosedError as exc:
+        raise ClusterUnavailableError(
+            f"lost the connection to dask scheduler {address!r} during the computation ({exc}); "
+            "retry once the scheduler is back",
+            field="scheduler",
+        ) from exc

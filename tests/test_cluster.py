@@ -1,0 +1,196 @@
+"""service.cluster on plain dask arrays: local threads, a real two-worker cluster, a worker lost mid-way."""
+
+from __future__ import annotations
+
+import os
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+
+import dask
+import dask.array as da
+import numpy as np
+import pytest
+
+from service import cluster
+from service.errors import ClusterUnavailableError, StoreError
+from service.settings import Settings
+from tests import _support_cluster as support
+from tests._support_cluster import (
+    DaskProcesses,
+    exit_worker_block,
+    free_port,
+    process_id_block,
+    slow_block,
+    thread_id_block,
+)
+
+dask_cluster = support.dask_cluster  # the session fixture, used by name below
+
+pytestmark = pytest.mark.timeout(120)
+
+
+def _weighted_means(seed: int = 7) -> da.Array:
+    """A float reduction shaped like the aggregation: weights (feature, cell) x values (cell, day)."""
+    rng = np.random.default_rng(seed)
+    values = da.from_array(rng.normal(15.0, 8.0, size=(600, 365)), chunks=(100, 73))
+    weights = da.from_array(rng.random((40, 600)), chunks=(40, 100))
+    return (weights @ values) / weights.sum(axis=1, keepdims=True)
+
+
+def _settings(**kwargs: object) -> Settings:
+    """Settings for a test, never read from the environment of the machine."""
+    kwargs.setdefault("scheduler", None)
+    return Settings(**kwargs)
+
+
+# --- local threads ----------------------------------------------------------------------------------------------
+
+
+def test_local_compute_matches_numpy() -> None:
+    rng = np.random.default_rng(7)
+    values = rng.normal(15.0, 8.0, size=(600, 365))
+    weights = rng.random((40, 600))
+    (got,) = cluster.compute(_weighted_means(), settings=_settings())
+    # numpy's own matmul as the reference; dask sums chunk products in another order, so not bit-equal.
+    np.testing.assert_allclose(got, (weights @ values) / weights.sum(axis=1, keepdims=True), rtol=1e-12)
+
+
+def test_local_compute_returns_one_value_per_argument_in_order() -> None:
+    a = da.arange(10, chunks=3)
+    got = cluster.compute(a.sum(), "not dask", a * 2, settings=_settings(threads=2))
+    assert isinstance(got, tuple) and len(got) == 3
+    assert got[0] == 45 and got[1] == "not dask"
+    np.testing.assert_array_equal(got[2], np.arange(10) * 2)
+
+
+def test_local_compute_uses_the_configured_number_of_threads() -> None:
+    blocks = da.zeros((16, 1), chunks=(1, 1)).map_blocks(thread_id_block, dtype=np.int64)
+    (one,) = cluster.compute(blocks, settings=_settings(threads=1))
+    assert len(np.unique(one)) == 1
+    assert one[0, 0] != threading.get_ident()  # a pool thread, not the caller's
+
+
+def test_no_scheduler_means_no_client() -> None:
+    assert cluster.client_for(_settings()) is None
+    assert cluster.client_for(_settings(scheduler="  ")) is None
+
+
+# --- on the cluster ---------------------------------------------------------------------------------------------
+
+
+@pytest.mark.cluster
+def test_cluster_result_is_bit_identical_to_threads(dask_cluster: DaskProcesses) -> None:
+    local, local_sum = cluster.compute(
+        _weighted_means(), _weighted_means().sum(), settings=_settings(threads=2)
+    )
+    remote, remote_sum = cluster.compute(
+        _weighted_means(), _weighted_means().sum(), settings=_settings(scheduler=dask_cluster.address)
+    )
+    assert remote.dtype == local.dtype and remote.shape == local.shape
+    assert remote.tobytes() == local.tobytes()
+    assert np.float64(remote_sum).tobytes() == np.float64(local_sum).tobytes()
+
+
+@pytest.mark.cluster
+def test_cluster_work_runs_in_the_worker_processes(dask_cluster: DaskProcesses) -> None:
+    blocks = da.zeros((8, 1), chunks=(1, 1)).map_blocks(process_id_block, dtype=np.int64)
+    (pids,) = cluster.compute(blocks, settings=_settings(scheduler=dask_cluster.address))
+    assert os.getpid() not in set(pids.ravel())
+    client = cluster.client_for(_settings(scheduler=dask_cluster.address))
+    worker_pids = set(client.run(os.getpid).values())
+    assert set(pids.ravel()) <= worker_pids and len(worker_pids) == 2
+
+
+@pytest.mark.cluster
+def test_client_is_cached_per_address_and_not_dask_default(dask_cluster: DaskProcesses) -> None:
+    settings = _settings(scheduler=dask_cluster.address)
+    first = cluster.client_for(settings)
+    assert first is not None and cluster.client_for(settings) is first
+    # A plain dask.compute elsewhere in the process stays local: the cached client is not the default.
+    blocks = da.zeros((2, 1), chunks=(1, 1)).map_blocks(process_id_block, dtype=np.int64)
+    assert set(dask.compute(blocks)[0].ravel()) == {os.getpid()}
+
+
+@pytest.mark.cluster
+def test_error_raised_in_a_task_keeps_its_type(dask_cluster: DaskProcesses) -> None:
+    def unreadable(block: np.ndarray) -> np.ndarray:
+        raise StoreError("store 'demo': chunk tmax/0.0.0 cannot be read (test)")
+
+    broken = da.zeros((2, 2), chunks=(1, 2)).map_blocks(unreadable, dtype=float)
+    with pytest.raises(StoreError, match="chunk tmax/0.0.0 cannot be read"):
+        cluster.compute(broken, settings=_settings(scheduler=dask_cluster.address))
+
+
+@pytest.mark.cluster
+def test_worker_lost_mid_computation_is_retried_with_the_same_result(dask_cluster: DaskProcesses) -> None:
+    source = np.linspace(-50.0, 50.0, 32 * 500).reshape(32, 500)
+
+    def work() -> da.Array:
+        blocks = da.from_array(source, chunks=(1, 500)).map_blocks(slow_block, 0.1, dtype=float)
+        return blocks.sum(axis=0)  # a reduction over results spread over both workers
+
+    (expected,) = cluster.compute(work(), settings=_settings(threads=8))
+    settings = _settings(scheduler=dask_cluster.address)
+    client = cluster.client_for(settings)
+    victim = "worker-a"
+    victim_address = next(
+        address
+        for address, info in client.scheduler_info(n_workers=-1)["workers"].items()
+        if info["name"] == victim
+    )
+    try:
+        with ThreadPoolExecutor(1) as pool:
+            running = pool.submit(cluster.compute, work(), settings=settings)
+            # Stop the worker once it holds finished results and is running a task: both must be redone.
+            deadline = time.monotonic() + 30
+            while time.monotonic() < deadline:
+                held = sum(victim_address in holders for holders in client.who_has().values())
+                if held >= 3 and client.processing().get(victim_address):
+                    break
+                time.sleep(0.05)
+            else:
+                pytest.fail("the victim worker never held results and a running task")
+            assert not running.done()
+            dask_cluster.stop_worker(victim)
+            (got,) = running.result(timeout=60)
+        assert victim_address not in client.scheduler_info(n_workers=-1)["workers"]
+        assert got.tobytes() == expected.tobytes()
+    finally:
+        dask_cluster.ensure_workers()
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+def test_task_that_keeps_killing_workers_is_a_cluster_error(dask_cluster: DaskProcesses) -> None:
+    poison = da.zeros((1, 1), chunks=(1, 1)).map_blocks(exit_worker_block, dtype=float)
+    try:
+        with pytest.raises(ClusterUnavailableError, match="each died while running it") as caught:
+            cluster.compute(poison, settings=_settings(scheduler=dask_cluster.address))
+        assert caught.value.status == 503
+    finally:
+        dask_cluster.ensure_workers()
+
+
+# --- a scheduler that is not there ------------------------------------------------------------------------------
+
+
+def test_unreachable_scheduler_is_a_clear_503(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT_S", 1.0)
+    address = f"tcp://127.0.0.1:{free_port()}"
+    with pytest.raises(ClusterUnavailableError, match="did not answer within 1 s.*unset it") as caught:
+        cluster.compute(da.ones(3).sum(), settings=_settings(scheduler=address))
+    assert caught.value.status == 503 and caught.value.field == "scheduler"
+    assert address in caught.value.detail
+
+
+def test_scheduler_without_workers_is_a_clear_503(monkeypatch: pytest.MonkeyPatch) -> None:
+    from distributed import LocalCluster
+
+    monkeypatch.setattr(cluster, "WORKER_WAIT_S", 0.5)
+    with LocalCluster(
+        n_workers=0, processes=False, protocol="tcp", host="127.0.0.1", dashboard_address="127.0.0.1:0"
+    ) as empty:
+        with pytest.raises(ClusterUnavailableError, match="has no worker"):
+            cluster.compute(da.ones(3).sum(), settings=_settings(scheduler=empty.scheduler_address))
+    cluster.close_clients()
