@@ -1,0 +1,345 @@
+"""The HTTP service: the FastAPI app (stores opened once in its lifespan), its error handling, and `serve`."""
+
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import logging
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.middleware.cors import CORSMiddleware
+from fastapi.openapi.utils import get_openapi
+from fastapi.responses import JSONResponse
+from starlette.concurrency import run_in_threadpool
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from service import __version__
+from service.errors import (
+    PROBLEM_MEDIA_TYPE,
+    PROBLEM_TYPE_PREFIX,
+    AuthError,
+    LimitExceededError,
+    RequestValidationFailed,
+    WxshockError,
+    problem_for,
+    validation_items,
+)
+from service.jobs import JobRunner
+from service.registry import StoreRegistry
+from service.routes import ROUTER_MODULES
+from service.routes.deps import ServiceState, load_token_digests
+from service.routes.models import Problem
+from service.settings import Settings
+
+log = logging.getLogger("wxshock.app")
+
+DESCRIPTION = """\
+Community weather-shock indicators from a daily weather grid, on demand.
+
+Post community polygons or survey-cluster points (GeoJSON) with a baseline period, a season and lags, and
+get one row per (feature_id, year) as JSON, CSV or Parquet, with the dataset fingerprint and the resolved
+request as provenance. Large inputs go to durable batch jobs (`/v1/jobs`). Every error is an RFC 9457
+problem document (`application/problem+json`).
+"""
+
+
+# --- problem documents ----------------------------------------------------------------------------------------
+
+
+def problem_response(exc: BaseException, request: Request) -> JSONResponse:
+    """The problem+json response of an exception (WxshockError or anything else, which becomes a 500)."""
+    status, doc = problem_for(exc, instance=request.url.path)
+    headers = {"WWW-Authenticate": 'Bearer realm="wxshock"'} if isinstance(exc, AuthError) else None
+    return JSONResponse(doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=headers)
+
+
+def validation_problem(exc: RequestValidationError, content_type: str = "") -> RequestValidationFailed:
+    """FastAPI's request validation failure as one RequestValidationFailed listing every field by pointer."""
+    errors = list(exc.errors())
+    malformed = next((e for e in errors if e.get("type") == "json_invalid"), None)
+    if malformed is not None:
+        position = malformed.get("loc", ("body", 0))[-1]
+        reason = (malformed.get("ctx") or {}).get("error", "invalid JSON")
+        failure = RequestValidationFailed(
+            f"the request body is not valid JSON: {reason} at character {position}; send one JSON object",
+            errors=[{"pointer": "", "message": f"{reason} at character {position}"}],
+            pointer="",
+        )
+        failure.status = 400
+        return failure
+    body_errors = [e for e in errors if tuple(e.get("loc", ()))[:1] == ("body",)]
+    other_errors = [e for e in errors if tuple(e.get("loc", ()))[:1] != ("body",)]
+    items = validation_items(body_errors, drop_prefix=("body",))
+    for error in other_errors:
+        where, *name = error.get("loc", ("request",))
+        items.append(
+            {
+                "pointer": "",
+                "message": str(error.get("msg", "")),
+                "in": where,
+                "name": ".".join(map(str, name)),
+            }
+        )
+    for item, error in zip(items, body_errors, strict=False):
+        if tuple(error.get("loc", ())) != ("body",):
+            continue
+        if error.get("type") == "missing":
+            item["message"] = "the request needs a JSON body (Content-Type: application/json)"
+        elif "json" not in content_type:
+            item["message"] = f"the body was sent as {content_type or 'no Content-Type'!r}; send JSON with "
+            item["message"] += "Content-Type: application/json"
+        else:
+            item["message"] = (
+                f"the body must be one JSON object (the request), not {error.get('input')!r:.40}"
+            )
+    first = items[0] if items else {"pointer": "", "message": "invalid request"}
+    where = first["pointer"] or (
+        f"{first.get('in')} parameter {first.get('name')!r}" if "in" in first else "the body"
+    )
+    return RequestValidationFailed(
+        f"{len(items)} field(s) failed validation; first: {where}: {first['message']}",
+        errors=items,
+        pointer=first["pointer"] if first["pointer"] or "in" not in first else None,
+        field=first.get("name") if "in" in first else None,
+    )
+
+
+class BodyTooLarge(StarletteHTTPException):
+    """Raised while reading a body that outgrows max_body_bytes (FastAPI re-raises HTTPException unchanged)."""
+
+    def __init__(self, allowed: int, got: int, *, exact: bool) -> None:
+        super().__init__(status_code=413)
+        self.allowed = allowed
+        self.got = got
+        self.exact = exact
+
+    def error(self) -> LimitExceededError:
+        """The limit error this stands for."""
+        size = f"{self.got} bytes" if self.exact else f"more than {self.allowed} bytes"
+        return LimitExceededError(
+            f"the request body is {size}; at most {self.allowed} bytes are allowed (setting max_body_bytes); "
+            "send fewer or simpler features per request",
+            limit="max_body_bytes",
+            allowed=self.allowed,
+            got=self.got,
+            status=413,
+        )
+
+
+def install_error_handlers(app: FastAPI) -> None:
+    """Every error answers with an RFC 9457 problem document; a user's mistake is never a 500."""
+
+    async def wxshock_error(request: Request, exc: Exception) -> JSONResponse:
+        return problem_response(exc, request)
+
+    async def request_invalid(request: Request, exc: Exception) -> JSONResponse:
+        content_type = request.headers.get("content-type", "").lower()
+        return problem_response(validation_problem(exc, content_type), request)  # type: ignore[arg-type]
+
+    async def http_error(request: Request, exc: Exception) -> JSONResponse:
+        if isinstance(exc, BodyTooLarge):
+            return problem_response(exc.error(), request)
+        status = getattr(exc, "status_code", 500)
+        slug, title = _HTTP_PROBLEMS.get(status, ("http-error", "HTTP error"))
+        detail = {
+            404: f"no route {request.url.path!r}; see /docs for the routes",
+            405: f"{request.method} is not allowed on {request.url.path!r}",
+        }.get(status, str(exc.detail))
+        doc = {
+            "type": PROBLEM_TYPE_PREFIX + slug,
+            "title": title,
+            "status": status,
+            "detail": detail,
+            "instance": request.url.path,
+        }
+        return JSONResponse(
+            doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=getattr(exc, "headers", None)
+        )
+
+    async def unexpected(request: Request, exc: Exception) -> JSONResponse:
+        log.exception("unexpected failure on %s %s", request.method, request.url.path, exc_info=exc)
+        return problem_response(exc, request)
+
+    app.add_exception_handler(WxshockError, wxshock_error)
+    app.add_exception_handler(RequestValidationError, request_invalid)
+    app.add_exception_handler(StarletteHTTPException, http_error)
+    app.add_exception_handler(Exception, unexpected)
+
+
+_HTTP_PROBLEMS = {
+    400: ("bad-request", "Bad request"),
+    404: ("not-found", "Not found"),
+    405: ("method-not-allowed", "Method not allowed"),
+    413: ("limit-exceeded", "Limit exceeded"),
+    415: ("unsupported-media-type", "Unsupported media type"),
+}
+
+
+class BodySizeLimit:
+    """ASGI middleware refusing request bodies above ``max_bytes`` with 413, before or while they arrive."""
+
+    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        declared = _content_length(scope)
+        if declared is not None and declared > self.max_bytes:
+            await _send_problem(scope, send, BodyTooLarge(self.max_bytes, declared, exact=True).error())
+            return
+        received = 0
+
+        async def limited_receive() -> Message:
+            nonlocal received
+            message = await receive()
+            if message["type"] == "http.request":
+                received += len(message.get("body", b""))
+                if received > self.max_bytes:
+                    raise BodyTooLarge(self.max_bytes, received, exact=False)
+            return message
+
+        await self.app(scope, limited_receive, send)
+
+
+def _content_length(scope: Scope) -> int | None:
+    """The request's Content-Length, or None when absent or unreadable."""
+    for key, value in scope.get("headers", ()):
+        if key == b"content-length":
+            try:
+                return int(value)
+            except ValueError:
+                return None
+    return None
+
+
+async def _send_problem(scope: Scope, send: Send, exc: WxshockError) -> None:
+    """Answer with the problem document of ``exc`` straight from middleware."""
+    status, doc = problem_for(exc, instance=scope.get("path"))
+    response = JSONResponse(
+        doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers={"Connection": "close"}
+    )
+
+    async def no_body() -> Message:
+        return {"type": "http.disconnect"}
+
+    await response(scope, no_body, send)
+
+
+# --- the app --------------------------------------------------------------------------------------------------
+
+
+def _openapi_schema(app: FastAPI) -> dict[str, Any]:
+    """The OpenAPI document, with the problem document schema that every error response refers to."""
+    if app.openapi_schema is None:
+        schema = get_openapi(
+            title=app.title,
+            version=app.version,
+            description=app.description,
+            routes=app.routes,
+            tags=app.openapi_tags,
+        )
+        for operations in schema.get("paths", {}).values():
+            for operation in operations.values():
+                # The handler's one-line docstring is the summary (FastAPI would use the function name).
+                if operation.get("description"):
+                    operation["summary"] = operation["description"].strip().splitlines()[0]
+        problem = Problem.model_json_schema(ref_template="#/components/schemas/{model}")
+        components = schema.setdefault("components", {}).setdefault("schemas", {})
+        components.update(problem.pop("$defs", {}))
+        components["Problem"] = problem
+        app.openapi_schema = schema
+    return app.openapi_schema
+
+
+def routers() -> list[Any]:
+    """The routers of every route module present (the plots and viewer modules may not be installed)."""
+    found = []
+    for name in ROUTER_MODULES:
+        if importlib.util.find_spec(name) is not None:
+            found.append(importlib.import_module(name).router)
+    return found
+
+
+def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
+    """The wxshock app; with ``open_stores`` its lifespan opens the datasets and starts the job worker."""
+    state = ServiceState(
+        settings=settings, token_digests=load_token_digests(settings) if open_stores else frozenset()
+    )
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        if open_stores:
+            # Opening (or building the demo on first start) blocks; keep it off the event loop.
+            state.registry = await run_in_threadpool(StoreRegistry.open, settings)
+            state.jobs = JobRunner(settings, state.registry)
+            await run_in_threadpool(state.jobs.start)
+            log.info("wxshock %s ready: datasets %s", __version__, ", ".join(state.registry))
+        try:
+            yield
+        finally:
+            if state.jobs is not None:
+                await run_in_threadpool(state.jobs.stop)
+
+    app = FastAPI(
+        title="wxshock",
+        version=__version__,
+        description=DESCRIPTION,
+        lifespan=lifespan,
+        docs_url="/docs",
+        redoc_url=None,
+        openapi_tags=[
+            {"name": "service", "description": "Liveness and readiness."},
+            {"name": "datasets", "description": "The daily weather grids this server serves."},
+            {"name": "indicators", "description": "The catalog, and indicators on demand."},
+            {"name": "series", "description": "Daily area-weighted series."},
+            {"name": "jobs", "description": "Durable batch jobs for any number of features."},
+        ],
+    )
+    app.state.service = state
+    install_error_handlers(app)
+    for router in routers():
+        app.include_router(router)
+    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    if settings.cors_origins:
+        app.add_middleware(
+            CORSMiddleware,
+            allow_origins=settings.cors_origins,
+            allow_methods=["GET", "POST", "DELETE"],
+            allow_headers=["Authorization", "Content-Type", "Accept", "Idempotency-Key"],
+            expose_headers=[
+                "Location",
+                "X-Wxshock-Dataset",
+                "X-Wxshock-Fingerprint",
+                "X-Wxshock-Request-Hash",
+                "X-Wxshock-Software",
+            ],
+        )
+    app.openapi = lambda: _openapi_schema(app)  # type: ignore[method-assign]
+    return app
+
+
+def openapi_document() -> dict[str, Any]:
+    """The app's OpenAPI document, built with default settings and without opening any store."""
+    return create_app(Settings(), open_stores=False).openapi()
+
+
+def serve(settings: Settings) -> None:
+    """Run the service with uvicorn on settings.host:settings.port until interrupted."""
+    import uvicorn
+
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    uvicorn.run(
+        create_app(settings),
+        host=settings.host,
+        port=settings.port,
+        log_level="info",
+        timeout_graceful_shutdown=10,
+    )

@@ -1,0 +1,149 @@
+"""Response models of the routes that are not result tables (those are service.schemas.IndicatorResult)."""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+
+class ProblemItem(BaseModel):
+    """One failing field of a request: where (an RFC 6901 pointer into the body) and why."""
+
+    model_config = ConfigDict(extra="allow")
+    pointer: str
+    message: str
+
+
+class Problem(BaseModel):
+    """An RFC 9457 problem document; request errors add a pointer, a feature id or the limit exceeded."""
+
+    model_config = ConfigDict(extra="allow")
+    type: str
+    title: str
+    status: int
+    detail: str
+    instance: str | None = None
+    pointer: str | None = Field(default=None, description="RFC 6901 pointer to the failing part of the body.")
+    feature_id: str | None = None
+    field: str | None = None
+    limit: str | None = Field(default=None, description="The setting whose limit was exceeded.")
+    errors: list[ProblemItem] | None = None
+
+
+class Health(BaseModel):
+    """Liveness: the process answers."""
+
+    status: Literal["ok"]
+    version: str
+
+
+class Readiness(BaseModel):
+    """Readiness: the datasets are open and the job worker is alive."""
+
+    status: Literal["ready", "not ready"]
+    datasets: list[str]
+    job_worker: Literal["alive", "stopped"]
+    jobs_queued: int
+    jobs_running: int
+
+
+class Dataset(BaseModel):
+    """What a dataset holds: variables and units, grid, time range, calendar, weight layers, fingerprint."""
+
+    model_config = ConfigDict(extra="allow")
+    name: str
+    title: str = ""
+    variables: dict[str, dict[str, Any]] = Field(description="Per variable: units, standard_name, cell_methods.")
+    crs: dict[str, Any] = Field(description="name, epsg, is_geographic and the WKT of the grid's CRS.")
+    resolution: dict[str, Any]
+    bounds: dict[str, float] = Field(description="Outer cell edges in CRS units.")
+    lonlat_bounds: dict[str, float] | None = None
+    time: dict[str, Any] = Field(description="First and last day, number of days, calendar.")
+    years: list[int] = Field(description="First and last year with data.")
+    calendar: str
+    layers: list[str] = Field(description="Weight layers for {'weighting': {'layer': NAME}}.")
+    fingerprint: str = Field(description="Hash over the store's metadata and contents, recorded at write time.")
+
+
+class DatasetList(BaseModel):
+    """Every dataset this server serves; the first is the default."""
+
+    datasets: list[Dataset]
+
+
+class ParameterInfo(BaseModel):
+    """One indicator parameter: its default, unit, meaning and bounds."""
+
+    default: float
+    unit: str
+    description: str
+    minimum: float | None = None
+    maximum: float | None = None
+
+
+class IndicatorInfo(BaseModel):
+    """A catalog entry: name, unit, definition, published source and parameters."""
+
+    name: str
+    unit: str
+    definition: str
+    source: str
+    family: str
+    parameters: dict[str, ParameterInfo]
+    standardized: bool = Field(
+        description="The value is itself a standard-normal deviate (its z is the value)."
+    )
+    percent_of_normal: bool = Field(description="A percent of normal column is given too.")
+    uses_baseline: bool = Field(description="The value itself depends on the baseline period.")
+
+
+class IndicatorCatalog(BaseModel):
+    """Every indicator the service computes."""
+
+    indicators: list[IndicatorInfo]
+
+
+JobStateName = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+
+
+class JobStatus(BaseModel):
+    """A batch job's state, progress and, once succeeded, where its result is."""
+
+    id: str
+    state: JobStateName
+    dataset: str
+    format: Literal["json", "csv", "parquet"]
+    features_total: int
+    features_done: int
+    progress: float = Field(description="Share of features done, 0 to 1.")
+    seconds_left: float | None = Field(
+        description="Estimated seconds until done; null until the pace is known."
+    )
+    created_at: str = Field(description="ISO 8601, UTC.")
+    started_at: str | None
+    finished_at: str | None
+    attempts: int = Field(description="How many times the job was started (a server restart re-runs it).")
+    error: Problem | None = None
+    links: dict[str, str]
+
+
+def problem_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
+    """OpenAPI response entries for error statuses, each an application/problem+json Problem."""
+    reasons = {
+        400: "Malformed request",
+        401: "Missing or wrong bearer token",
+        404: "Not found",
+        406: "Format not available",
+        409: "Not in that state",
+        413: "Limit exceeded (body size or features)",
+        422: "The request cannot be served as written",
+        503: "Not ready",
+    }
+    return {
+        status: {
+            "description": reasons.get(status, "Error"),
+            "content": {"application/problem+json": {"schema": {"$ref": "#/components/schemas/Problem"}}},
+        }
+        for status in statuses
+    }

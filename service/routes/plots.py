@@ -1,0 +1,187 @@
+"""Pictures as PNG: a community's seasonal z-scores over the years, and one season-year's anomaly map."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Depends, Query, Response
+
+from service.errors import RequestError
+from service.routes.deps import AppSettings, Registry, check_feature_count, feature_total, require_token
+from service.routes.models import problem_responses
+from service.schemas import IndicatorRequest
+
+router = APIRouter(prefix="/v1/plots", tags=["plots"], dependencies=[Depends(require_token)])
+
+PNG_RESPONSE = {
+    200: {
+        "description": "A PNG picture",
+        "content": {"image/png": {"schema": {"type": "string", "format": "binary"}}},
+    }
+}
+Width = Annotated[int, Query(ge=200, le=4000, description="Picture width in pixels.")]
+Height = Annotated[int, Query(ge=150, le=4000, description="Picture height in pixels.")]
+
+
+def _one_feature(body: IndicatorRequest, feature_id: str | None) -> tuple[IndicatorRequest, str | None]:
+    """The request cut down to the one community to draw (by ``feature_id`` when several are sent)."""
+    features = getattr(body.features, "features", None)
+    if features is None or len(features) == 1:
+        return body, feature_id
+    if feature_id is None:
+        raise RequestError(
+            f"the request sends {len(features)} features; name the one to draw with ?feature_id=",
+            field="feature_id",
+            pointer="/features",
+        )
+    id_property = body.id_property
+
+    def id_of(feature: object) -> str | None:
+        if id_property:
+            value = (getattr(feature, "properties", None) or {}).get(id_property)
+        else:
+            value = getattr(feature, "id", None)
+        return None if value is None else str(value)
+
+    chosen = [f for f in features if id_of(f) == feature_id]
+    if not chosen:
+        known = [i for i in (id_of(f) for f in features) if i is not None][:10]
+        raise RequestError(
+            f"feature_id {feature_id!r} is not among the features sent ({known!r}...)", field="feature_id"
+        )
+    collection = body.features.model_copy(update={"features": chosen})
+    return body.model_copy(update={"features": collection}), feature_id
+
+
+def _with_plotted(body: IndicatorRequest, precipitation: str, temperature: str) -> IndicatorRequest:
+    """The request in the wide layout, asking for the two plotted indicators as well as its own."""
+    update: dict[str, object] = {"layout": "wide"}
+    if body.indicators is not None:
+        names = {i if isinstance(i, str) else i.name for i in body.indicators}
+        extra = [n for n in (precipitation, temperature) if n not in names]
+        update["indicators"] = [*body.indicators, *extra]
+    return body.model_copy(update=update)
+
+
+@router.post(
+    "/series",
+    operation_id="plotSeries",
+    response_class=Response,
+    responses={**PNG_RESPONSE, **problem_responses(400, 401, 404, 413, 422, 503)},
+)
+def plot_series(
+    body: IndicatorRequest,
+    registry: Registry,
+    settings: AppSettings,
+    feature_id: Annotated[
+        str | None, Query(description="Which community to draw when several are sent.")
+    ] = None,
+    precipitation: Annotated[
+        str, Query(description="Precipitation indicator of the upper panel.")
+    ] = "prcp_total",
+    temperature: Annotated[str, Query(description="Temperature indicator of the lower panel.")] = "tmean",
+    width: Width = 1000,
+    height: Height = 640,
+) -> Response:
+    """PNG of one community's seasonal z-scores over the years: class bands shaded, spells marked."""
+    from service import pipeline
+    from service.encode import provenance_headers
+    from service.plots import series_plot
+
+    check_feature_count(
+        feature_total(body.features),
+        settings.max_features_on_demand,
+        "max_features_on_demand",
+        on_demand=True,
+    )
+    one, wanted = _one_feature(body, feature_id)
+    store = registry.get_dataset(one.dataset)
+    result = pipeline.run(_with_plotted(one, precipitation, temperature), store, settings)
+    drawn = wanted or str(result.frame["feature_id"].iloc[0])
+    png = series_plot(
+        result.frame,
+        drawn,
+        precipitation=precipitation,
+        temperature=temperature,
+        edges=one.classes.edges,
+        spells=[s.name for s in one.spells],
+        title=f"community {drawn}: seasonal anomalies against {_baseline_text(result.provenance)}",
+        size_px=(width, height),
+    )
+    return Response(png, media_type="image/png", headers=provenance_headers(result.provenance))
+
+
+def _baseline_text(provenance: dict) -> str:
+    """The resolved baseline as words for a title: '1981-1990' or 'the trailing 10 seasons'."""
+    baseline = (provenance.get("request") or {}).get("baseline") or {}
+    if "trailing" in baseline:
+        return f"the trailing {baseline['trailing']} seasons"
+    if "start" in baseline:
+        return f"{baseline['start']}-{baseline['end']}"
+    return "the baseline"
+
+
+@router.post(
+    "/map",
+    operation_id="plotMap",
+    response_class=Response,
+    responses={**PNG_RESPONSE, **problem_responses(400, 401, 404, 413, 422, 503)},
+)
+def plot_map(
+    body: IndicatorRequest,
+    registry: Registry,
+    settings: AppSettings,
+    year: Annotated[
+        int | None, Query(ge=1, le=9999, description="Season-year; default the last served.")
+    ] = None,
+    indicator: Annotated[str, Query(description="prcp_total, tmean, tmax_mean or tmin_mean.")] = "prcp_total",
+    width: Width = 900,
+    height: Height = 700,
+) -> Response:
+    """PNG of one season-year's anomaly (z) over the grid, with the requested communities outlined."""
+    from service.geometry import parse_features
+    from service.indicators.table import resolve_request
+    from service.maps import anomaly_field, to_grid_crs
+    from service.plots import map_plot
+
+    check_feature_count(
+        feature_total(body.features),
+        settings.max_features_on_demand,
+        "max_features_on_demand",
+        on_demand=True,
+    )
+    store = registry.get_dataset(body.dataset)
+    parsed = parse_features(
+        body.features.model_dump(mode="json", exclude_none=False),
+        id_property=body.id_property,
+        crs=body.crs,
+        repair=body.repair,
+        max_vertices=settings.max_vertices_per_feature,
+    )
+    resolved = resolve_request(body, store.dates)
+    field = anomaly_field(
+        store,
+        indicator,
+        year if year is not None else resolved.years.end,
+        season=resolved.season,
+        baseline=resolved.baseline,
+        max_missing_share=(
+            body.max_missing_share if body.max_missing_share is not None else settings.max_missing_share
+        ),
+    )
+    grid = store.grid
+    outlines = to_grid_crs([f.geometry for f in parsed.features], parsed.crs, grid.crs())
+    first, last = field.baseline_years
+    png = map_plot(
+        field.z,
+        grid.x_edges,
+        grid.y_edges,
+        outlines,
+        labels=parsed.ids,
+        family=field.family,
+        title=f"{indicator} {field.year}: z against {first}-{last} ({store.name})",
+        geographic=grid.is_geographic,
+        size_px=(width, height),
+    )
+    headers = {"X-Wxshock-Dataset": store.name, "X-Wxshock-Fingerprint": store.fingerprint}
+    return Response(png, media_type="image/png", headers=headers)
