@@ -1,0 +1,373 @@
+"""Seasons: which days of which year form each season-year, and how complete each season-year is.
+
+A season is the calendar year, a run of whole months, or a window 'MM-DD' to 'MM-DD' (both inclusive) that
+may cross the new year; a season that crosses the new year belongs to the year in which it ends (a November to
+April rainy season of 1990-91 is season-year 1991). A :class:`~service.schemas.PropertySeason` gives each
+feature its own season from one of its properties; features with the same season are cut together.
+
+Calendars: ``standard``/``gregorian``/``proleptic_gregorian`` (Gregorian leap years), ``julian`` (every
+fourth year), ``noleap``/``365_day``, ``all_leap``/``366_day`` and ``360_day`` (twelve months of 30 days).
+A window holds the days whose month-day lies between its start and its end, compared as MMDD numbers, so:
+
+- Feb 29 (and Feb 30 in ``360_day``) is in a window exactly when it lies between start and end, e.g. in
+  '02-01' to '03-15' but not in '03-01' to '02-28' (end at '02-29' to include it where it exists);
+- a start that does not exist in a year (Feb 29 outside leap years, '03-31' in ``360_day``) starts the
+  season on the next day that does; an end that does not exist ends it on the last day before.
+
+Only season-years whose whole span of calendar days lies inside the data's first and last date are cut
+(a November-April season on data starting 1 January begins with the season-year of the next year). Days of
+a season-year absent from the data, or with any of tmax, tmin, prcp missing, count as missing; when the
+missing share of a (feature, season-year) exceeds ``max_missing_share`` (0.10 by default, common practice)
+that season-year is blanked (all its days NaN in the cube) so no indicator reports a short total.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from pydantic import ValidationError
+
+from service.errors import FeatureError, RequestError, StoreFormatError
+from service.indicators.base import DailySeries, SeasonCube
+from service.schemas import MonthsSeason, PropertySeason, Season, WindowSeason
+
+DEFAULT_MAX_MISSING_SHARE = (
+    0.10  # common practice: a season with more than ~10 % missing days is not reported
+)
+
+_CALENDARS = {
+    "standard": "gregorian",
+    "gregorian": "gregorian",
+    "proleptic_gregorian": "gregorian",
+    "julian": "julian",
+    "noleap": "noleap",
+    "365_day": "noleap",
+    "all_leap": "all_leap",
+    "366_day": "all_leap",
+    "360_day": "360_day",
+}
+
+
+@dataclass(frozen=True)
+class SeasonDefinition:
+    """A season as an inclusive range of month-days; ``start > end`` means it crosses the new year."""
+
+    start: tuple[int, int]  # (month, day)
+    end: tuple[int, int]  # (month, day); day 31 on a months season means "to the month's last day"
+    label: str
+
+    @property
+    def start_key(self) -> int:
+        """The start as an MMDD number."""
+        return self.start[0] * 100 + self.start[1]
+
+    @property
+    def end_key(self) -> int:
+        """The end as an MMDD number."""
+        return self.end[0] * 100 + self.end[1]
+
+    @property
+    def crosses_new_year(self) -> bool:
+        """True when the season runs from one year into the next."""
+        return self.start_key > self.end_key
+
+
+@dataclass(frozen=True)
+class SeasonGroup:
+    """Features (rows of the daily series) that share one season."""
+
+    season: SeasonDefinition
+    feature_index: np.ndarray  # (feature,) int
+
+
+@dataclass(frozen=True)
+class SeasonCut:
+    """A season cut from a daily series: the cube and each (feature, season-year)'s completeness."""
+
+    cube: SeasonCube
+    season: SeasonDefinition
+    expected_days: np.ndarray  # (year,) int days of each season-year in the calendar
+    present_share: np.ndarray  # (feature, year) float64 share of those days with tmax, tmin and prcp present
+    complete: np.ndarray  # (feature, year) bool: missing share within the allowed share
+
+
+# --- season specifications ----------------------------------------------------------------------------------
+
+
+def season_definition(season: Season) -> SeasonDefinition:
+    """The month-day range of a calendar-year, months or window season (not a property season)."""
+    if season == "year":
+        return SeasonDefinition(start=(1, 1), end=(12, 31), label="year")
+    if isinstance(season, MonthsSeason):
+        months = season.months
+        if len(months) == 12 and months[0] == 1:
+            return SeasonDefinition(start=(1, 1), end=(12, 31), label="year")
+        label = "months " + ",".join(str(m) for m in months)
+        return SeasonDefinition(start=(months[0], 1), end=(months[-1], 31), label=label)
+    if isinstance(season, WindowSeason):
+        start = (int(season.start[:2]), int(season.start[3:]))
+        end = (int(season.end[:2]), int(season.end[3:]))
+        return SeasonDefinition(start=start, end=end, label=f"{season.start} to {season.end}")
+    raise RequestError(f"season {season!r} is not 'year', a months list or a window", field="season")
+
+
+def parse_property_season(value: Any, feature_id: str, property_name: str) -> SeasonDefinition:
+    """The season a feature property holds: "year", a months list, {"months": [...]} or {"start", "end"}."""
+    try:
+        if value == "year":
+            return season_definition("year")
+        if isinstance(value, list):
+            return season_definition(MonthsSeason(months=value))
+        if isinstance(value, dict) and "months" in value:
+            return season_definition(MonthsSeason(**value))
+        if isinstance(value, dict):
+            return season_definition(WindowSeason(**value))
+    except ValidationError as exc:
+        reason = "; ".join(err["msg"] for err in exc.errors())
+        raise FeatureError(
+            f"feature {feature_id!r}: property {property_name!r} = {value!r} is not a valid season ({reason})",
+            feature_id=feature_id,
+            field="season.property",
+        ) from None
+    raise FeatureError(
+        f'feature {feature_id!r}: property {property_name!r} = {value!r} is not a season; give "year", a '
+        f'months list such as [5, 6, 7] or a window such as {{"start": "11-01", "end": "04-30"}}',
+        feature_id=feature_id,
+        field="season.property",
+    )
+
+
+def season_groups(
+    season: Season, feature_ids: Sequence[str], properties: Sequence[dict | None]
+) -> list[SeasonGroup]:
+    """Features grouped by season, groups in order of first appearance; one group unless a property season."""
+    n = len(feature_ids)
+    if not isinstance(season, PropertySeason):
+        return [SeasonGroup(season_definition(season), np.arange(n, dtype=np.int64))]
+    if len(properties) != n:
+        raise RequestError(
+            f"{len(properties)} property sets for {n} features; give one per feature", field="season.property"
+        )
+    members: dict[SeasonDefinition, list[int]] = {}
+    for i, (fid, props) in enumerate(zip(feature_ids, properties, strict=True)):
+        if not props or season.property not in props:
+            raise FeatureError(
+                f"feature {fid!r} has no property {season.property!r}, which the request names as the season "
+                f"property; add it to every feature or use one season for all",
+                feature_id=fid,
+                field="season.property",
+            )
+        definition = parse_property_season(props[season.property], fid, season.property)
+        members.setdefault(definition, []).append(i)
+    return [SeasonGroup(d, np.asarray(ix, dtype=np.int64)) for d, ix in members.items()]
+
+
+# --- calendars ----------------------------------------------------------------------------------------------
+
+
+def calendar_kind(calendar: str) -> str:
+    """The leap-year rule of a CF calendar name: gregorian, julian, noleap, all_leap or 360_day."""
+    try:
+        return _CALENDARS[calendar.lower()]
+    except KeyError:
+        raise StoreFormatError(
+            f"calendar {calendar!r} is not supported; supported: {', '.join(sorted(_CALENDARS))}"
+        ) from None
+
+
+def infer_calendar(month: np.ndarray, day: np.ndarray, year: np.ndarray) -> str:
+    """A calendar consistent with the dates: 360_day if Feb 30 occurs, noleap if a Gregorian Feb 29 is absent."""
+    feb = month == 2
+    if np.any(feb & (day == 30)):
+        return "360_day"
+    if np.any(feb & (day == 29)):
+        return "standard"
+    leap_years = np.unique(year[feb & (day == 28)])
+    leap_years = leap_years[(leap_years % 4 == 0) & ((leap_years % 100 != 0) | (leap_years % 400 == 0))]
+    # a Gregorian leap year whose Feb 28 is followed by Mar 1 in the data: noleap
+    for y in leap_years:
+        if np.any((year == y) & (month == 3) & (day == 1)):
+            return "noleap"
+    return "standard"
+
+
+def calendar_dates(
+    first_year: int, last_year: int, calendar: str
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(year, month, day) of every calendar day from 1 Jan ``first_year`` to 31 Dec ``last_year``."""
+    kind = calendar_kind(calendar)
+    years = np.arange(first_year, last_year + 1)
+    if kind == "360_day":
+        per_year = 360
+        month = np.tile(np.repeat(np.arange(1, 13), 30), years.size)
+        day = np.tile(np.tile(np.arange(1, 31), 12), years.size)
+        return np.repeat(years, per_year), month, day
+    if kind == "gregorian":
+        leap = (years % 4 == 0) & ((years % 100 != 0) | (years % 400 == 0))
+    elif kind == "julian":
+        leap = years % 4 == 0
+    elif kind == "all_leap":
+        leap = np.ones(years.size, dtype=bool)
+    else:
+        leap = np.zeros(years.size, dtype=bool)
+    month_of_day = np.repeat(np.arange(1, 13), (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31))
+    day_of_month = np.concatenate(
+        [np.arange(1, n + 1) for n in (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31)]
+    )
+    is_feb29 = (month_of_day == 2) & (day_of_month == 29)
+    keep = ~is_feb29[None, :] | leap[:, None]  # (year, 366)
+    year = np.broadcast_to(years[:, None], keep.shape)[keep]
+    month = np.broadcast_to(month_of_day[None, :], keep.shape)[keep]
+    day = np.broadcast_to(day_of_month[None, :], keep.shape)[keep]
+    return year, month, day
+
+
+def season_labels(
+    year: np.ndarray, month: np.ndarray, day: np.ndarray, season: SeasonDefinition
+) -> tuple[np.ndarray, np.ndarray]:
+    """For each date: whether it is in the season, and the season-year it belongs to (the year it ends)."""
+    key = month * 100 + day
+    if not season.crosses_new_year:
+        return (key >= season.start_key) & (key <= season.end_key), year
+    late = key >= season.start_key
+    return late | (key <= season.end_key), np.where(late, year + 1, year)
+
+
+@dataclass(frozen=True)
+class SeasonYears:
+    """The season-years a record can serve whole, with their length in calendar days."""
+
+    years: np.ndarray  # (year,) int, ascending
+    expected_days: np.ndarray  # (year,) int
+
+
+def _date_keys(year: np.ndarray, month: np.ndarray, day: np.ndarray) -> np.ndarray:
+    """Dates as YYYYMMDD integers (chronological order for every calendar)."""
+    return year.astype(np.int64) * 10_000 + month * 100 + day
+
+
+def servable_season_years(
+    year: np.ndarray, month: np.ndarray, day: np.ndarray, calendar: str, season: SeasonDefinition
+) -> SeasonYears:
+    """Season-years whose every calendar day lies between the record's first and last date."""
+    if year.size == 0:
+        return SeasonYears(np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
+    keys = _date_keys(year, month, day)
+    first_key, last_key = keys.min(), keys.max()
+    cal_year, cal_month, cal_day = calendar_dates(int(year.min()) - 1, int(year.max()) + 1, calendar)
+    cal_keys = _date_keys(cal_year, cal_month, cal_day)
+    inside, season_year = season_labels(cal_year, cal_month, cal_day, season)
+    sy = season_year[inside]
+    sk = cal_keys[inside]
+    years, start = np.unique(sy, return_index=True)
+    counts = np.bincount(np.searchsorted(years, sy), minlength=years.size)
+    first_day = sk[start]
+    last_day = sk[start + counts - 1]
+    whole = (first_day >= first_key) & (last_day <= last_key)
+    return SeasonYears(years[whole].astype(np.int64), counts[whole].astype(np.int64))
+
+
+# --- cutting ------------------------------------------------------------------------------------------------
+
+
+def cut_season(
+    daily: DailySeries,
+    season: SeasonDefinition,
+    feature_index: np.ndarray | None = None,
+    *,
+    max_missing_share: float = DEFAULT_MAX_MISSING_SHARE,
+) -> SeasonCut:
+    """Cut the rows ``feature_index`` of ``daily`` into season-years (feature, season_year, day).
+
+    Vectorised over features and days: one gather per variable. The cube holds every season-year the record
+    serves whole; a (feature, season-year) whose share of missing days (absent from the record, or any
+    variable NaN) exceeds ``max_missing_share`` is NaN throughout and ``complete`` is False there.
+    """
+    n_feature_all = daily.tmax.shape[0]
+    if feature_index is None:
+        feature_index = np.arange(n_feature_all, dtype=np.int64)
+    keys = _date_keys(daily.year, daily.month, daily.day)
+    if keys.size > 1 and np.any(np.diff(keys) <= 0):
+        raise StoreFormatError(
+            "the daily series' dates are not strictly increasing; time must be sorted, no repeats"
+        )
+    served = servable_season_years(daily.year, daily.month, daily.day, daily.calendar, season)
+    inside, season_year = season_labels(daily.year, daily.month, daily.day, season)
+    keep = inside & np.isin(season_year, served.years)
+    steps = np.flatnonzero(keep)
+    row = np.searchsorted(served.years, season_year[steps])
+    group_start = np.searchsorted(row, np.arange(served.years.size))  # rows ascending because time is sorted
+    position = np.arange(steps.size) - group_start[row]
+    width = int(position.max()) + 1 if steps.size else 0
+    time_index = np.full((served.years.size, width), -1, dtype=np.int64)
+    time_index[row, position] = steps
+    in_season = time_index >= 0
+    safe = np.where(in_season, time_index, 0)
+
+    whole_rows = feature_index.size == n_feature_all and np.array_equal(
+        feature_index, np.arange(n_feature_all)
+    )
+
+    def gather(values: np.ndarray) -> np.ndarray:
+        source = values if whole_rows else values[feature_index]
+        out = np.take(source, safe, axis=1)
+        if not np.issubdtype(out.dtype, np.floating):
+            out = out.astype(np.float64)
+        out[:, ~in_season] = np.nan
+        return out
+
+    tmax, tmin, prcp = gather(daily.tmax), gather(daily.tmin), gather(daily.prcp)
+    present = np.count_nonzero(~(np.isnan(tmax) | np.isnan(tmin) | np.isnan(prcp)), axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        present_share = np.where(served.expected_days > 0, present / np.maximum(served.expected_days, 1), 0.0)
+    complete = (1.0 - present_share) <= max_missing_share + 1e-12
+    if not complete.all():
+        blank = ~complete
+        tmax[blank] = np.nan
+        tmin[blank] = np.nan
+        prcp[blank] = np.nan
+    cube = SeasonCube(
+        years=served.years,
+        tmax=tmax,
+        tmin=tmin,
+        prcp=prcp,
+        in_season=in_season,
+        dayofyear=np.where(in_season, daily.dayofyear[safe], 0),
+        time_index=time_index,
+        daily=daily,
+        feature_index=feature_index,
+    )
+    return SeasonCut(
+        cube=cube,
+        season=season,
+        expected_days=served.expected_days,
+        present_share=present_share.astype(np.float64),
+        complete=complete,
+    )
+
+
+def incomplete_season_warnings(
+    cut: SeasonCut, feature_ids: Sequence[str], years: np.ndarray, max_missing_share: float
+) -> list[dict[str, Any]]:
+    """One warning per (feature, season-year) of ``years`` left null because too many days are missing."""
+    rows = np.searchsorted(cut.cube.years, years)
+    complete = cut.complete[:, rows]
+    warnings: list[dict[str, Any]] = []
+    for f, y in zip(*np.nonzero(~complete), strict=True):
+        missing = 1.0 - cut.present_share[f, rows[y]]
+        warnings.append(
+            {
+                "feature_id": feature_ids[int(cut.cube.feature_index[f])],
+                "indicator": None,
+                "year": int(years[y]),
+                "reason": (
+                    f"season {cut.season.label} of {int(years[y])}: {missing:.1%} of its "
+                    f"{int(cut.expected_days[rows[y]])} days are missing (allowed {max_missing_share:.0%}); "
+                    f"its values are left null"
+                ),
+            }
+        )
+    return warnings
