@@ -1,0 +1,272 @@
+"""Weights x chunks -> (feature, time) daily community series, as dask tasks (nothing is computed here).
+
+For every time block (one store chunk along time) and every spatial chunk that some feature touches, one
+task reads the chunk's stored integers (``Store.read_raw``), and multiplies the chunk's sparse weight
+sub-matrix (features touching it x its cells, int16 scale factor folded in) with the (cells x days) block.
+Partial sums (weighted sum and the weight of the cells with data) are added up by a tree reduction;
+the mean is their ratio plus the add_offset, NaN where no weight is left. Only chunks that some feature
+touches are read, each once per variable; a task holds one chunk, so memory is bounded by a few chunks
+per thread, not by the store.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import dask
+import dask.array as da
+import numpy as np
+import xarray as xr
+from scipy import sparse
+
+from service.errors import RequestError
+
+if TYPE_CHECKING:
+    from service.geometry import Weights
+    from service.store import Store
+
+VARIABLE_UNITS = {"tmax": "degC", "tmin": "degC", "prcp": "mm/day", "tmean": "degC"}
+# Partial sums combined per reduction step: few levels (each level copies the partial sums once),
+# while no step holds more than this many partials at a time.
+REDUCTION_FAN_IN = 8
+# A day's mean is missing when the weight of its cells with data is below this share of the feature's
+# total weight (guards a denominator that is zero up to rounding).
+MIN_WEIGHT_SHARE = 1e-9
+
+
+@dataclass(frozen=True)
+class ChunkWeights:
+    """The weights of the features touching one spatial chunk of the store.
+
+    ``y``/``x`` the chunk's index slices; ``rows`` the feature rows touching it (ascending); ``matrix``
+    (len(rows), cells of the chunk) CSR with local cell = (iy - y.start) * width + (ix - x.start).
+    """
+
+    y: slice
+    x: slice
+    rows: np.ndarray
+    matrix: sparse.csr_matrix
+
+
+@dataclass(frozen=True)
+class Partial:
+    """Partial sums over some chunks for the features ``rows``: (rows, days) weighted sum and weights.
+
+    The weight of cells with data is ``total[:, None] + correction`` (``correction`` None when every
+    cell had data on every day, which is the usual case and saves a (rows, days) array).
+    """
+
+    rows: np.ndarray
+    weighted_sum: np.ndarray
+    total: np.ndarray
+    correction: np.ndarray | None
+
+
+def chunk_weights(weights: Weights, shape: tuple[int, int], chunk: tuple[int, int]) -> list[ChunkWeights]:
+    """The weight matrix split by the store's spatial chunks, only chunks with some weight, in grid order."""
+    ny, nx = shape
+    cy, cx = chunk
+    coo = weights.matrix.tocoo()
+    keep = coo.data != 0
+    row, col, value = coo.row[keep], coo.col[keep], coo.data[keep]
+    iy, ix = np.divmod(col.astype(np.int64), nx)
+    chunks_x = -(-nx // cx)
+    chunk_id = (iy // cy) * chunks_x + ix // cx
+    order = np.argsort(chunk_id, kind="stable")
+    row, iy, ix, value, chunk_id = row[order], iy[order], ix[order], value[order], chunk_id[order]
+    starts = np.flatnonzero(np.r_[True, np.diff(chunk_id) != 0])
+    ends = np.r_[starts[1:], len(chunk_id)]
+    plan = []
+    for s, e in zip(starts, ends, strict=True):
+        cid = int(chunk_id[s])
+        by, bx = divmod(cid, chunks_x)
+        y = slice(by * cy, min((by + 1) * cy, ny))
+        x = slice(bx * cx, min((bx + 1) * cx, nx))
+        width = x.stop - x.start
+        rows, local_row = np.unique(row[s:e], return_inverse=True)
+        local_cell = (iy[s:e] - y.start) * width + (ix[s:e] - x.start)
+        matrix = sparse.csr_matrix(
+            (value[s:e], (local_row, local_cell)), shape=(len(rows), (y.stop - y.start) * width)
+        )
+        matrix.sum_duplicates()
+        plan.append(ChunkWeights(y=y, x=x, rows=rows, matrix=matrix))
+    return plan
+
+
+def chunk_sums(
+    store: Store, var: str, chunk: ChunkWeights, t: slice, scale_factor: float, fill_value: int
+) -> Partial:
+    """One task: read one chunk's stored integers and return its features' partial sums (scaled units)."""
+    raw = store.read_raw(var, chunk.y, chunk.x, t)
+    block = raw.reshape(-1, raw.shape[-1])  # (cells, days), days contiguous: no transpose
+    matrix = chunk.matrix
+    total = np.asarray(matrix.sum(axis=1)).ravel()
+    used = np.zeros(block.shape[0], dtype=bool)
+    used[matrix.indices] = True
+    missing = block == fill_value
+    bad = np.flatnonzero(used & missing.any(axis=1))
+    correction = None
+    if bad.size:
+        # Zero the missing values of the few cells that have them, and take their weight off those days.
+        rows_with_gaps = block[bad]
+        rows_with_gaps[missing[bad]] = 0
+        block = block if block.flags.writeable else block.copy()
+        block[bad] = rows_with_gaps
+        correction = -(matrix[:, bad] @ missing[bad].astype(np.float64))
+    weighted_sum = (matrix * scale_factor) @ block
+    return Partial(chunk.rows, np.asarray(weighted_sum, dtype=np.float64), total, correction)
+
+
+def combine(partials: Sequence[Partial]) -> Partial:
+    """The sum of partial sums over different chunks (features may repeat between them)."""
+    if len(partials) == 1:
+        return partials[0]
+    rows = np.unique(np.concatenate([p.rows for p in partials]))
+    days = partials[0].weighted_sum.shape[1]
+    weighted_sum = np.zeros((len(rows), days))
+    total = np.zeros(len(rows))
+    correction = None
+    for p in partials:
+        at = np.searchsorted(rows, p.rows)
+        weighted_sum[at] += p.weighted_sum
+        total[at] += p.total
+        if p.correction is not None:
+            if correction is None:
+                correction = np.zeros((len(rows), days))
+            correction[at] += p.correction
+    return Partial(rows, weighted_sum, total, correction)
+
+
+def finish(partial: Partial | None, n_features: int, days: int, add_offset: float) -> np.ndarray:
+    """(feature, day) means in the variable's units from the fully reduced sums; NaN where no weight."""
+    out = np.full((n_features, days), np.nan)
+    if partial is None:
+        return out
+    weight = np.broadcast_to(partial.total[:, None], partial.weighted_sum.shape)
+    if partial.correction is not None:
+        weight = weight + partial.correction
+    enough = weight > partial.total[:, None] * MIN_WEIGHT_SHARE
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(enough, partial.weighted_sum / weight + add_offset, np.nan)
+    out[partial.rows] = mean
+    return out
+
+
+def _tree(leaves: list[Any], name: str) -> Any:
+    """Delayed sum of delayed partials, REDUCTION_FAN_IN at a time."""
+    level = 0
+    while len(leaves) > 1:
+        leaves = [
+            dask.delayed(combine, pure=False)(
+                leaves[i : i + REDUCTION_FAN_IN], dask_key_name=f"{name}-combine-{level}-{i}"
+            )
+            for i in range(0, len(leaves), REDUCTION_FAN_IN)
+        ]
+        level += 1
+    return leaves[0] if leaves else None
+
+
+def _time_range(time: slice, n_times: int) -> tuple[int, int]:
+    """[start, stop) day indices of a slice of the store's days (step 1)."""
+    if time.step not in (None, 1):
+        raise RequestError(f"time slice step {time.step!r} is not supported; aggregate contiguous days")
+    start, stop, _ = time.indices(n_times)
+    return start, max(start, stop)
+
+
+def aggregate(
+    store: Store,
+    weights: Weights,
+    *,
+    variables: Sequence[str] = ("tmax", "tmin", "prcp"),
+    time: slice = slice(None),
+) -> xr.Dataset:
+    """Lazy daily weighted means per feature: Dataset (feature, time) of float64, dask-backed.
+
+    One variable per requested name (tmax, tmin in degC, prcp in mm/day; tmean = (tmax + tmin) / 2 is
+    added when both temperatures are there). A cell missing on a day drops out of that day's mean and
+    the remaining weights renormalise; a day with no cell left is NaN. ``time`` selects store days by
+    index. Per-feature coverage, n_cells, area_km2, latitude and longitude ride along as coordinates.
+    """
+    n_features = len(weights.feature_ids)
+    ny, nx = store.grid.shape
+    if weights.matrix.shape != (n_features, ny * nx):
+        raise ValueError(
+            f"weights of shape {weights.matrix.shape} do not fit store {store.name!r} with {ny} x {nx} cells"
+        )
+    unknown = [v for v in variables if v not in store.variables]
+    if unknown:
+        raise RequestError(
+            f"dataset {store.name!r} has no variable {unknown[0]!r}; it has {list(store.variables)!r}",
+            field="variables",
+        )
+    start, stop = _time_range(time, store.n_times)
+    cy, cx, ct = store.chunk_shape
+    plan = chunk_weights(weights, (ny, nx), (cy, cx))
+    blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
+    token = dask.base.tokenize(weights.key, store.location, store.fingerprint, start, stop)
+    arrays: dict[str, da.Array] = {}
+    for var in variables:
+        enc = store.encoding(var)
+        pieces = []
+        for t0, t1 in blocks:
+            name = f"wxshock-{var}-{token}-{t0}"
+            leaves = [
+                dask.delayed(chunk_sums, pure=False)(
+                    store,
+                    var,
+                    chunk,
+                    slice(t0, t1),
+                    enc.scale_factor,
+                    enc.fill_value,
+                    dask_key_name=f"{name}-chunk-{k}",
+                )
+                for k, chunk in enumerate(plan)
+            ]
+            reduced = _tree(leaves, name)
+            means = dask.delayed(finish, pure=False)(
+                reduced, n_features, t1 - t0, enc.add_offset, dask_key_name=f"{name}-mean"
+            )
+            pieces.append(da.from_delayed(means, shape=(n_features, t1 - t0), dtype=np.float64))
+        arrays[var] = (
+            da.concatenate(pieces, axis=1) if pieces else da.zeros((n_features, 0), dtype=np.float64)
+        )
+    if "tmax" in arrays and "tmin" in arrays:
+        arrays["tmean"] = (arrays["tmax"] + arrays["tmin"]) / 2.0
+    coords = {
+        "feature": np.asarray(weights.feature_ids, dtype=object),
+        "time": store.times[start:stop],
+        "coverage": ("feature", np.asarray(weights.coverage, dtype=np.float64)),
+        "n_cells": ("feature", np.asarray(weights.n_cells, dtype=np.int64)),
+        "area_km2": ("feature", np.asarray(weights.area_km2, dtype=np.float64)),
+        "latitude": ("feature", np.asarray(weights.latitude, dtype=np.float64)),
+        "longitude": ("feature", np.asarray(weights.longitude, dtype=np.float64)),
+    }
+    data_vars = {
+        var: (
+            ("feature", "time"),
+            array,
+            {"units": VARIABLE_UNITS.get(var, ""), "cell_methods": "area: mean"},
+        )
+        for var, array in arrays.items()
+    }
+    ds = xr.Dataset(data_vars, coords=coords)
+    ds.attrs.update(
+        {
+            "dataset": store.name,
+            "fingerprint": store.fingerprint,
+            "weights_key": weights.key,
+            "weighting": weights.weighting,
+        }
+    )
+    return ds
+
+
+def _block_starts(start: int, stop: int, ct: int) -> list[int]:
+    """First day of every time block: the store's time chunks, cut to [start, stop)."""
+    if stop <= start:
+        return []
+    first = [start] + [b for b in range((start // ct + 1) * ct, stop, ct)]
+    return first
