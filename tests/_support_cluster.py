@@ -239,7 +239,6 @@ class S3Server:
 @pytest.fixture(scope="session")
 def s3_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[S3Server]:
     """moto's S3 server mode on a free port with one empty bucket, stopped at the end."""
-    import s3fs
 
     root = tmp_path_factory.mktemp("moto")
     port = free_port()
@@ -260,8 +259,16 @@ def s3_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[S3Server]:
             process=process,
             log_path=log_path,
         )
-        fs = s3fs.S3FileSystem(**server.storage_options(), skip_instance_cache=True)
-        fs.mkdir(server.bucket)
+        # us-east-1 takes no location constraint, which s3fs's mkdir would send; boto3 comes with moto.
+        import boto3
+
+        boto3.client(
+            "s3",
+            endpoint_url=server.endpoint_url,
+            aws_access_key_id=server.access_key_id,
+            aws_secret_access_key=server.secret_access_key,
+            region_name=server.region,
+        ).create_bucket(Bucket=server.bucket)
         yield server
     finally:
         _stop_group(process)

@@ -1,0 +1,165 @@
+"""Stores on S3-compatible object storage (moto's server on 127.0.0.1): same values as from disk, no leaked keys."""
+
+from __future__ import annotations
+
+import json
+import logging
+import pickle
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from service import cluster
+from service.aggregate import aggregate
+from service.errors import StoreError, problem_for
+from service.geometry import compute_weights, parse_features
+from service.settings import Settings
+from service.store import open_store, write_store
+from tests import _support_cluster as support
+from tests._support_cluster import DaskProcesses, S3Server
+from tests._support_store import make_dataset
+
+s3_server = support.s3_server  # session fixtures, used by name below
+dask_cluster = support.dask_cluster
+
+pytestmark = [pytest.mark.s3, pytest.mark.timeout(120)]
+
+WHOLE = (slice(None), slice(None), slice(None))
+
+
+@pytest.fixture(scope="module")
+def dataset():
+    """A small geographic grid over three years with a water cell and a population layer."""
+    return make_dataset(ny=8, nx=7, years=(2000, 2002), missing_cells=[(0, 0)], seed=11)
+
+
+@pytest.fixture(scope="module")
+def pair(dataset, s3_server: S3Server, tmp_path_factory: pytest.TempPathFactory):
+    """The same Dataset written to disk and to s3://bucket/.../grid.zarr: (local store, s3 store, fingerprints)."""
+    local_path = tmp_path_factory.mktemp("s3-pair") / "grid.zarr"
+    local_fingerprint = write_store(dataset, local_path)
+    url = f"s3://{s3_server.bucket}/round-trip/grid.zarr"
+    s3_fingerprint = write_store(dataset, url, storage_options=s3_server.storage_options())
+    local = open_store(local_path)
+    remote = open_store(url, storage_options=s3_server.storage_options())
+    return local, remote, (local_fingerprint, s3_fingerprint)
+
+
+def _secrets(s3_server: S3Server) -> tuple[str, str]:
+    return s3_server.access_key_id, s3_server.secret_access_key
+
+
+def test_store_on_s3_reads_the_same_as_from_disk(pair) -> None:
+    local, remote, (local_fingerprint, s3_fingerprint) = pair
+    assert local_fingerprint == s3_fingerprint == remote.fingerprint == local.fingerprint
+    assert remote.name == local.name == "grid"
+    assert remote.grid == local.grid and remote.calendar == local.calendar
+    for variable in local.variables:
+        a, b = local.read(variable, *WHOLE), remote.read(variable, *WHOLE)
+        assert a.tobytes() == b.tobytes(), variable  # NaN bit patterns included
+        assert np.isnan(b[0, 0]).all()  # the water cell stays missing
+        assert local.read_raw(variable, *WHOLE).tobytes() == remote.read_raw(variable, *WHOLE).tobytes()
+    for layer in local.layers:
+        assert local.read_layer(layer).tobytes() == remote.read_layer(layer).tobytes()
+    np.testing.assert_array_equal(local.data_mask(), remote.data_mask())
+    local_description, remote_description = local.describe(), remote.describe()
+    assert remote_description.pop("location") == "s3://wxshock-stores/round-trip/grid.zarr"
+    local_description.pop("location")
+    assert remote_description == local_description
+
+
+def test_store_on_s3_reopens_after_pickling_as_a_worker_does(pair) -> None:
+    _, remote, _ = pair
+    copy = pickle.loads(pickle.dumps(remote))
+    window = (slice(2, 5), slice(1, 4), slice(300, 400))
+    assert copy.read("prcp", *window).tobytes() == remote.read("prcp", *window).tobytes()
+
+
+def test_credentials_never_in_repr_or_description(pair, s3_server: S3Server) -> None:
+    _, remote, _ = pair
+    text = repr(remote) + str(remote) + json.dumps(remote.describe(), default=str)
+    for secret in _secrets(s3_server):
+        assert secret not in text
+
+
+@pytest.mark.parametrize("case", ["missing store", "missing bucket", "not a store"])
+def test_credentials_never_in_store_errors_or_problem_documents(
+    case: str, s3_server: S3Server, caplog: pytest.LogCaptureFixture
+) -> None:
+    import s3fs
+
+    options = s3_server.storage_options()
+    if case == "not a store":
+        fs = s3fs.S3FileSystem(**options, skip_instance_cache=True)
+        fs.pipe(f"{s3_server.bucket}/junk/grid.zarr/readme.txt", b"not zarr")
+    url = {
+        "missing store": f"s3://{s3_server.bucket}/nowhere/grid.zarr",
+        "missing bucket": "s3://no-such-bucket/grid.zarr",
+        "not a store": f"s3://{s3_server.bucket}/junk/grid.zarr",
+    }[case]
+    with caplog.at_level(logging.DEBUG):
+        with pytest.raises(StoreError) as caught:
+            open_store(url, storage_options=options)
+    status, document = problem_for(caught.value, instance="/v1/datasets/grid")
+    assert status == 503 and url in document["detail"]
+    everything = json.dumps(document) + str(caught.value) + repr(caught.value.__cause__)
+    for secret in _secrets(s3_server):
+        assert secret not in everything
+    # Not even botocore's DEBUG log has the secret key (requests are signed with a key derived from it).
+    assert s3_server.secret_access_key not in caplog.text
+
+
+def test_logs_at_info_hold_no_credentials(
+    dataset, s3_server: S3Server, caplog: pytest.LogCaptureFixture
+) -> None:
+    url = f"s3://{s3_server.bucket}/logged/grid.zarr"
+    with caplog.at_level(logging.INFO):
+        write_store(dataset.isel(time=slice(0, 400)), url, storage_options=s3_server.storage_options())
+        store = open_store(url, storage_options=s3_server.storage_options())
+        store.read("tmax", *WHOLE)
+    for secret in _secrets(s3_server):
+        assert secret not in caplog.text
+
+
+def test_settings_give_the_storage_options_of_the_server(pair, s3_server: S3Server) -> None:
+    _, remote, _ = pair
+    settings = Settings(**s3_server.settings_env())
+    reopened = open_store(remote.location, storage_options=settings.storage_options())
+    assert reopened.fingerprint == remote.fingerprint
+    for secret in _secrets(s3_server):
+        assert secret not in repr(settings) and secret not in settings.model_dump_json()
+
+
+@pytest.mark.cluster
+def test_cluster_aggregates_an_s3_store_like_threads_on_disk(
+    pair, s3_server: S3Server, dask_cluster: DaskProcesses
+) -> None:
+    local, remote, _ = pair
+    features = {
+        "type": "FeatureCollection",
+        "features": [
+            {
+                "type": "Feature",
+                "id": f"c-{i}",
+                "properties": {},
+                "geometry": {
+                    "type": "Polygon",
+                    "coordinates": [[[x, y], [x + 1.2, y], [x + 1.2, y + 0.9], [x, y + 0.9], [x, y]]],
+                },
+            }
+            for i, (x, y) in enumerate([(-149.8, -39.9), (-148.6, -38.7), (-147.9, -37.1)])
+        ],
+    }
+    parsed = parse_features(features)
+    weights = compute_weights(parsed, local.grid, data_mask=local.data_mask())
+    (on_disk,) = cluster.compute(aggregate(local, weights), settings=Settings(threads=2))
+    (on_cluster,) = cluster.compute(
+        aggregate(remote, weights), settings=Settings(scheduler=dask_cluster.address)
+    )
+    for variable in ("tmax", "tmin", "prcp"):
+        assert on_cluster[variable].values.tobytes() == on_disk[variable].values.tobytes(), variable
+    # The workers got the credentials inside the pickled Store, but wrote them to no log.
+    for secret in _secrets(s3_server):
+        assert secret not in dask_cluster.logs()
+    assert Path(s3_server.log_path).exists()
