@@ -1,0 +1,279 @@
+"""Tests of service.aggregate: daily weighted means on small stores where the answer is known exactly."""
+
+from __future__ import annotations
+
+import pickle
+from pathlib import Path
+from typing import Any
+
+import dask
+import numpy as np
+import pytest
+import xarray as xr
+
+from service.aggregate import aggregate, chunk_weights
+from service.errors import RequestError
+from service.geometry import Weights, compute_weights, parse_features
+from service.store import Layout, Store, open_store, write_store
+from tests._support_store import LAMBERT_CRS, make_dataset
+
+VARIABLES = ("tmax", "tmin", "prcp")
+# make_dataset's lat-lon grid: 0.5-degree cells from (-150, -40), rows north first, so row j spans
+# latitudes (-40 + 0.5 (ny - 1 - j)) to that + 0.5 and column i longitudes -150 + 0.5 i to that + 0.5.
+WEST, SOUTH, SIZE = -150.0, -40.0, 0.5
+
+
+def write(
+    tmp_path: Path, name: str = "s", layout: Layout | None = None, **kwargs: Any
+) -> tuple[Store, xr.Dataset]:
+    """A small store from make_dataset(**kwargs), opened; and the Dataset it was written from."""
+    ds = make_dataset(**kwargs)
+    path = tmp_path / f"{name}.zarr"
+    write_store(ds, path, **({"layout": layout} if layout else {}))
+    return open_store(path), ds
+
+
+def cell_box(ny: int, j0: float, i0: float, j1: float, i1: float) -> list[list[list[float]]]:
+    """Polygon coordinates of a lon-lat box given in (fractional) cell indices, j counted from the north."""
+    lon0, lon1 = WEST + SIZE * i0, WEST + SIZE * i1
+    lat_top, lat_bottom = SOUTH + SIZE * (ny - j0), SOUTH + SIZE * (ny - j1)
+    return [[[lon0, lat_bottom], [lon1, lat_bottom], [lon1, lat_top], [lon0, lat_top], [lon0, lat_bottom]]]
+
+
+def fc(*geometries: dict[str, Any], properties: list[dict] | None = None) -> dict[str, Any]:
+    props = properties or [{} for _ in geometries]
+    return {
+        "type": "FeatureCollection",
+        "features": [
+            {"type": "Feature", "id": f"f{i}", "geometry": g, "properties": p}
+            for i, (g, p) in enumerate(zip(geometries, props, strict=True))
+        ],
+    }
+
+
+def poly(coords: Any) -> dict[str, Any]:
+    return {"type": "Polygon", "coordinates": coords}
+
+
+def weights_for(store: Store, features: dict, crs: str | None = None, **kwargs: Any) -> Weights:
+    return compute_weights(
+        parse_features(features, crs=crs), store.grid, data_mask=store.data_mask(), cache_size=0, **kwargs
+    )
+
+
+def series(store: Store, weights: Weights, **kwargs: Any) -> xr.Dataset:
+    (computed,) = dask.compute(aggregate(store, weights, **kwargs), scheduler="threads")
+    return computed
+
+
+def hand_mean(ds: xr.Dataset, var: str, cells: dict[tuple[int, int], float]) -> np.ndarray:
+    """Daily mean of ``var`` over cells {(j, i): weight}, missing cells dropped and weights renormalised."""
+    values = ds[var].values if var != "tmean" else (ds["tmax"].values + ds["tmin"].values) / 2
+    num = np.zeros(values.shape[0])
+    den = np.zeros(values.shape[0])
+    for (j, i), w in cells.items():
+        v = values[:, j, i]
+        num += np.where(np.isnan(v), 0.0, w * v)
+        den += np.where(np.isnan(v), 0.0, w)
+    with np.errstate(invalid="ignore"):
+        return np.where(den > 0, num / den, np.nan)
+
+
+def assert_series(result: xr.Dataset, ds: xr.Dataset, row: int, cells: dict[tuple[int, int], float]) -> None:
+    for var in (*VARIABLES, "tmean"):
+        np.testing.assert_allclose(result[var].values[row], hand_mean(ds, var, cells), rtol=1e-12, atol=1e-12)
+
+
+# --- hand-computed means --------------------------------------------------------------------------------------
+
+
+def test_half_of_one_cell_and_all_of_another(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=4, nx=3, years=(2000, 2001))
+    # both cells in row 1 (same latitudes, so equal areas): weights 1/2 and 1
+    result = series(store, weights_for(store, fc(poly(cell_box(4, 1, 0.5, 2, 2)))))
+    assert_series(result, ds, 0, {(1, 0): 0.5, (1, 1): 1.0})
+    assert result.sizes == {"feature": 1, "time": 731}
+    assert list(result.feature.values) == ["f0"]
+    np.testing.assert_array_equal(result.time.values, ds.time.values)
+
+
+def test_hole_on_a_projected_grid(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, projected=True, ny=4, nx=4, years=(2001, 2001))
+    x0, y0 = -200_000.0, -150_000.0  # make_dataset's projected origin, 10-km cells
+    shell = [[x0, y0], [x0 + 30_000, y0], [x0 + 30_000, y0 + 30_000], [x0, y0 + 30_000], [x0, y0]]
+    hole = [[x0 + 10_000, y0 + 10_000], [x0 + 20_000, y0 + 10_000], [x0 + 20_000, y0 + 20_000],
+            [x0 + 10_000, y0 + 20_000], [x0 + 10_000, y0 + 10_000]]  # fmt: skip
+    result = series(store, weights_for(store, fc(poly([shell, hole])), crs=LAMBERT_CRS.to_wkt()))
+    # the bottom three rows (j = 1..3, north first) and left three columns, without the middle cell (2, 1)
+    cells = {(j, i): 1.0 for j in (1, 2, 3) for i in (0, 1, 2) if (j, i) != (2, 1)}
+    assert_series(result, ds, 0, cells)
+
+
+def test_multipolygon_across_two_cells(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=3, nx=3, years=(2000, 2000))
+    multi = {
+        "type": "MultiPolygon",
+        "coordinates": [cell_box(3, 2, 0, 3, 0.25), cell_box(3, 2, 2, 3, 2.5)],  # a quarter and a half
+    }
+    result = series(store, weights_for(store, fc(multi)))
+    assert_series(result, ds, 0, {(2, 0): 0.25, (2, 2): 0.5})
+
+
+def test_point_buffer_and_a_community_smaller_than_one_cell_take_their_cell(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=3, nx=3, years=(2000, 2000))
+    lon, lat = WEST + SIZE * 1.5, SOUTH + SIZE * 1.5  # centre of cell (1, 1)
+    point = {"type": "Point", "coordinates": [lon, lat]}
+    small = poly(cell_box(3, 0.2, 2.3, 0.4, 2.6))
+    result = series(store, weights_for(store, fc(point, small, properties=[{"buffer_m": 2500}, {}])))
+    assert_series(result, ds, 0, {(1, 1): 1.0})
+    assert_series(result, ds, 1, {(0, 2): 1.0})
+
+
+def test_missing_cells_and_missing_days_renormalise(tmp_path: Path) -> None:
+    # (1, 1) is missing on every day (water); (1, 0) on days 5 and 7; (1, 2) on day 7: day 7 has no data.
+    store, ds = write(
+        tmp_path,
+        ny=3,
+        nx=3,
+        years=(2000, 2000),
+        missing_cells=[(1, 1)],
+        missing_days=[(5, 1, 0), (7, 1, 0), (7, 1, 2)],
+    )
+    w = weights_for(store, fc(poly(cell_box(3, 1, 0, 2, 3))))
+    assert w.n_cells[0] == 2
+    assert w.coverage[0] == pytest.approx(2 / 3)
+    result = series(store, w)
+    assert_series(result, ds, 0, {(1, 0): 1.0, (1, 1): 1.0, (1, 2): 1.0})
+    assert result.tmax.values[0, 5] == pytest.approx(ds.tmax.values[5, 1, 2], rel=1e-12)
+    assert np.isnan(result.prcp.values[0, 7]) and np.isnan(result.tmean.values[0, 7])
+    assert result.coverage.values[0] == pytest.approx(2 / 3)
+
+
+def test_feature_half_outside_the_grid(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=3, nx=3, years=(2000, 2000))
+    result = series(store, weights_for(store, fc(poly(cell_box(3, 0, -1, 1, 1)))))
+    assert_series(result, ds, 0, {(0, 0): 1.0})
+    assert result.coverage.values[0] == pytest.approx(0.5, rel=1e-9)
+
+
+def test_projected_grid_one_and_a_half_cells(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, projected=True, ny=3, nx=3, years=(2000, 2000))
+    x0, y0 = -200_000.0, -150_000.0
+    square = [[x0 + 5_000, y0], [x0 + 20_000, y0], [x0 + 20_000, y0 + 10_000], [x0 + 5_000, y0 + 10_000],
+              [x0 + 5_000, y0]]  # fmt: skip
+    w = weights_for(store, fc(poly([square])), crs=LAMBERT_CRS.to_wkt())
+    assert w.area_km2[0] == pytest.approx(150.0)
+    assert_series(series(store, w), ds, 0, {(2, 0): 0.5, (2, 1): 1.0})
+
+
+def test_centers_weighting_gives_whole_cells_equal_weight(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=3, nx=3, years=(2000, 2000))
+    # 60 % of cell (1, 0) and 30 % of cell (1, 1), both centres inside
+    w = weights_for(store, fc(poly(cell_box(3, 1, 0.4, 2, 1.6))), weighting="centers")
+    assert_series(series(store, w), ds, 0, {(1, 0): 1.0, (1, 1): 1.0})
+    area = weights_for(store, fc(poly(cell_box(3, 1, 0.4, 2, 1.6))))
+    assert_series(series(store, area), ds, 0, {(1, 0): 0.6, (1, 1): 0.6})
+
+
+def test_layer_weighting(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=3, nx=3, years=(2000, 2000), layers=("population",))
+    population = store.read_layer("population")
+    np.testing.assert_allclose(population, ds.population.values, rtol=1e-6)  # the store keeps float32
+    w = weights_for(store, fc(poly(cell_box(3, 1, 0, 2, 2))), layer=population)
+    assert_series(series(store, w), ds, 0, {(1, 0): population[1, 0], (1, 1): population[1, 1]})
+
+
+# --- the engine -----------------------------------------------------------------------------------------------
+
+
+def random_features(n: int, rng: np.random.Generator, ny: int, nx: int) -> dict[str, Any]:
+    """n irregular polygons of 0.3-2 cells across, anywhere on the make_dataset grid."""
+    features = []
+    for _ in range(n):
+        cx, cy = WEST + SIZE * rng.uniform(0.5, nx - 0.5), SOUTH + SIZE * rng.uniform(0.5, ny - 0.5)
+        angle = np.sort(rng.uniform(0, 2 * np.pi, 12))
+        radius = SIZE * rng.uniform(0.15, 1.0) * rng.uniform(0.7, 1.0, 12)
+        ring = np.column_stack([cx + radius * np.cos(angle), cy + radius * np.sin(angle)])
+        features.append(poly([np.vstack([ring, ring[:1]]).tolist()]))
+    return fc(*features)
+
+
+def test_a_batch_equals_the_features_one_at_a_time(tmp_path: Path) -> None:
+    # small chunks (4 x 4 cells x 200 days): features cross chunk edges in space and time
+    store, ds = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=4, time_chunk=200),
+                      missing_cells=[(3, 3), (4, 4)], missing_days=[(250, 5, 5)])  # fmt: skip
+    features = random_features(25, np.random.default_rng(11), 10, 9)
+    batch = series(store, weights_for(store, features))
+    for k, item in enumerate(features["features"]):
+        single = series(store, weights_for(store, {"type": "FeatureCollection", "features": [item]}))
+        for var in (*VARIABLES, "tmean"):
+            np.testing.assert_allclose(batch[var].values[k], single[var].values[0], rtol=1e-12, atol=1e-12)
+
+
+def test_chunking_does_not_change_the_means_and_only_touched_chunks_are_read(tmp_path: Path) -> None:
+    small, ds = write(
+        tmp_path, "small", ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=4, time_chunk=200)
+    )
+    whole, _ = write(
+        tmp_path, "whole", ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=32, time_chunk=None)
+    )
+    features = fc(poly(cell_box(10, 0, 0, 1, 3)), poly(cell_box(10, 1, 1, 2, 4)))  # both in chunk (0, 0)
+    w = weights_for(small, features)
+    lazy = aggregate(small, w, variables=("prcp",))
+    # one chunk in space, ceil(731 / 200) = 4 blocks in time: 4 reading tasks for prcp
+    names = [str(k[0] if isinstance(k, tuple) else k) for k in dict(lazy.prcp.data.__dask_graph__())]
+    assert sum("-chunk-" in k for k in names) == 4
+    assert len(chunk_weights(w, small.grid.shape, small.chunk_shape[:2])) == 1
+    a = series(small, w)
+    b = series(whole, weights_for(whole, features))
+    for var in (*VARIABLES, "tmean"):
+        np.testing.assert_allclose(a[var].values, b[var].values, rtol=1e-12)
+    assert_series(a, ds, 0, {(0, i): 1.0 for i in (0, 1, 2)})  # one row: equal cell areas
+
+
+def test_time_selection_across_time_chunks(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=4, nx=4, years=(2000, 2001), layout=Layout(tile=4, time_chunk=100))
+    w = weights_for(store, fc(poly(cell_box(4, 0.5, 0.5, 3.5, 2.5))))
+    full = series(store, w)
+    part = series(store, w, time=slice(150, 420))
+    assert part.sizes["time"] == 270
+    np.testing.assert_array_equal(part.time.values, ds.time.values[150:420])
+    for var in (*VARIABLES, "tmean"):
+        np.testing.assert_allclose(part[var].values, full[var].values[:, 150:420], rtol=1e-12)
+
+
+def test_aggregate_computes_nothing_and_its_graph_pickles(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=4, nx=4, years=(2000, 2000))
+    w = weights_for(store, fc(poly(cell_box(4, 1, 1, 2, 2))))
+
+    def refuse(*args: Any, **kwargs: Any) -> None:
+        raise AssertionError("aggregate must not compute")
+
+    with dask.config.set(scheduler=refuse):
+        lazy = aggregate(store, w)
+    assert all(isinstance(lazy[v].data, dask.array.Array) for v in (*VARIABLES, "tmean"))
+    # a worker gets the graph pickled: the Store travels as its location and reopens itself there
+    (restored,) = dask.compute(pickle.loads(pickle.dumps(lazy)), scheduler="sync")
+    assert_series(restored, ds, 0, {(1, 1): 1.0})
+
+
+def test_noleap_calendar_keeps_its_time_axis(tmp_path: Path) -> None:
+    store, ds = write(tmp_path, ny=3, nx=3, years=(2000, 2001), calendar="noleap")
+    result = series(store, weights_for(store, fc(poly(cell_box(3, 0, 0, 1, 1)))))
+    assert result.sizes["time"] == 730
+    assert isinstance(result.indexes["time"], xr.CFTimeIndex)
+    assert_series(result, ds, 0, {(0, 0): 1.0})
+
+
+def test_variable_subset_and_bad_arguments(tmp_path: Path) -> None:
+    store, _ = write(tmp_path, ny=3, nx=3, years=(2000, 2000))
+    w = weights_for(store, fc(poly(cell_box(3, 0, 0, 1, 1))))
+    only = aggregate(store, w, variables=("prcp",))
+    assert list(only.data_vars) == ["prcp"]
+    with pytest.raises(RequestError, match="no variable 'snow'"):
+        aggregate(store, w, variables=("snow",))
+    with pytest.raises(RequestError, match="step 2 is not supported"):
+        aggregate(store, w, time=slice(0, 10, 2))
+    other, _ = write(tmp_path, "other", ny=4, nx=3, years=(2000, 2000))
+    with pytest.raises(ValueError, match="do not fit store"):
+        aggregate(other, w)
