@@ -10,7 +10,7 @@ modules.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 
 import numpy as np
 
@@ -55,6 +55,27 @@ def season_mean(values: np.ndarray) -> np.ndarray:
 def count_days(condition: np.ndarray, *arrays: np.ndarray) -> np.ndarray:
     """Days on which ``condition`` holds per season-year; NaN when ``arrays`` have no valid day."""
     return null_where_empty(np.count_nonzero(condition, axis=-1).astype(np.float64), *arrays)
+
+
+BLOCK_ELEMENTS = 1 << 18  # values per block in blocked reductions: a few MB, stays in cache
+
+
+def reduce_in_blocks(reducer: Callable[..., np.ndarray], *arrays: np.ndarray) -> np.ndarray:
+    """``reducer`` applied to blocks of season-year rows of (feature, year, day) arrays, results joined.
+
+    ``reducer`` takes (rows, day) blocks of each array and returns one value per row. Work stays vectorised
+    over features and days inside each block; blocking only keeps long chains of elementwise steps (degree
+    days, PET) in cache instead of making one full-size temporary per step.
+    """
+    lead = arrays[0].shape[:-1]
+    n_day = arrays[0].shape[-1]
+    flat = [a.reshape(-1, n_day) for a in arrays]
+    n_rows = flat[0].shape[0]
+    out = np.empty(n_rows, dtype=np.float64)
+    step = max(1, BLOCK_ELEMENTS // max(n_day, 1))
+    for start in range(0, n_rows, step):
+        out[start : start + step] = reducer(*(a[start : start + step] for a in flat))
+    return out.reshape(lead)
 
 
 def longest_run(condition: np.ndarray) -> np.ndarray:

@@ -21,7 +21,7 @@ import numpy as np
 
 from service.errors import UnknownIndicatorError
 from service.indicators.base import Baseline, Indicator, Parameter, SeasonCube, register
-from service.indicators.basic import season_sum
+from service.indicators.basic import reduce_in_blocks, season_sum
 
 _HALF_PI = np.pi / 2.0
 
@@ -91,14 +91,18 @@ def gdd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np
             "raise cap or lower base",
             field="indicators.gdd.cap",
         )
-    daily = single_sine(cube.tmax, cube.tmin, params["base"], params["cap"])
-    return season_sum(daily)
+    base, cap = params["base"], params["cap"]
+    return reduce_in_blocks(
+        lambda tmax, tmin: season_sum(single_sine(tmax, tmin, base, cap)), cube.tmax, cube.tmin
+    )
 
 
 def edd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Extreme degree days of the season (degC day): single sine above ``threshold``, no cap."""
-    daily = single_sine(cube.tmax, cube.tmin, params["threshold"], None)
-    return season_sum(daily)
+    threshold = params["threshold"]
+    return reduce_in_blocks(
+        lambda tmax, tmin: season_sum(single_sine(tmax, tmin, threshold, None)), cube.tmax, cube.tmin
+    )
 
 
 register(

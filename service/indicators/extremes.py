@@ -1,0 +1,574 @@
+"""ETCCDI extremes indices over the season, percentile indices with baseline thresholds, and hot-dry days.
+
+Definitions follow the ETCCDI core indices (Zhang et al. 2011, WIREs Climate Change 2:851; Klein Tank et
+al. 2009, WMO WCDMP-No. 72): a wet day has RR >= 1 mm; FD, ID, SU and TR use strict inequalities.
+Every index is computed over the days of the season only, on (feature, year, day) arrays, and returns a
+(feature, year) float64 array; a season-year with no valid day of the variables it needs gives NaN.
+
+Conventions this module chooses (no published definition settles them; they are tested):
+
+* Spells (``cdd``, ``cwd``, ``hotdry_spell``) are counted within the season only: a dry spell that began
+  before the season's first day counts only its days inside the season, one running past the last day is
+  cut there. A missing day ends a spell (a gap is never guessed to be dry or wet).
+* ``rx5day`` uses only windows of five consecutive days that all lie inside the season and all have data;
+  a window that would reach before the first or after the last day of the season is not used. A season
+  with no such window (shorter than five days, or gaps everywhere) gives NaN.
+* Percentile thresholds (``tx90p``, ``tn10p``, ``hotdry_*``) are calendar-day percentiles from the baseline:
+  for each calendar day, the pool is every baseline season-year's value on that calendar day and the two
+  days either side (a 5-day window centred on the day, taken from the full daily record, so windows reach
+  across the season's edges and the new year). 28 and 29 February share one pool and threshold. The
+  quantile is Hyndman & Fan type 8 (numpy ``method="median_unbiased"``), the estimator used by ETCCDI
+  software (from memory). A calendar day whose pool holds values from fewer than three baseline
+  season-years (a short trailing window with gaps, the first years of the record) has no threshold: NaN.
+* In-base years use the plain threshold: the bootstrap of Zhang et al. (2005, J. Climate 18:1641), which
+  removes the small in-base/out-of-base jump in exceedance rates for a fixed baseline, is not applied
+  (it would cost one percentile per left-out year and resample). A trailing baseline never includes the
+  season-year itself, so the question does not arise there.
+* ``r95ptot`` takes its threshold from the wet days (RR >= 1 mm) of the baseline season-years (the same
+  season's days, not whole years), at least 20 of them from at least three baseline season-years (fewer
+  make the 95th percentile little more than the largest value); the index is the season's sum of RR on days with
+  RR above it (mm), as in Zhang et al. 2011.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.indicators.base import Baseline, Family, Indicator, SeasonCube, register
+from service.indicators.basic import WET_DAY_MM, count_days, longest_run, null_where_empty
+
+WINDOW_HALF_WIDTH = 2  # days either side of the calendar day in a percentile pool (5-day window)
+MIN_WET_DAYS = 20  # fewest baseline wet days a wet-day percentile (r95ptot) is taken from
+MIN_BASELINE_SEASONS = 3  # a baseline needs at least three season-years (issue 4)
+_LEAP_YEAR_MONTHS = np.array([31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31])
+
+
+# --- helpers ------------------------------------------------------------------------------------------------
+
+
+def calendar_day_key(month: np.ndarray, day: np.ndarray, calendar: str) -> np.ndarray:
+    """0-based calendar-day number shared by all years: 0..359 (360_day) or 0..365 (29 Feb is 59, 1 Mar 60)."""
+    month = np.asarray(month)
+    day = np.asarray(day)
+    if calendar.lower() == "360_day":
+        return (month - 1) * 30 + (day - 1)
+    start = np.concatenate([[0], np.cumsum(_LEAP_YEAR_MONTHS)[:-1]])
+    return start[month - 1] + day - 1
+
+
+_FEB_28, _FEB_29 = 58, 59  # keys of 28 and 29 February outside the 360-day calendar
+
+
+def quantile_type8(
+    values: np.ndarray, q: float, min_count: int = 1, *, overwrite: bool = False
+) -> np.ndarray:
+    """The q-quantile along the last axis by Hyndman & Fan type 8, skipping NaN (NaN if < min_count values).
+
+    Vectorised: one sort of the rows (NaN last), then per row the two order statistics around
+    h = (n + 1/3) q + 1/3, linearly interpolated (numpy's ``method="median_unbiased"``). With
+    ``overwrite`` a C-contiguous ``values`` is sorted in place.
+    """
+    lead = values.shape[:-1]
+    rows = values.reshape(-1, values.shape[-1])  # a 2-D sort is much faster than an n-D one
+    if rows.shape[-1] == 0:
+        return np.full(lead, np.nan)
+    n = np.count_nonzero(~np.isnan(rows), axis=-1)
+    if overwrite:  # the caller's scratch array: sort it in place, saving one copy of the pool
+        rows.sort(axis=-1)
+        ordered = rows
+    else:
+        ordered = np.sort(rows, axis=-1)
+    top = np.maximum(n, 1)
+    h = np.clip((n + 1.0 / 3.0) * q + 1.0 / 3.0, 1.0, top.astype(np.float64))
+    low = np.floor(h).astype(np.int64)
+    frac = h - low
+    high = np.minimum(low + 1, top)
+    x_low = np.take_along_axis(ordered, (low - 1)[:, None], axis=-1)[:, 0]
+    x_high = np.take_along_axis(ordered, (high - 1)[:, None], axis=-1)[:, 0]
+    with np.errstate(invalid="ignore"):
+        out = np.where(frac > 0, x_low + frac * (x_high - x_low), x_low)
+    return np.where(n >= max(min_count, 1), out, np.nan).reshape(lead)
+
+
+def _baseline_rows(baseline: Baseline) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct baseline rows (row, year) and for each season-year the row it uses."""
+    members = np.asarray(baseline.members, dtype=bool)
+    if baseline.fixed:
+        return members[:1], np.zeros(members.shape[0], dtype=np.int64)
+    rows, inverse = np.unique(members, axis=0, return_inverse=True)
+    return rows, inverse.reshape(-1)
+
+
+@dataclass(frozen=True)
+class CalendarDayThresholds:
+    """Calendar-day percentile thresholds: ``values[feature, row, key]`` and each season-year's row."""
+
+    values: np.ndarray  # (feature, row, key) in the variable's unit, NaN where not computable
+    row_of_year: np.ndarray  # (year,) index into the row axis
+
+    def on_season_days(self, cube: SeasonCube) -> np.ndarray:
+        """The threshold of each (feature, year, day) of ``cube``; NaN on padding days."""
+        key = _season_day_keys(cube)
+        n_feature, n_row, n_key = self.values.shape
+        flat = self.row_of_year[:, None] * n_key + np.maximum(key, 0)
+        out = np.take(self.values.reshape(n_feature, n_row * n_key), flat, axis=1)
+        out[:, key < 0] = np.nan
+        return out
+
+
+def _season_day_keys(cube: SeasonCube) -> np.ndarray:
+    """Calendar-day key of every (year, day) of the cube, -1 on padding."""
+    daily = cube.daily
+    all_keys = calendar_day_key(daily.month, daily.day, daily.calendar)
+    safe = np.maximum(cube.time_index, 0)
+    return np.where(cube.in_season, all_keys[safe], -1)
+
+
+_THRESHOLD_CACHE: list[tuple[SeasonCube, Baseline, str, float, CalendarDayThresholds]] = []
+_POOL_ELEMENTS = 1 << 25  # values per feature block of the percentile pools (256 MB of float64)
+
+
+def _window_times(cube: SeasonCube, years: np.ndarray, n_keys: int) -> tuple[np.ndarray, np.ndarray]:
+    """Daily-record positions of every 5-day window, (key, year, offset), and where a position is unusable."""
+    daily = cube.daily
+    n_time = daily.year.size
+    all_keys = calendar_day_key(daily.month, daily.day, daily.calendar)
+    centre = np.full((n_keys, years.size), -1, dtype=np.int64)
+    year_pos, day_pos = np.nonzero(cube.in_season[years])
+    times = cube.time_index[years][year_pos, day_pos]
+    centre[all_keys[times], year_pos] = times
+    offsets = np.arange(-WINDOW_HALF_WIDTH, WINDOW_HALF_WIDTH + 1)
+    window = centre[..., None] + offsets
+    unusable = (centre[..., None] < 0) | (window < 0) | (window >= n_time)
+    return np.clip(window, 0, n_time - 1), unusable
+
+
+def calendar_day_thresholds(
+    cube: SeasonCube, baseline: Baseline, variable: str, q: float
+) -> CalendarDayThresholds:
+    """Calendar-day ``q``-percentile of ``variable`` ("tmax" or "tmin", degC) over each baseline (5-day pool).
+
+    For each distinct baseline row (one for a fixed baseline, one per season-year for a trailing one) the
+    pool of a calendar day holds, for every baseline season-year, the daily-record values on that season's
+    day with that calendar day and on the two days either side; 28 and 29 February share one pool.
+    Vectorised over features (in blocks that bound memory) and days; one sort per baseline row. The last
+    few results are cached, so ``tx90p``, ``hotdry_days`` and ``hotdry_spell`` on one cube share the work.
+    """
+    for c, b, v, qq, cached in _THRESHOLD_CACHE:
+        if c is cube and b is baseline and v == variable and qq == q:
+            return cached
+    daily = cube.daily
+    record = getattr(daily, variable)
+    leap_calendar = daily.calendar.lower() != "360_day"
+    n_keys = 366 if leap_calendar else 360
+    rows, row_of_year = _baseline_rows(baseline)
+    used_years = np.flatnonzero(rows.any(axis=0))
+    window, unusable = _window_times(cube, used_years, n_keys)
+    n_feature = cube.feature_index.size
+    values = np.full((n_feature, rows.shape[0], n_keys), np.nan)
+    members = [np.searchsorted(used_years, np.flatnonzero(row)) for row in rows]
+    block = max(1, _POOL_ELEMENTS // max(window.size, 1))
+    for start in range(0, n_feature, block):
+        features = cube.feature_index[start : start + block]
+        pools = np.take(np.take(record, features, axis=0), window, axis=1)  # (feature, key, year, offset)
+        pools[:, unusable] = np.nan
+        for r, member in enumerate(members):
+            if member.size < MIN_BASELINE_SEASONS:
+                continue
+            contiguous = member[-1] - member[0] + 1 == member.size  # always so for fixed and trailing
+            chosen = pools[:, :, member[0] : member[-1] + 1] if contiguous else pools[:, :, member]
+            # seasons contributing at least one value to each calendar day's pool
+            seasons_with_data = np.count_nonzero((~np.isnan(chosen)).any(axis=-1), axis=-1)
+            pool = np.ascontiguousarray(chosen).reshape(features.size, n_keys, -1)
+            february = (
+                np.concatenate([pool[:, _FEB_28], pool[:, _FEB_29]], axis=-1) if leap_calendar else None
+            )
+            out = quantile_type8(pool, q, overwrite=True)
+            if february is not None:
+                out[:, _FEB_28] = out[:, _FEB_29] = quantile_type8(february, q, overwrite=True)
+                seasons_with_data[:, _FEB_29] = seasons_with_data[:, _FEB_28]
+            out[seasons_with_data < MIN_BASELINE_SEASONS] = np.nan
+            values[start : start + features.size, r, :] = out
+    result = CalendarDayThresholds(values=values, row_of_year=row_of_year)
+    _THRESHOLD_CACHE.append((cube, baseline, variable, q, result))
+    del _THRESHOLD_CACHE[:-4]
+    return result
+
+
+def _percent_of_days(condition: np.ndarray, usable: np.ndarray) -> np.ndarray:
+    """Share (%) of usable days on which ``condition`` holds, per (feature, year); NaN with no usable day."""
+    n = np.count_nonzero(usable, axis=-1)
+    hits = np.count_nonzero(condition & usable, axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, 100.0 * hits / np.maximum(n, 1), np.nan)
+
+
+# --- precipitation indices ------------------------------------------------------------------------------------
+
+
+def cdd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Longest run of dry days (RR < 1 mm) within the season (days); a missing day ends a run."""
+    return null_where_empty(longest_run(cube.prcp < WET_DAY_MM).astype(np.float64), cube.prcp)
+
+
+def cwd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Longest run of wet days (RR >= 1 mm) within the season (days); a missing day ends a run."""
+    return null_where_empty(longest_run(cube.prcp >= WET_DAY_MM).astype(np.float64), cube.prcp)
+
+
+def r10mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Number of days with RR >= 10 mm in the season (days)."""
+    return count_days(cube.prcp >= 10.0, cube.prcp)
+
+
+def r20mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Number of days with RR >= 20 mm in the season (days)."""
+    return count_days(cube.prcp >= 20.0, cube.prcp)
+
+
+def rx1day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Largest one-day precipitation of the season (mm); missing days skipped."""
+    return np.fmax.reduce(cube.prcp, axis=-1)
+
+
+def rx5day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Largest precipitation sum over five consecutive season days, all with data (mm); NaN if no window.
+
+    Windows that reach outside the season (padding is NaN) or contain a missing day are not used.
+    """
+    prcp = cube.prcp
+    n_day = prcp.shape[-1]
+    if n_day < 5:
+        return np.full(prcp.shape[:-1], np.nan)
+    missing = np.isnan(prcp)
+    filled = np.where(missing, 0.0, prcp)
+    total = np.cumsum(filled, axis=-1)
+    gaps = np.cumsum(missing, axis=-1, dtype=np.int32)
+    window = total[..., 4:].copy()
+    window[..., 1:] -= total[..., :-5]
+    gap_count = gaps[..., 4:].copy()
+    gap_count[..., 1:] -= gaps[..., :-5]
+    window[gap_count > 0] = np.nan
+    return np.fmax.reduce(window, axis=-1)
+
+
+def sdii(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Simple daily intensity: precipitation of wet days divided by their number (mm/day); NaN if none wet."""
+    wet = cube.prcp >= WET_DAY_MM
+    n_wet = np.count_nonzero(wet, axis=-1)
+    amount = np.sum(np.where(wet, cube.prcp, 0.0), axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n_wet > 0, amount / np.maximum(n_wet, 1), np.nan)
+
+
+def wet_day_threshold(cube: SeasonCube, baseline: Baseline, q: float) -> tuple[np.ndarray, np.ndarray]:
+    """The ``q``-percentile of baseline wet-day RR (mm) per (feature, row), and each season-year's row."""
+    rows, row_of_year = _baseline_rows(baseline)
+    out = np.full((cube.prcp.shape[0], rows.shape[0]), np.nan)
+    for r, row in enumerate(rows):
+        seasons = np.flatnonzero(row)
+        if seasons.size < MIN_BASELINE_SEASONS:
+            continue
+        chosen = cube.prcp[:, seasons, :]
+        seasons_with_data = np.count_nonzero((~np.isnan(chosen)).any(axis=-1), axis=-1)
+        values = np.where(chosen >= WET_DAY_MM, chosen, np.nan).reshape(cube.prcp.shape[0], -1)
+        threshold = quantile_type8(values, q, MIN_WET_DAYS, overwrite=True)
+        out[:, r] = np.where(seasons_with_data >= MIN_BASELINE_SEASONS, threshold, np.nan)
+    return out, row_of_year
+
+
+def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Season precipitation on days with RR above the baseline wet-day 95th percentile (mm)."""
+    threshold, row_of_year = wet_day_threshold(cube, baseline, 0.95)
+    per_year = threshold[:, row_of_year]  # (feature, year)
+    very_wet = (cube.prcp >= WET_DAY_MM) & (cube.prcp > per_year[..., None])
+    value = np.sum(np.where(very_wet, cube.prcp, 0.0), axis=-1)
+    value = np.where(np.isnan(per_year), np.nan, value)
+    return null_where_empty(value, cube.prcp)
+
+
+# --- temperature indices ------------------------------------------------------------------------------------
+
+
+def su(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Summer days: number of days with TX > 25 degC (days)."""
+    return count_days(cube.tmax > 25.0, cube.tmax)
+
+
+def tr(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Tropical nights: number of days with TN > 20 degC (days)."""
+    return count_days(cube.tmin > 20.0, cube.tmin)
+
+
+def fd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Frost days: number of days with TN < 0 degC (days)."""
+    return count_days(cube.tmin < 0.0, cube.tmin)
+
+
+def icing_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Icing days (ETCCDI ID): number of days with TX < 0 degC (days)."""
+    return count_days(cube.tmax < 0.0, cube.tmax)
+
+
+def txx(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Highest daily maximum temperature of the season (degC)."""
+    return np.fmax.reduce(cube.tmax, axis=-1)
+
+
+def tnn(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Lowest daily minimum temperature of the season (degC)."""
+    return np.fmin.reduce(cube.tmin, axis=-1)
+
+
+def tx90p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Share of season days with TX above the baseline calendar-day 90th percentile (% of days with data)."""
+    threshold = calendar_day_thresholds(cube, baseline, "tmax", 0.9).on_season_days(cube)
+    usable = ~np.isnan(cube.tmax) & ~np.isnan(threshold)
+    return _percent_of_days(cube.tmax > threshold, usable)
+
+
+def tn10p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Share of season days with TN below the baseline calendar-day 10th percentile (% of days with data)."""
+    threshold = calendar_day_thresholds(cube, baseline, "tmin", 0.1).on_season_days(cube)
+    usable = ~np.isnan(cube.tmin) & ~np.isnan(threshold)
+    return _percent_of_days(cube.tmin < threshold, usable)
+
+
+# --- compound heat and drought ------------------------------------------------------------------------------
+
+
+def hot_dry_mask(cube: SeasonCube, baseline: Baseline) -> tuple[np.ndarray, np.ndarray]:
+    """Hot-dry days (TX above the baseline calendar-day 90th percentile and RR < 1 mm) and usable days."""
+    threshold = calendar_day_thresholds(cube, baseline, "tmax", 0.9).on_season_days(cube)
+    usable = ~np.isnan(cube.tmax) & ~np.isnan(cube.prcp) & ~np.isnan(threshold)
+    hot_dry = (cube.tmax > threshold) & (cube.prcp < WET_DAY_MM)
+    return hot_dry, usable
+
+
+def hotdry_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Number of hot-dry days in the season (days); NaN where no day has data and a threshold."""
+    hot_dry, usable = hot_dry_mask(cube, baseline)
+    count = np.count_nonzero(hot_dry, axis=-1).astype(np.float64)
+    return np.where(np.count_nonzero(usable, axis=-1) > 0, count, np.nan)
+
+
+def hotdry_spell(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Longest run of consecutive hot-dry days within the season (days); a missing day ends a run."""
+    hot_dry, usable = hot_dry_mask(cube, baseline)
+    run = longest_run(hot_dry).astype(np.float64)
+    return np.where(np.count_nonzero(usable, axis=-1) > 0, run, np.nan)
+
+
+# --- catalog ------------------------------------------------------------------------------------------------
+
+_ZHANG = "Zhang et al. 2011, WIREs Climate Change 2:851; Klein Tank et al. 2009, WMO WCDMP-No. 72"
+
+_ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
+    # name, ETCCDI spelling, unit, definition, family, compute, percent_of_normal, uses_baseline
+    (
+        "cdd",
+        "CDD",
+        "days",
+        "Longest run of consecutive dry days (precipitation < 1 mm) within the season.",
+        "count",
+        cdd,
+        False,
+        False,
+    ),
+    (
+        "cwd",
+        "CWD",
+        "days",
+        "Longest run of consecutive wet days (precipitation >= 1 mm) within the season.",
+        "count",
+        cwd,
+        False,
+        False,
+    ),
+    (
+        "r10mm",
+        "R10mm",
+        "days",
+        "Number of days in the season with at least 10 mm of precipitation.",
+        "count",
+        r10mm,
+        False,
+        False,
+    ),
+    (
+        "r20mm",
+        "R20mm",
+        "days",
+        "Number of days in the season with at least 20 mm of precipitation.",
+        "count",
+        r20mm,
+        False,
+        False,
+    ),
+    (
+        "rx1day",
+        "Rx1day",
+        "mm",
+        "Largest one-day precipitation of the season.",
+        "precipitation",
+        rx1day,
+        True,
+        False,
+    ),
+    (
+        "rx5day",
+        "Rx5day",
+        "mm",
+        "Largest precipitation total of five consecutive days inside the season.",
+        "precipitation",
+        rx5day,
+        True,
+        False,
+    ),
+    (
+        "sdii",
+        "SDII",
+        "mm/day",
+        "Mean precipitation of the season's wet days (>= 1 mm): wet-day total over wet days.",
+        "precipitation",
+        sdii,
+        False,
+        False,
+    ),
+    (
+        "r95ptot",
+        "R95pTOT",
+        "mm",
+        "Season precipitation that fell on days above the baseline's 95th percentile "
+        "of wet-day precipitation.",
+        "precipitation",
+        r95ptot,
+        True,
+        True,
+    ),
+    (
+        "su",
+        "SU",
+        "days",
+        "Summer days: days in the season with maximum temperature above 25 degC.",
+        "count",
+        su,
+        False,
+        False,
+    ),
+    (
+        "tr",
+        "TR",
+        "days",
+        "Tropical nights: days in the season with minimum temperature above 20 degC.",
+        "count",
+        tr,
+        False,
+        False,
+    ),
+    (
+        "fd",
+        "FD",
+        "days",
+        "Frost days: days in the season with minimum temperature below 0 degC.",
+        "count",
+        fd,
+        False,
+        False,
+    ),
+    (
+        "id",
+        "ID",
+        "days",
+        "Icing days: days in the season with maximum temperature below 0 degC.",
+        "count",
+        icing_days,
+        False,
+        False,
+    ),
+    (
+        "txx",
+        "TXx",
+        "degC",
+        "Highest daily maximum temperature of the season.",
+        "temperature",
+        txx,
+        False,
+        False,
+    ),
+    (
+        "tnn",
+        "TNn",
+        "degC",
+        "Lowest daily minimum temperature of the season.",
+        "temperature",
+        tnn,
+        False,
+        False,
+    ),
+    (
+        "tx90p",
+        "TX90p",
+        "%",
+        "Share of the season's days with maximum temperature above the baseline's 90th "
+        "percentile for that calendar day (5-day window).",
+        "count",
+        tx90p,
+        False,
+        True,
+    ),
+    (
+        "tn10p",
+        "TN10p",
+        "%",
+        "Share of the season's days with minimum temperature below the baseline's 10th "
+        "percentile for that calendar day (5-day window).",
+        "count",
+        tn10p,
+        False,
+        True,
+    ),
+]
+
+for _name, _etccdi, _unit, _definition, _family, _compute, _percent, _uses_baseline in _ENTRIES:
+    register(
+        Indicator(
+            name=_name,
+            unit=_unit,
+            definition=_definition,
+            source=f"ETCCDI index {_etccdi} ({_ZHANG}), computed over the season's days",
+            family=_family,
+            compute=_compute,  # type: ignore[arg-type]
+            percent_of_normal=_percent,
+            uses_baseline=_uses_baseline,
+        )
+    )
+
+register(
+    Indicator(
+        name="hotdry_days",
+        unit="days",
+        definition="Days in the season with maximum temperature above the community's own baseline 90th "
+        "percentile for that calendar day and precipitation below 1 mm.",
+        source="Compound hot-dry days: TX90p threshold ("
+        + _ZHANG
+        + ") combined with the ETCCDI dry day RR < 1 mm",
+        family="count",
+        compute=hotdry_days,
+        uses_baseline=True,
+    )
+)
+register(
+    Indicator(
+        name="hotdry_spell",
+        unit="days",
+        definition="Longest run of consecutive hot-dry days within the season.",
+        source="Longest run (as in ETCCDI CDD) of hot-dry days; TX90p threshold of " + _ZHANG,
+        family="count",
+        compute=hotdry_spell,
+        uses_baseline=True,
+    )
+)
