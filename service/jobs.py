@@ -374,7 +374,9 @@ class JobRunner:
         self, request: IndicatorRequest, fmt: str, idempotency_key: str | None = None
     ) -> tuple[Job, bool]:
         """Queue a job; returns (job, created). A repeated Idempotency-Key returns the first job."""
-        request_json = request.model_dump_json()
+        # Only the fields the user gave: resolution tells "not given" from "given as the default" (the default
+        # pair, for one), so the stored request must re-validate to exactly the request that was sent.
+        request_json = request.model_dump_json(exclude_unset=True)
         digest = request_digest(request_json, fmt)
         job = Job(
             id=uuid.uuid4().hex,

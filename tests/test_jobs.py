@@ -1,0 +1,314 @@
+"""service.jobs: the SQLite job record, the worker threads on the real pipeline, and SIGKILL-and-restart."""
+
+from __future__ import annotations
+
+import copy
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from service import encode, pipeline
+from service.errors import JobNotFoundError, JobStateError, RequestError
+from service.jobs import (
+    MAX_ATTEMPTS,
+    Job,
+    JobDatabase,
+    JobRunner,
+    feature_count,
+    request_digest,
+    run_with_pipeline,
+)
+from service.registry import StoreRegistry
+from service.schemas import IndicatorRequest
+from service.settings import Settings
+from service.store import open_store
+from tests import _support_server as server_support
+
+pytestmark = pytest.mark.timeout(180)
+
+
+def _job(job_id: str = "a", *, key: str | None = None, digest: str = "d", created: float = 1.0) -> Job:
+    """A queued job record."""
+    return Job(
+        id=job_id, state="queued", dataset="demo", format="parquet", request_hash=digest, idempotency_key=key,
+        features_total=10, features_done=0, created_at=created, started_at=None, finished_at=None, attempts=0,
+        error=None, result_file=None, media_type=None,
+    )  # fmt: skip
+
+
+# Indicators named explicitly, so that these tests do not depend on which indicators the default set holds.
+INDICATORS = ["prcp_total", "tmean", {"name": "gdd", "base": 10, "cap": 30}]
+
+
+def _request(communities: dict[str, Any], n: int | None = None, **fields: Any) -> IndicatorRequest:
+    """An indicator request over the first n demo communities (all when None)."""
+    features = dict(communities, features=communities["features"][:n] if n else communities["features"])
+    return IndicatorRequest.model_validate({"features": features, "indicators": INDICATORS, **fields})
+
+
+def _many(communities: dict[str, Any], count: int) -> dict[str, Any]:
+    """A FeatureCollection of ``count`` features, the demo communities repeated under new ids."""
+    base = [f for f in communities["features"] if f["geometry"]["type"] != "Point"]
+    features = []
+    for i in range(count):
+        feature = copy.deepcopy(base[i % len(base)])
+        feature["id"] = f"copy-{i:05d}"
+        features.append(feature)
+    return {"type": "FeatureCollection", "features": features}
+
+
+def _wait(runner: JobRunner, job_id: str, states: set[str], timeout: float = 90.0) -> Job:
+    """Poll until the job reaches one of ``states``."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        job = runner.status(job_id)
+        if job.state in states:
+            return job
+        time.sleep(0.05)
+    raise AssertionError(f"job {job_id} still {runner.status(job_id).state} after {timeout} s")
+
+
+# --- the record -----------------------------------------------------------------------------------------------
+
+
+def test_database_moves_a_job_through_its_states(tmp_path: Path) -> None:
+    db = JobDatabase(tmp_path / "jobs.sqlite")
+    db.insert(_job("a"), "{}")
+    claimed = db.claim_next(now=10.0)
+    assert claimed is not None and claimed.state == "running" and claimed.attempts == 1
+    assert db.claim_next(now=11.0) is None  # nothing else queued
+    db.progress("a", 4, 10)
+    assert db.get("a").features_done == 4  # type: ignore[union-attr]
+    assert db.finish("a", "succeeded", 12.0, result_file="a.parquet", media_type="x/y", headers={"H": "1"})
+    done = db.get("a")
+    assert done is not None and done.state == "succeeded" and done.features_done == 10
+    assert done.headers == {"H": "1"} and done.seconds_left() == 0.0
+    # a finished job cannot be finished or cancelled again
+    assert not db.finish("a", "failed", 13.0)
+    assert db.cancel("a", 13.0).state == "succeeded"  # type: ignore[union-attr]
+
+
+def test_database_claims_the_oldest_job_first(tmp_path: Path) -> None:
+    db = JobDatabase(tmp_path / "jobs.sqlite")
+    db.insert(_job("late", created=5.0), "{}")
+    db.insert(_job("early", created=2.0), "{}")
+    assert db.claim_next(10.0).id == "early"  # type: ignore[union-attr]
+    assert db.claim_next(10.0).id == "late"  # type: ignore[union-attr]
+
+
+def test_a_cancelled_running_job_is_not_marked_succeeded(tmp_path: Path) -> None:
+    db = JobDatabase(tmp_path / "jobs.sqlite")
+    db.insert(_job("a"), "{}")
+    db.claim_next(1.0)
+    assert db.cancel("a", 2.0).state == "cancelled"  # type: ignore[union-attr]
+    assert not db.finish("a", "succeeded", 3.0, result_file="a.parquet")
+    assert db.get("a").state == "cancelled"  # type: ignore[union-attr]
+
+
+def test_interrupted_jobs_are_requeued_until_they_have_been_tried_too_often(tmp_path: Path) -> None:
+    db = JobDatabase(tmp_path / "jobs.sqlite")
+    db.insert(_job("a"), "{}")
+    for attempt in range(1, MAX_ATTEMPTS + 1):
+        job = db.claim_next(float(attempt))
+        assert job is not None and job.attempts == attempt
+        db.progress("a", 3, 10)
+        requeued, failed = db.requeue_interrupted(float(attempt) + 0.5)
+        if attempt < MAX_ATTEMPTS:
+            assert (requeued, failed) == (1, 0)
+            again = db.get("a")
+            assert again is not None and again.state == "queued" and again.features_done == 0
+    final = db.get("a")
+    assert final is not None and final.state == "failed"
+    assert final.error is not None and f"stopped {MAX_ATTEMPTS} times" in final.error["detail"]
+
+
+def test_the_same_idempotency_key_gives_back_the_first_job(tmp_path: Path) -> None:
+    db = JobDatabase(tmp_path / "jobs.sqlite")
+    first = db.insert(_job("a", key="k-1"), "{}")
+    second = db.insert(_job("b", key="k-1"), "{}")
+    assert first.id == second.id == "a"
+    assert db.get("b") is None
+
+
+def test_seconds_left_follows_the_pace_so_far() -> None:
+    running = Job(**{**_job().__dict__, "state": "running", "started_at": 100.0, "features_done": 4})
+    # 4 features in 20 s, 6 to go: 30 s
+    assert running.seconds_left(now=120.0) == pytest.approx(30.0)
+    assert Job(**{**running.__dict__, "features_done": 0}).seconds_left(now=120.0) is None
+    assert _job().seconds_left() is None
+
+
+def test_request_digest_ignores_key_order_but_not_format() -> None:
+    a = request_digest('{"b": 1, "a": [1, 2]}', "csv")
+    assert a == request_digest('{"a": [1, 2], "b": 1}', "csv")
+    assert a != request_digest('{"a": [1, 2], "b": 1}', "json")
+    assert a != request_digest('{"a": [2, 1], "b": 1}', "csv")
+
+
+def test_expired_jobs_and_their_files_are_removed(tmp_path: Path) -> None:
+    runner = JobRunner(Settings(data_dir=tmp_path, job_retention_hours=1.0), StoreRegistry({}))
+    runner.db.insert(_job("old"), "{}")
+    runner.db.claim_next(0.0)
+    result = runner.results / "old.parquet"
+    result.write_bytes(b"x")
+    runner.db.finish("old", "succeeded", 1000.0, result_file="old.parquet")
+    assert runner.clean_up(now=1000.0 + 1800.0) == 0  # half an hour later: kept
+    assert runner.clean_up(now=1000.0 + 3700.0) == 1
+    assert not result.exists()
+    with pytest.raises(JobNotFoundError, match="never submitted, or it finished more than 1 hours ago"):
+        runner.status("old")
+
+
+def test_feature_count_counts_a_single_feature_as_one(tiny_communities: dict[str, Any]) -> None:
+    feature = tiny_communities["features"][0]
+    assert feature_count(IndicatorRequest.model_validate({"features": feature})) == 1
+    assert feature_count(_request(tiny_communities, 3)) == 3
+
+
+# --- the runner on the real pipeline --------------------------------------------------------------------------
+
+
+@pytest.fixture
+def runner(tiny_demo: Path, tmp_path: Path):
+    """A started JobRunner over the tiny demo; stopped afterwards."""
+    store = open_store(tiny_demo)
+    runner = JobRunner(Settings(data_dir=tmp_path, job_workers=1), StoreRegistry({store.name: store}),
+                       poll_seconds=0.05)  # fmt: skip
+    runner.start()
+    yield runner
+    runner.stop()
+
+
+def test_a_job_gives_the_same_bytes_as_an_on_demand_run(runner: JobRunner, tiny_communities: dict) -> None:
+    request = _request(tiny_communities, 6, lags=[0, 1])
+    job, created = runner.submit(request, "parquet")
+    assert created and job.state == "queued" and job.features_total == 6
+    done = _wait(runner, job.id, {"succeeded", "failed"})
+    assert done.state == "succeeded", done.error
+    assert done.features_done == 6 and done.attempts == 1
+    finished, path = runner.result_path(job.id)
+    store = runner.registry.get_dataset(None)
+    expected, media_type, headers = encode.encode(pipeline.run(request, store, runner.settings), "parquet")
+    assert path.read_bytes() == expected
+    assert finished.media_type == media_type and finished.headers == headers
+    assert not list(runner.results.glob("*.partial"))
+
+
+def test_a_repeated_submission_with_the_same_key_is_one_job(
+    runner: JobRunner, tiny_communities: dict
+) -> None:
+    request = _request(tiny_communities, 2)
+    first, created_first = runner.submit(request, "csv", idempotency_key="survey-wave-3")
+    again, created_again = runner.submit(request, "csv", idempotency_key="survey-wave-3")
+    assert created_first and not created_again and again.id == first.id
+    with pytest.raises(RequestError, match="already used for a different request"):
+        runner.submit(_request(tiny_communities, 3), "csv", idempotency_key="survey-wave-3")
+    assert _wait(runner, first.id, {"succeeded", "failed"}).state == "succeeded"
+
+
+def test_cancelling_a_running_job_discards_its_work(
+    tiny_demo: Path, tmp_path: Path, tiny_communities: dict
+) -> None:
+    started, release = threading.Event(), threading.Event()
+
+    def gated(request, registry, settings, fmt, *, progress, cancelled):  # noqa: ANN001, ANN202
+        def progress_then_wait(done: int, total: int) -> None:
+            progress(done, total)
+            started.set()
+            release.wait(30)
+
+        return run_with_pipeline(
+            request, registry, settings, fmt, progress=progress_then_wait, cancelled=cancelled
+        )
+
+    store = open_store(tiny_demo)
+    runner = JobRunner(Settings(data_dir=tmp_path), StoreRegistry({store.name: store}), run_job=gated,
+                       poll_seconds=0.05)  # fmt: skip
+    runner.start()
+    try:
+        job, _ = runner.submit(_request(tiny_communities, 4), "json")
+        assert started.wait(30)
+        assert runner.status(job.id).state == "running"
+        assert runner.cancel(job.id).state == "cancelled"
+        release.set()
+        time.sleep(0.5)
+        assert runner.status(job.id).state == "cancelled"
+        assert not list(runner.results.iterdir())
+        assert runner.cancel(job.id).state == "cancelled"  # cancelling again is harmless
+        with pytest.raises(JobStateError, match="is cancelled; its result is served once it has succeeded"):
+            runner.result_path(job.id)
+    finally:
+        release.set()
+        runner.stop()
+
+
+def test_a_job_that_fails_keeps_its_problem_document(runner: JobRunner, tiny_communities: dict) -> None:
+    # A baseline before the data: the pipeline refuses it; the job records why.
+    request = _request(tiny_communities, 2, baseline={"start": 1800, "end": 1810})
+    job, _ = runner.submit(request, "parquet")
+    failed = _wait(runner, job.id, {"succeeded", "failed"})
+    assert failed.state == "failed"
+    assert failed.error is not None and failed.error["status"] == 422 and "1800" in failed.error["detail"]
+    with pytest.raises(JobStateError, match="is failed: .*1800"):
+        runner.result_path(job.id)
+    with pytest.raises(JobStateError, match="already failed"):
+        runner.cancel(job.id)
+
+
+# --- SIGKILL in the middle of a job, then restart -------------------------------------------------------------
+
+
+def _submit_and_follow(client: httpx.Client, body: dict[str, Any], *, until: set[str]) -> dict[str, Any]:
+    """Submit a job and poll it until its state is in ``until``."""
+    response = client.post("/v1/jobs", json=body, params={"format": "parquet"})
+    assert response.status_code == 202, response.text
+    location = response.headers["Location"]
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline:
+        status = client.get(location).json()
+        if status["state"] in until:
+            return status
+        time.sleep(0.02)
+    raise AssertionError(f"job {location} never reached {until}")
+
+
+@pytest.mark.slow
+def test_a_job_killed_mid_way_reruns_after_restart_and_gives_identical_bytes(
+    tiny_demo: Path, tmp_path: Path, tiny_communities: dict
+) -> None:
+    body = {"features": _many(tiny_communities, 300), "lags": [0, 1], "indicators": INDICATORS}
+    env = {"WXSHOCK_JOB_WORKERS": "1"}
+    data_dir = tmp_path / "data"
+
+    # Submit, wait until the worker runs the job, and SIGKILL the server: no clean-up of any kind runs.
+    server = server_support.start_process(stores=[tiny_demo], data_dir=data_dir, env=env)
+    try:
+        with server.client() as client:
+            killed = _submit_and_follow(client, body, until={"running", "succeeded", "failed"})
+            assert killed["state"] == "running", "the job ended before it could be interrupted"
+            server.kill()
+    finally:
+        server.kill()
+    assert not list((data_dir / "jobs" / "results").glob("*.parquet"))  # no finished result was written
+
+    # Start again: the job is re-queued and re-run; then the same request runs once more, uninterrupted.
+    server = server_support.start_process(stores=[tiny_demo], data_dir=data_dir, env=env)
+    try:
+        with server.client() as client:
+            uninterrupted = _submit_and_follow(client, body, until={"succeeded", "failed"})
+            rerun = client.get(f"/v1/jobs/{killed['id']}").json()  # queued first, so finished first
+            assert rerun["state"] == uninterrupted["state"] == "succeeded", (rerun, uninterrupted)
+            assert rerun["attempts"] == 2 and uninterrupted["attempts"] == 1
+            assert rerun["features_done"] == rerun["features_total"] == 300
+            first = client.get(rerun["links"]["result"])
+            second = client.get(uninterrupted["links"]["result"])
+            assert first.status_code == second.status_code == 200
+            assert first.content == second.content
+            assert first.headers["X-Wxshock-Request-Hash"] == second.headers["X-Wxshock-Request-Hash"]
+    finally:
+        server.stop()
+    assert "re-queued 1 interrupted job" in server.log_path.read_text()  # type: ignore[union-attr]
