@@ -6,6 +6,7 @@ import os
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
 
 import dask
 import dask.array as da
@@ -194,3 +195,126 @@ def test_scheduler_without_workers_is_a_clear_503(monkeypatch: pytest.MonkeyPatc
         with pytest.raises(ClusterUnavailableError, match="has no worker"):
             cluster.compute(da.ones(3).sum(), settings=_settings(scheduler=empty.scheduler_address))
     cluster.close_clients()
+
+
+# --- through the service: a real uvicorn server on threads and one on the cluster -------------------------------
+
+
+def _demo_request(features: dict) -> dict:
+    """A request on the tiny demo: growing-season totals, means and degree days with z, classes and one lag."""
+    return {
+        "dataset": "demo",
+        "features": features,
+        "years": {"start": 1991, "end": 2018},
+        "season": {"months": [5, 6, 7, 8, 9, 10]},
+        "baseline": {"start": 1980, "end": 1990},
+        "indicators": [
+            "prcp_total",
+            "tmean",
+            {"name": "gdd", "base": 10, "cap": 30},
+            {"name": "edd", "threshold": 29},
+        ],
+        "classes": {"edges": [-2, -1, 1, 2]},
+        "lags": [0, 1],
+    }
+
+
+@pytest.fixture(scope="module")
+def servers(tiny_demo: Path, dask_cluster: DaskProcesses, tmp_path_factory: pytest.TempPathFactory):
+    """(threads server, cluster server) over the same tiny demo store."""
+    from tests._support_server import thread_server
+
+    on_threads = Settings(
+        stores=[str(tiny_demo)], data_dir=tmp_path_factory.mktemp("threads-data"), threads=2
+    )
+    on_cluster = Settings(
+        stores=[str(tiny_demo)],
+        data_dir=tmp_path_factory.mktemp("cluster-data"),
+        scheduler=dask_cluster.address,
+    )
+    with thread_server(on_threads) as local, thread_server(on_cluster) as remote:
+        yield local, remote
+
+
+def _job_result(server, body: dict, *, while_running=None) -> tuple[dict, bytes]:
+    """Submit a batch job, wait for it to end (calling ``while_running(client, status)`` meanwhile)."""
+    with server.client() as client:
+        submitted = client.post("/v1/jobs", params={"format": "parquet"}, json=body)
+        assert submitted.status_code == 202, submitted.text
+        location = submitted.headers["Location"]
+        deadline = time.monotonic() + 90
+        while time.monotonic() < deadline:
+            status = client.get(location).json()
+            if status["state"] in ("succeeded", "failed", "cancelled"):
+                break
+            if while_running is not None and status["state"] == "running":
+                while_running(status)
+                while_running = None
+            time.sleep(0.02)
+        assert status["state"] == "succeeded", status
+        result = client.get(location + "/result")
+        assert result.status_code == 200
+        return status, result.content
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+@pytest.mark.parametrize("fmt", ["json", "csv", "parquet"])
+def test_on_demand_request_on_the_cluster_gives_the_same_bytes(
+    servers, tiny_communities: dict, fmt: str
+) -> None:
+    local, remote = servers
+    some = dict(tiny_communities, features=tiny_communities["features"][::4])
+    body = _demo_request(some)
+    with local.client() as a, remote.client() as b:
+        expected = a.post("/v1/indicators", params={"format": fmt}, json=body)
+        got = b.post("/v1/indicators", params={"format": fmt}, json=body)
+    assert expected.status_code == got.status_code == 200, got.text
+    assert got.headers["content-type"] == expected.headers["content-type"]
+    assert got.content == expected.content
+    for header in ("x-wxshock-fingerprint", "x-wxshock-request-hash"):
+        assert got.headers.get(header) == expected.headers.get(header)
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+def test_batch_job_on_the_cluster_gives_the_same_bytes(servers, tiny_communities: dict) -> None:
+    local, remote = servers
+    body = _demo_request(tiny_communities)
+    local_status, expected = _job_result(local, body)
+    remote_status, got = _job_result(remote, body)
+    assert got == expected
+    assert (
+        remote_status["features_done"] == remote_status["features_total"] == len(tiny_communities["features"])
+    )
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+def test_batch_job_survives_a_worker_stopped_mid_way(servers, tiny_communities: dict, dask_cluster) -> None:
+    local, remote = servers
+    body = _demo_request(tiny_communities)
+    body["indicators"] = body["indicators"][:2]  # another request than the test above, so no reuse
+    _, expected = _job_result(local, body)
+    client = cluster.client_for(Settings(scheduler=dask_cluster.address))
+    victim = "worker-b"
+    victim_address = next(
+        a for a, info in client.scheduler_info(n_workers=-1)["workers"].items() if info["name"] == victim
+    )
+    stopped: list[int] = []
+
+    def stop_victim_while_it_works(status: dict) -> None:
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and not client.processing().get(victim_address):
+            time.sleep(0.005)
+        stopped.append(len(client.processing().get(victim_address, ())))
+        dask_cluster.stop_worker(victim)
+
+    try:
+        status, got = _job_result(remote, body, while_running=stop_victim_while_it_works)
+        assert stopped and stopped[0] > 0, "the worker was stopped while it had no task"
+        assert victim_address not in client.scheduler_info(n_workers=-1)["workers"]
+        assert status["attempts"] == 1  # the scheduler redid the lost work; the job itself did not rerun
+        assert got == expected
+    finally:
+        dask_cluster.ensure_workers()
