@@ -22,6 +22,7 @@ import hashlib
 import json
 import os
 import shutil
+import threading
 import uuid
 import warnings
 from collections.abc import Iterator
@@ -253,8 +254,11 @@ class Store:
         self.name: str = name or _store_name(self.location)
         self.storage_options: dict | None = dict(storage_options) if storage_options else None
 
-    def __reduce__(self) -> tuple[Any, tuple[str, str, dict | None]]:
-        return (Store, (self.location, self.name, self.storage_options))
+    def __reduce__(self) -> tuple[Any, tuple[str, str, dict | None, str | None]]:
+        # Unpickled once per dask task on a worker: _reopened keeps one opened Store per process instead of
+        # reopening the zarr group (about 40 ms) in every task. The fingerprint, when already read, is part
+        # of the key, so a store rewritten in place is not served from a stale handle.
+        return (_reopened, (self.location, self.name, self.storage_options, self.__dict__.get("fingerprint")))
 
     def __repr__(self) -> str:
         return f"Store(name={self.name!r}, location={self.location!r})"
@@ -456,6 +460,23 @@ class Store:
                 "time": self.inner_chunk_shape[2],
             },
         }
+
+
+_REOPENED: dict[tuple[str, str, str, str | None], Store] = {}
+_REOPENED_LOCK = threading.Lock()
+_REOPENED_MAX = 16
+
+
+def _reopened(location: str, name: str, storage_options: dict | None, fingerprint: str | None) -> Store:
+    """The Store an unpickled task reads from: one per process and (location, name, options, fingerprint)."""
+    key = (location, name, json.dumps(storage_options, sort_keys=True, default=str), fingerprint)
+    with _REOPENED_LOCK:
+        store = _REOPENED.get(key)
+        if store is None:
+            if len(_REOPENED) >= _REOPENED_MAX:
+                _REOPENED.pop(next(iter(_REOPENED)))
+            store = _REOPENED[key] = Store(location, name=name, storage_options=storage_options)
+        return store
 
 
 def open_store(location: str | Path, name: str | None = None, storage_options: dict | None = None) -> Store:
