@@ -110,6 +110,16 @@ def resolve_baseline(baseline: Any, year: int, available: Sequence[int]) -> tupl
     return first, last
 
 
+def mappable(indicator: str) -> tuple[tuple[str, ...], str, str, str]:
+    """The variables, reducer, unit and family of a mappable indicator, or a RequestError listing them."""
+    if indicator not in MAP_INDICATORS:
+        raise RequestError(
+            f"indicator {indicator!r} cannot be mapped; mappable indicators: {', '.join(MAP_INDICATORS)}",
+            field="indicator",
+        )
+    return MAP_INDICATORS[indicator]
+
+
 def anomaly_field(
     store: Any,
     indicator: str,
@@ -127,12 +137,7 @@ def anomaly_field(
     short total); a cell whose baseline has fewer than 3 values or no spread has no z. ``year`` None maps
     the last season-year with data.
     """
-    if indicator not in MAP_INDICATORS:
-        raise RequestError(
-            f"indicator {indicator!r} cannot be mapped; mappable indicators: {', '.join(MAP_INDICATORS)}",
-            field="indicator",
-        )
-    variables, reducer, unit, family = MAP_INDICATORS[indicator]
+    variables, reducer, unit, family = mappable(indicator)
     ny, nx = store.grid.shape
     if ny * nx > max_cells:
         raise RequestError(

@@ -54,13 +54,17 @@ def _one_feature(body: IndicatorRequest, feature_id: str | None) -> tuple[Indica
 
 
 def _with_plotted(body: IndicatorRequest, precipitation: str, temperature: str) -> IndicatorRequest:
-    """The request in the wide layout, asking for the two plotted indicators as well as its own."""
-    update: dict[str, object] = {"layout": "wide"}
-    if body.indicators is not None:
-        names = {i if isinstance(i, str) else i.name for i in body.indicators}
-        extra = [n for n in (precipitation, temperature) if n not in names]
-        update["indicators"] = [*body.indicators, *extra]
-    return body.model_copy(update=update)
+    """The request in the wide layout, with the two plotted indicators added to those it names.
+
+    With no indicators named, only what the picture needs is computed: the two plotted indicators and
+    those the request's spells and pairs refer to.
+    """
+    wanted = [precipitation, temperature]
+    wanted += [c.indicator for s in body.spells for c in s.when] + [n for pair in body.pairs for n in pair]
+    given = list(body.indicators) if body.indicators is not None else []
+    names = {i if isinstance(i, str) else i.name for i in given}
+    extra = [n for n in dict.fromkeys(wanted) if n not in names]
+    return body.model_copy(update={"layout": "wide", "indicators": [*given, *extra]})
 
 
 @router.post(
@@ -141,7 +145,7 @@ def plot_map(
     """PNG of one season-year's anomaly (z) over the grid, with the requested communities outlined."""
     from service.geometry import parse_features
     from service.indicators.table import resolve_request
-    from service.maps import anomaly_field, to_grid_crs
+    from service.maps import anomaly_field, mappable, to_grid_crs
     from service.plots import map_plot
 
     check_feature_count(
@@ -150,6 +154,7 @@ def plot_map(
         "max_features_on_demand",
         on_demand=True,
     )
+    mappable(indicator)
     store = registry.get_dataset(body.dataset)
     parsed = parse_features(
         body.features.model_dump(mode="json", exclude_none=False),
@@ -158,7 +163,8 @@ def plot_map(
         repair=body.repair,
         max_vertices=settings.max_vertices_per_feature,
     )
-    resolved = resolve_request(body, store.dates)
+    # Resolve years and baseline as the table would, for the one mapped indicator only.
+    resolved = resolve_request(body.model_copy(update={"indicators": [indicator]}), store.dates)
     field = anomaly_field(
         store,
         indicator,
