@@ -41,13 +41,13 @@ def null_where_empty(result: np.ndarray, *arrays: np.ndarray) -> np.ndarray:
 
 def season_sum(values: np.ndarray) -> np.ndarray:
     """Sum over the valid days of each season-year (same units as ``values``); NaN when none is valid."""
-    return null_where_empty(np.nansum(values, axis=-1), values)
+    return null_where_empty(np.nansum(values, axis=-1, dtype=np.float64), values)
 
 
 def season_mean(values: np.ndarray) -> np.ndarray:
     """Mean over the valid days of each season-year (same units as ``values``); NaN when none is valid."""
     count = valid_days(values)
-    total = np.nansum(values, axis=-1)
+    total = np.nansum(values, axis=-1, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 

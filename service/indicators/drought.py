@@ -8,12 +8,15 @@
   H(x) = q + (1 - q) G(x), SPI = Phi^-1(H) (McKee et al. 1993; WMO SPI User Guide, WMO-No. 1090, 2012).
 * ``spei``: the season's climatic water balance D = sum(P - PET) against a three-parameter log-logistic
   distribution fitted by L-moments to the baseline seasons' D (Vicente-Serrano, Begueria & Lopez-Moreno
-  2010, J. Climate 23:1696), with the probability-weighted moments of that paper (plotting position
-  F_i = (i - 0.35) / N). The unbiased moments of Begueria et al. (2014) are available in
-  :func:`fit_log_logistic` but are not what ``spei`` uses. The log-logistic needs a positively skewed
-  baseline (L-skewness > 0); a baseline with no or negative skew (common for P - PET in some climates)
-  has no log-logistic fit, so ``spei`` fits the generalized logistic distribution by the same L-moments:
-  for positive skew it is exactly the three-parameter log-logistic, otherwise its natural extension.
+  2010, J. Climate 23:1696), with the unbiased probability-weighted moments of the later revision
+  (Begueria et al. 2014, Int. J. Climatol. 34:3001). The plotting-position moments of the 2010 paper
+  (F_i = (i - 0.35) / N) are available in :func:`fit_log_logistic` but ``spei`` does not use them: they are
+  not shift-invariant (adding c to every D moves l2 by 0.3 c / N), so with a short baseline of strongly
+  negative D (a dry climate, D ~ -800 mm) the fit depends on the origin of D and often fails.
+  The log-logistic needs a positively skewed baseline (L-skewness > 0); a baseline with no or negative
+  skew has no log-logistic fit, so ``spei`` fits the generalized logistic distribution by the same
+  L-moments: for positive skew it is exactly the three-parameter log-logistic, otherwise its natural
+  extension.
 
 Both are vectorised over communities; a trailing baseline is fitted once per distinct baseline row. A
 baseline with fewer than three seasons with data, all-zero totals, zero spread or a failed fit gives NaN
@@ -230,7 +233,8 @@ def fit_log_logistic(sample: np.ndarray, unbiased: bool = False) -> LogLogisticF
     """Three-parameter log-logistic fitted by L-moments to each row of ``sample`` (feature, season).
 
     beta = (2 w1 - w0) / (6 w1 - w0 - 6 w2); alpha = (w0 - 2 w1) beta / (G(1 + 1/beta) G(1 - 1/beta));
-    gamma = w0 - alpha G(1 + 1/beta) G(1 - 1/beta) (Vicente-Serrano et al. 2010, eqs 5-7), so that
+    gamma = w0 - alpha G(1 + 1/beta) G(1 - 1/beta) (Vicente-Serrano et al. 2010; from memory, checked against
+    scipy.stats.fisk in the tests), so that
     F(x) = 1 / (1 + (alpha / (x - gamma))^beta). ``ok`` is False with fewer than three values, zero spread,
     or beta <= 1 (no finite mean) or other non-finite parameters.
     """
@@ -343,7 +347,8 @@ def standardize_against_baseline(values: np.ndarray, baseline: Baseline, kind: s
         if kind == "gamma":
             probability = gamma_probability(values[:, years], fit_gamma(sample))
         else:
-            probability = generalized_logistic_probability(values[:, years], fit_generalized_logistic(sample))
+            fit = fit_generalized_logistic(sample, unbiased=True)
+            probability = generalized_logistic_probability(values[:, years], fit)
         out[:, years] = standard_normal_index(probability)
     return out
 
@@ -382,7 +387,8 @@ register(
         definition="Standardized Precipitation-Evapotranspiration Index: the season's climatic water balance "
         "(precipitation minus Hargreaves reference evapotranspiration) as a standard-normal deviate of a "
         "three-parameter log-logistic distribution fitted to the baseline seasons by L-moments.",
-        source="Vicente-Serrano, Begueria & Lopez-Moreno 2010, J. Climate 23:1696 (plotting-position PWMs); "
+        source="Vicente-Serrano, Begueria & Lopez-Moreno 2010, J. Climate 23:1696, with the unbiased PWMs of "
+        "Begueria et al. 2014, Int. J. Climatol. 34:3001; "
         "PET by Hargreaves, FAO-56 (Allen et al. 1998) eq. 52 with Ra from eq. 21",
         family="drought",
         compute=spei,

@@ -231,7 +231,7 @@ def r20mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> 
 
 def rx1day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Largest one-day precipitation of the season (mm); missing days skipped."""
-    return np.fmax.reduce(cube.prcp, axis=-1)
+    return np.fmax.reduce(cube.prcp, axis=-1).astype(np.float64)
 
 
 def rx5day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
@@ -245,7 +245,7 @@ def rx5day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) ->
         return np.full(prcp.shape[:-1], np.nan)
     missing = np.isnan(prcp)
     filled = np.where(missing, 0.0, prcp)
-    total = np.cumsum(filled, axis=-1)
+    total = np.cumsum(filled, axis=-1, dtype=np.float64)
     gaps = np.cumsum(missing, axis=-1, dtype=np.int32)
     window = total[..., 4:].copy()
     window[..., 1:] -= total[..., :-5]
@@ -259,7 +259,7 @@ def sdii(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> n
     """Simple daily intensity: precipitation of wet days divided by their number (mm/day); NaN if none wet."""
     wet = cube.prcp >= WET_DAY_MM
     n_wet = np.count_nonzero(wet, axis=-1)
-    amount = np.sum(np.where(wet, cube.prcp, 0.0), axis=-1)
+    amount = np.sum(np.where(wet, cube.prcp, 0.0), axis=-1, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(n_wet > 0, amount / np.maximum(n_wet, 1), np.nan)
 
@@ -285,7 +285,7 @@ def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -
     threshold, row_of_year = wet_day_threshold(cube, baseline, 0.95)
     per_year = threshold[:, row_of_year]  # (feature, year)
     very_wet = (cube.prcp >= WET_DAY_MM) & (cube.prcp > per_year[..., None])
-    value = np.sum(np.where(very_wet, cube.prcp, 0.0), axis=-1)
+    value = np.sum(np.where(very_wet, cube.prcp, 0.0), axis=-1, dtype=np.float64)
     value = np.where(np.isnan(per_year), np.nan, value)
     return null_where_empty(value, cube.prcp)
 
@@ -315,12 +315,12 @@ def icing_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]
 
 def txx(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Highest daily maximum temperature of the season (degC)."""
-    return np.fmax.reduce(cube.tmax, axis=-1)
+    return np.fmax.reduce(cube.tmax, axis=-1).astype(np.float64)
 
 
 def tnn(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Lowest daily minimum temperature of the season (degC)."""
-    return np.fmin.reduce(cube.tmin, axis=-1)
+    return np.fmin.reduce(cube.tmin, axis=-1).astype(np.float64)
 
 
 def tx90p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:

@@ -255,3 +255,19 @@ def test_spi_spei_indicators_fixed_and_trailing():
     fit = drought.fit_gamma(totals[:, year - 5 : year])
     expected = drought.standard_normal_index(drought.gamma_probability(totals[:, year : year + 1], fit))[:, 0]
     np.testing.assert_allclose(spi_trailing[:, year], expected)
+
+
+def test_spei_fit_does_not_depend_on_the_origin_of_the_water_balance():
+    # why spei uses the unbiased PWMs (Begueria et al. 2014): an index must not change when every season's
+    # P - PET moves by the same amount; the plotting-position PWMs of 2010 shift l2 by 0.3 c / N
+    rng = np.random.default_rng(31)
+    balance = stats.fisk.rvs(c=5.0, loc=-100.0, scale=120.0, size=(4, 12), random_state=rng)
+    base = _baseline_only(12)
+    index = drought.standardize_against_baseline(balance, base, "log-logistic")
+    shifted = drought.standardize_against_baseline(balance - 800.0, base, "log-logistic")
+    assert np.isfinite(index).all()
+    np.testing.assert_allclose(shifted, index, atol=1e-9)
+    w = drought.probability_weighted_moments(balance)
+    w_shifted = drought.probability_weighted_moments(balance - 800.0)
+    l2, l2_shifted = w[0] - 2 * w[1], w_shifted[0] - 2 * w_shifted[1]
+    np.testing.assert_allclose(l2_shifted - l2, 0.3 * -800.0 / 12)

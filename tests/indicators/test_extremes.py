@@ -337,3 +337,61 @@ def test_catalog_entries(name):
     assert entry.unit and entry.definition and entry.source
     assert entry.family in ("precipitation", "temperature", "count")
     assert entry.uses_baseline == (name in ("r95ptot", "tx90p", "tn10p", "hotdry_days", "hotdry_spell"))
+
+
+VALUE_INDICATORS = [
+    "prcp_total",
+    "wet_days",
+    "tmean",
+    "tmax_mean",
+    "tmin_mean",
+    "dtr",
+    "gdd",
+    "edd",
+    "cdd",
+    "cwd",
+    "r10mm",
+    "r20mm",
+    "rx1day",
+    "rx5day",
+    "sdii",
+    "r95ptot",
+    "su",
+    "tr",
+    "fd",
+    "id",
+    "txx",
+    "tnn",
+    "tx90p",
+    "tn10p",
+    "hotdry_days",
+    "hotdry_spell",
+    "spi",
+    "spei",
+]
+
+
+def test_float32_series_give_float64_values_close_to_float64_ones():
+    import service.indicators.degree_days  # noqa: F401  (registers gdd, edd)
+    import service.indicators.drought  # noqa: F401  (registers spi, spei)
+
+    rng = np.random.default_rng(12)
+    probe = daily_series(2000, 6)
+    n = probe.year.size
+    arrays = {
+        "tmax": rng.normal(27, 5, (2, n)),
+        "prcp": np.where(rng.random((2, n)) < 0.4, rng.gamma(0.8, 9, (2, n)), 0.0),
+    }
+    arrays["tmin"] = arrays["tmax"] - rng.uniform(6, 14, (2, n))
+    arrays = {k: v.astype(np.float32).astype(np.float64) for k, v in arrays.items()}  # same values both ways
+    wide = daily_series(2000, 6, n_features=2, latitude=[10.0, -25.0], **arrays)
+    narrow = daily_series(2000, 6, n_features=2, latitude=[10.0, -25.0], **arrays)
+    narrow = type(narrow)(**{**narrow.__dict__, **{k: v.astype(np.float32) for k, v in arrays.items()}})
+    for name in VALUE_INDICATORS:
+        cube64 = season_cube(wide, months=[4, 5, 6, 7])
+        cube32 = season_cube(narrow, months=[4, 5, 6, 7])
+        entry = get_indicator(name)
+        v64 = entry.compute(cube64, fixed_baseline(cube64, 2000, 2004), entry.resolve({}))
+        v32 = entry.compute(cube32, fixed_baseline(cube32, 2000, 2004), entry.resolve({}))
+        assert v32.dtype == np.float64 and v32.shape == (2, 6), name
+        np.testing.assert_allclose(v32, v64, rtol=1e-6, atol=1e-6, err_msg=name)
