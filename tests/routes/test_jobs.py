@@ -1,0 +1,142 @@
+"""service.routes.jobs: the batch job lifecycle over HTTP: submit, follow, fetch, cancel, idempotency."""
+
+from __future__ import annotations
+
+import copy
+import time
+from typing import Any
+
+import httpx
+import pytest
+
+from tests import _support_server as server_support
+
+live_server = server_support.live_server
+
+INDICATORS = ["prcp_total", "tmean", {"name": "gdd", "base": 10, "cap": 30}]
+
+
+def _body(communities: dict[str, Any], n: int = 3, **fields: Any) -> dict[str, Any]:
+    """An indicator request for n demo communities (repeated under new ids when n exceeds them)."""
+    base = communities["features"]
+    features = []
+    for i in range(n):
+        feature = copy.deepcopy(base[i % len(base)])
+        feature["id"] = f"{feature['id']}-{i}" if n > len(base) else feature["id"]
+        features.append(feature)
+    return {
+        "features": {"type": "FeatureCollection", "features": features},
+        "indicators": INDICATORS,
+        **fields,
+    }
+
+
+def _follow(client: httpx.Client, location: str, until: set[str], timeout: float = 90.0) -> dict[str, Any]:
+    """Poll a job until its state is in ``until``."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        status = client.get(location).json()
+        if status["state"] in until:
+            return status
+        time.sleep(0.05)
+    raise AssertionError(f"{location} never reached {until}")
+
+
+def _problem(response: httpx.Response, status: int) -> dict[str, Any]:
+    """The problem document of an error response, checked for status and media type."""
+    assert response.status_code == status, response.text
+    assert response.headers["content-type"] == "application/problem+json"
+    return response.json()
+
+
+def test_a_job_is_accepted_followed_and_its_result_equals_the_on_demand_answer(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    body = _body(tiny_communities, 3, lags=[0, 1])
+    with live_server.client() as client:
+        response = client.post("/v1/jobs", json=body, params={"format": "csv"})
+        assert response.status_code == 202, response.text
+        location = response.headers["Location"]
+        accepted = response.json()
+        assert location == f"/v1/jobs/{accepted['id']}" == accepted["links"]["self"]
+        assert (
+            accepted["state"] == "queued" and accepted["features_total"] == 3 and accepted["format"] == "csv"
+        )
+        done = _follow(client, location, {"succeeded", "failed"})
+        assert done["state"] == "succeeded", done
+        assert done["features_done"] == 3 and done["progress"] == 1.0 and done["seconds_left"] == 0.0
+        assert done["started_at"] >= done["created_at"] and done["finished_at"] >= done["started_at"]
+        result = client.get(done["links"]["result"])
+        on_demand = client.post("/v1/indicators", json=body, params={"format": "csv"})
+    assert result.status_code == 200 and result.headers["content-type"].startswith("text/csv")
+    assert result.content == on_demand.content
+    assert result.headers["X-Wxshock-Request-Hash"] == on_demand.headers["X-Wxshock-Request-Hash"]
+    assert 'filename="wxshock-' in result.headers["content-disposition"]
+
+
+def test_a_queued_or_running_job_can_be_cancelled_and_has_no_result(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    with live_server.client() as client:
+        response = client.post("/v1/jobs", json=_body(tiny_communities, 150))
+        assert response.status_code == 202
+        location = response.headers["Location"]
+        early = _problem(client.get(location + "/result"), 409)
+        assert (
+            early["type"].endswith("/job-state")
+            and "its result is served once it has succeeded" in early["detail"]
+        )
+        cancelled = client.delete(location)
+        assert cancelled.status_code == 200 and cancelled.json()["state"] == "cancelled"
+        time.sleep(0.3)
+        assert client.get(location).json()["state"] == "cancelled"
+        assert client.delete(location).json()["state"] == "cancelled"  # again: harmless
+        _problem(client.get(location + "/result"), 409)
+
+
+def test_a_repeated_idempotency_key_returns_the_same_job(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    body = _body(tiny_communities, 2)
+    headers = {"Idempotency-Key": "wave-2-upload-7"}
+    with live_server.client() as client:
+        first = client.post("/v1/jobs", json=body, headers=headers)
+        again = client.post("/v1/jobs", json=body, headers=headers)
+        assert first.status_code == again.status_code == 202
+        assert again.json()["id"] == first.json()["id"]
+        assert again.headers["Location"] == first.headers["Location"]
+        assert again.headers["Idempotent-Replayed"] == "true"
+        other = _problem(client.post("/v1/jobs", json=_body(tiny_communities, 4), headers=headers), 422)
+        assert (
+            "already used for a different request" in other["detail"] and other["field"] == "Idempotency-Key"
+        )
+        without_key = client.post("/v1/jobs", json=body)
+        assert without_key.json()["id"] != first.json()["id"]
+        done = _follow(client, first.headers["Location"], {"succeeded", "failed"})
+        assert done["state"] == "succeeded"
+        finished = _problem(client.delete(first.headers["Location"]), 409)
+        assert "already succeeded" in finished["detail"]
+        refused = _problem(client.get(done["links"]["result"], headers={"Accept": "text/csv"}), 406)
+        assert "parquet" in refused["detail"]
+
+
+@pytest.mark.parametrize("path", ["/v1/jobs/0123456789abcdef", "/v1/jobs/nothing/result"])
+def test_an_unknown_job_is_a_404_problem(live_server: server_support.LiveServer, path: str) -> None:
+    with live_server.client() as client:
+        problem = _problem(client.get(path), 404)
+    assert problem["type"].endswith("/unknown-job") and "never submitted" in problem["detail"]
+
+
+def test_a_request_the_run_would_refuse_is_refused_at_submission(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    with live_server.client() as client:
+        before = client.get("/ready").json()["jobs_queued"]
+        problem = _problem(
+            client.post("/v1/jobs", json=_body(tiny_communities, 2, baseline={"start": 1900, "end": 1910})),
+            422,
+        )
+        assert problem["type"].endswith("/out-of-range") and "1900-1910" in problem["detail"]
+        unknown = _problem(client.post("/v1/jobs", json=_body(tiny_communities, 1, dataset="elsewhere")), 404)
+        assert unknown["type"].endswith("/unknown-dataset")
+        assert client.get("/ready").json()["jobs_queued"] <= before
