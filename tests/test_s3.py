@@ -163,3 +163,70 @@ def test_cluster_aggregates_an_s3_store_like_threads_on_disk(
     for secret in _secrets(s3_server):
         assert secret not in dask_cluster.logs()
     assert Path(s3_server.log_path).exists()
+
+
+# --- served through the API --------------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def demo_on_s3(tiny_demo: Path, s3_server: S3Server) -> str:
+    """The tiny demo store copied object for object into the bucket (write_store to S3 is tested above)."""
+    import s3fs
+
+    fs = s3fs.S3FileSystem(**s3_server.storage_options(), skip_instance_cache=True)
+    key = f"{s3_server.bucket}/served/demo.zarr"
+    fs.put(str(tiny_demo), key, recursive=True)
+    return f"s3://{key}"
+
+
+def _request(features: dict) -> dict:
+    return {
+        "dataset": "demo",
+        "features": dict(features, features=features["features"][:10]),
+        "years": {"start": 1995, "end": 2010},
+        "season": {"months": [6, 7, 8]},
+        "baseline": {"start": 1980, "end": 1994},
+        "indicators": ["prcp_total", "tmean", "wet_days"],
+        "lags": [0, 1],
+    }
+
+
+def test_store_on_s3_is_served_with_the_same_answers_as_from_disk(
+    tiny_demo: Path,
+    demo_on_s3: str,
+    s3_server: S3Server,
+    tiny_communities: dict,
+    tmp_path: Path,
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    from tests._support_server import thread_server
+
+    on_disk = Settings(stores=[str(tiny_demo)], data_dir=tmp_path / "disk", threads=2)
+    on_s3 = Settings(stores=[demo_on_s3], data_dir=tmp_path / "s3", threads=2, **s3_server.settings_env())
+    body = _request(tiny_communities)
+    answers = []
+    with caplog.at_level(logging.INFO):
+        for settings in (on_disk, on_s3):
+            with thread_server(settings) as server, server.client() as client:
+                dataset = client.get("/v1/datasets/demo")
+                assert dataset.status_code == 200, dataset.text
+                description = dataset.json()
+                description.pop("location", None)
+                table = client.post("/v1/indicators", params={"format": "csv"}, json=body)
+                assert table.status_code == 200, table.text
+                problem = client.post("/v1/indicators", json=dict(body, years={"start": 1900, "end": 1910}))
+                assert problem.status_code == 422
+                answers.append(
+                    (description, table.content, table.headers["x-wxshock-fingerprint"], problem.text)
+                )
+                listing = client.get("/v1/datasets").text
+    (
+        (disk_description, disk_table, disk_fingerprint, _),
+        (s3_description, s3_table, s3_fingerprint, s3_problem),
+    ) = answers
+    assert s3_description == disk_description
+    assert s3_fingerprint == disk_fingerprint
+    assert s3_table == disk_table
+    for secret in _secrets(s3_server):
+        assert secret not in listing + json.dumps(s3_description) + s3_problem
+        assert secret not in caplog.text
