@@ -6,6 +6,7 @@ every indicator.
 
 from __future__ import annotations
 
-from service.indicators import base, basic, degree_days  # noqa: F401  (value modules register at import)
+# the value modules register their indicators when imported
+from service.indicators import base, basic, degree_days, drought, extremes  # noqa: F401
 
 __all__ = ["base"]

@@ -52,19 +52,37 @@ class BaselineStatistics:
 def baseline_statistics(values: np.ndarray, baseline: Baseline) -> BaselineStatistics:
     """Mean, sd (ddof = 1) and count of ``values`` (feature, year) over each season-year's baseline seasons.
 
-    NaN values drop out. Computed as matrix products with the membership matrix, on values centred by each
-    feature's overall mean so that the sums of squares do not lose precision.
+    NaN values drop out. A fixed baseline is computed once (two-pass mean and squared deviations); a moving
+    one as sums over the membership matrix of values centred by each feature's mean, to keep precision.
     """
     values = np.asarray(values, dtype=np.float64)
+    members = np.asarray(baseline.members, dtype=bool)
     has = ~np.isnan(values)
-    weights = baseline.members.astype(np.float64).T  # (season, year)
+    n_feature, n_year = values.shape
+    if n_year and (members == members[:1]).all():
+        # one normal for every season-year: compute it once, directly
+        row = members[0]
+        sample = values[:, row]
+        count = np.count_nonzero(~np.isnan(sample), axis=1).astype(np.float64)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.nansum(sample, axis=1) / count
+            squares = np.nansum((sample - mean[:, None]) ** 2, axis=1)
+            variance = squares / (count - 1.0)
+        shape = (n_feature, n_year)
+        return BaselineStatistics(
+            mean=np.broadcast_to(np.where(count >= 1, mean, np.nan)[:, None], shape).copy(),
+            sd=np.broadcast_to(np.where(count >= 2, np.sqrt(variance), np.nan)[:, None], shape).copy(),
+            count=np.broadcast_to(count.astype(np.int64)[:, None], shape).copy(),
+        )
+    # a moving normal: sums over each row's members (einsum loops in C, no BLAS threads), on values centred
+    # by each feature's own mean so that the sums of squares keep their precision
+    weights = members.astype(np.float64)  # (year, season)
     with np.errstate(invalid="ignore", divide="ignore"):
-        centre = np.nanmean(np.where(has.any(axis=1, keepdims=True), values, 0.0), axis=1, keepdims=True)
-    centre = np.nan_to_num(centre)
+        centre = np.nansum(values, axis=1, keepdims=True) / np.maximum(has.sum(axis=1, keepdims=True), 1)
     shifted = np.where(has, values - centre, 0.0)
-    count = has.astype(np.float64) @ weights
-    total = shifted @ weights
-    squares = (shifted * shifted) @ weights
+    count = np.einsum("fs,ts->ft", has.astype(np.float64), weights)
+    total = np.einsum("fs,ts->ft", shifted, weights)
+    squares = np.einsum("fs,ts->ft", shifted * shifted, weights)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean_shifted = total / count
         variance = (squares - count * mean_shifted * mean_shifted) / (count - 1.0)

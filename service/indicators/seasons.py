@@ -282,13 +282,13 @@ def cut_season(
 ) -> SeasonCut:
     """Cut the rows ``feature_index`` of ``daily`` into season-years (feature, season_year, day).
 
-    Vectorised over features and days: one gather per variable. The cube holds every season-year the record
+    Vectorised over features and days: one slice copy per variable and season-year. The cube holds every season-year the record
     serves whole; a (feature, season-year) whose share of missing days (absent from the record, or any
     variable NaN) exceeds ``max_missing_share`` is NaN throughout and ``complete`` is False there.
     """
-    n_feature_all = daily.tmax.shape[0]
     if feature_index is None:
-        feature_index = np.arange(n_feature_all, dtype=np.int64)
+        feature_index = np.arange(daily.tmax.shape[0], dtype=np.int64)
+    feature_index = np.asarray(feature_index, dtype=np.int64)
     keys = _date_keys(daily.year, daily.month, daily.day)
     if keys.size > 1 and np.any(np.diff(keys) <= 0):
         raise StoreFormatError(
@@ -307,20 +307,31 @@ def cut_season(
     in_season = time_index >= 0
     safe = np.where(in_season, time_index, 0)
 
-    whole_rows = feature_index.size == n_feature_all and np.array_equal(
-        feature_index, np.arange(n_feature_all)
-    )
+    first = int(feature_index[0]) if feature_index.size else 0
+    contiguous = np.array_equal(feature_index, np.arange(first, first + feature_index.size))
+    days_per_row = in_season.sum(axis=1)
+    row_first_step = steps[np.minimum(group_start, max(steps.size - 1, 0))] if steps.size else group_start
+    # a season-year is one stretch of the record (a month-day interval of sorted dates), so each row of the
+    # cube is a plain slice of time steps: copy slices (memcpy speed) rather than gather element by element
+    sliceable = bool(steps.size) and np.array_equal(steps - row_first_step[row], position)
+
+    if steps.size and not sliceable:
+        raise RuntimeError(f"season {season.label}: a season-year is not one stretch of the record")
 
     def gather(values: np.ndarray) -> np.ndarray:
-        source = values if whole_rows else values[feature_index]
-        out = np.take(source, safe, axis=1)
-        if not np.issubdtype(out.dtype, np.floating):
-            out = out.astype(np.float64)
-        out[:, ~in_season] = np.nan
+        source = values[first : first + feature_index.size] if contiguous else values[feature_index]
+        dtype = source.dtype if np.issubdtype(source.dtype, np.floating) else np.float64
+        out = np.empty((source.shape[0], *in_season.shape), dtype=dtype)
+        for y, (start, n) in enumerate(zip(row_first_step.tolist(), days_per_row.tolist(), strict=True)):
+            out[:, y, :n] = source[:, start : start + n]
+            out[:, y, n:] = np.nan
         return out
 
     tmax, tmin, prcp = gather(daily.tmax), gather(daily.tmin), gather(daily.prcp)
-    present = np.count_nonzero(~(np.isnan(tmax) | np.isnan(tmin) | np.isnan(prcp)), axis=-1)
+    missing = np.isnan(tmax)
+    missing |= np.isnan(tmin)
+    missing |= np.isnan(prcp)
+    present = np.count_nonzero(~missing, axis=-1)
     with np.errstate(invalid="ignore", divide="ignore"):
         present_share = np.where(served.expected_days > 0, present / np.maximum(served.expected_days, 1), 0.0)
     complete = (1.0 - present_share) <= max_missing_share + 1e-12

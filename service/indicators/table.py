@@ -48,6 +48,10 @@ from service.schemas import (
 DEFAULT_INDICATORS = ("prcp_total", "wet_days", "tmean", "tmax_mean", "tmin_mean", "cdd", "gdd", "edd", "spi")
 DEFAULT_PAIR = ("prcp_total", "tmean")
 DEFAULT_BASELINE_SEASONS = 10  # common practice: a normal of about a decade
+# Features are cut and computed in blocks of about this many daily values per variable (8 M, 64 MB of
+# float64): every feature's row is independent, and blocks keep the cubes and the indicators' temporaries
+# small enough to stay fast (measured: 3x faster than one cube of 5,000 features x 48 years).
+FEATURE_BLOCK_ELEMENTS = 8_000_000
 
 
 @dataclass(frozen=True)
@@ -588,18 +592,23 @@ def compute_table(
             full[name] = np.full((n_feature, years.size), np.nan)
     warnings: list[dict[str, Any]] = []
     first_year = None
+    block_size = max(1, FEATURE_BLOCK_ELEMENTS // max(1, daily.year.size))
     for group in groups:
-        cut = seasons.cut_season(
-            daily, group.season, group.feature_index, max_missing_share=request.max_missing_share
-        )
-        out_cols = np.searchsorted(cut.cube.years, years)
-        if np.any(out_cols >= cut.cube.years.size) or np.any(cut.cube.years[out_cols] != years):
-            raise RuntimeError("a requested season-year is not in the cube although the request was resolved")
-        first_year = int(cut.cube.years[0]) if first_year is None else max(first_year, int(cut.cube.years[0]))
-        warnings += seasons.incomplete_season_warnings(cut, feature_ids, years, request.max_missing_share)
-        columns = _group_columns(cut, planned, request, feature_ids, out_cols, warnings)
-        for name, values in columns.items():
-            full[name][group.feature_index] = values
+        for start in range(0, group.feature_index.size, block_size):
+            rows = group.feature_index[start : start + block_size]
+            cut = seasons.cut_season(daily, group.season, rows, max_missing_share=request.max_missing_share)
+            out_cols = np.searchsorted(cut.cube.years, years)
+            if np.any(out_cols >= cut.cube.years.size) or np.any(cut.cube.years[out_cols] != years):
+                raise RuntimeError(
+                    "a requested season-year is not in the cube although the request was resolved"
+                )
+            first_year = (
+                int(cut.cube.years[0]) if first_year is None else max(first_year, int(cut.cube.years[0]))
+            )
+            warnings += seasons.incomplete_season_warnings(cut, feature_ids, years, request.max_missing_share)
+            columns = _group_columns(cut, planned, request, feature_ids, out_cols, warnings)
+            for name, values in columns.items():
+                full[name][rows] = values
     if first_year is not None:
         warnings += _spell_warnings(request, first_year, years)
     if request.layout == "long":

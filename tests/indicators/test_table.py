@@ -422,3 +422,16 @@ def test_lag_column_equals_the_season_k_years_earlier(totals, k, trailing):
             assert now[f"t_prcp_class_lag{k}"] is before["t_prcp_class"] or (
                 now[f"t_prcp_class_lag{k}"] == before["t_prcp_class"]
             )
+
+
+def test_feature_blocks_give_the_same_table(monkeypatch):
+    from service.indicators import table as table_module
+
+    daily, ids = _january_daily({f"f{i}": list(np.arange(10.0) * (i + 1) % 7) for i in range(5)})
+    props = [{"s": [1]}, {"s": [1, 2]}, {"s": [1]}, {"s": [1]}, {"s": [1, 2]}]
+    request = _request(season={"property": "s"}, indicators=["t_prcp", "t_tmax"], lags=[0, 1])
+    whole = compute_table(daily, ids, props, request)
+    monkeypatch.setattr(table_module, "FEATURE_BLOCK_ELEMENTS", 2 * daily.year.size)  # blocks of 2 features
+    blocks = compute_table(daily, ids, props, request)
+    pd.testing.assert_frame_equal(whole.frame, blocks.frame)
+    assert whole.warnings == blocks.warnings

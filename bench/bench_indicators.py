@@ -1,0 +1,135 @@
+"""Time the indicator table for many communities: compute_table on a synthetic daily series.
+
+    python bench/bench_indicators.py [--features 5000] [--years 48] [--dtype float32] [--season year]
+                                     [--indicators prcp_total,tmean,...] [--no-write]
+
+Builds an invented (feature, time) daily series (seasonal temperature and gamma-distributed rain with random
+gaps), then times resolve_request + compute_table with the default indicator set (or the given list),
+with lags [0, 1, 2], a sequence, the default pair and a spell, and appends the figures to bench/RESULTS.md
+under "Indicator table".
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+import service.indicators  # noqa: F401  (registers every value module's indicators)
+from service.indicators.base import DailySeries
+from service.indicators.table import DEFAULT_INDICATORS, compute_table, resolve_request
+from service.schemas import IndicatorRequest
+
+RESULTS = Path(__file__).with_name("RESULTS.md")
+SECTION = "## Indicator table (issue 4, core)"
+
+
+def synthetic_daily(n_features: int, n_years: int, dtype: str, seed: int = 7) -> DailySeries:
+    """An invented daily series: seasonal tmax/tmin (degC) and rain (mm/day), 0.5 % of days missing."""
+    rng = np.random.default_rng(seed)
+    days = np.arange("1980-01-01", f"{1980 + n_years}-01-01", dtype="datetime64[D]")
+    year = days.astype("datetime64[Y]").astype(np.int64) + 1970
+    month = days.astype("datetime64[M]").astype(np.int64) % 12 + 1
+    day = (days - days.astype("datetime64[M]")).astype(np.int64) + 1
+    doy = (days - days.astype("datetime64[Y]")).astype(np.int64) + 1
+    n_time = days.size
+    seasonal = 8.0 * np.sin(2 * np.pi * (doy - 100) / 365.25)
+    offset = rng.normal(0, 3, (n_features, 1))
+    tmax = (27.0 + offset + seasonal + rng.normal(0, 3, (n_features, n_time))).astype(dtype)
+    tmin = (tmax - 9.0 - rng.gamma(4.0, 0.5, (n_features, n_time))).astype(dtype)
+    wet = rng.random((n_features, n_time)) < 0.35
+    prcp = np.where(wet, rng.gamma(0.8, 9.0, (n_features, n_time)), 0.0).astype(dtype)
+    gaps = rng.random((n_features, n_time)) < 0.005
+    for values in (tmax, tmin, prcp):
+        values[gaps] = np.nan
+    return DailySeries(
+        tmax=tmax,
+        tmin=tmin,
+        prcp=prcp,
+        year=year,
+        month=month,
+        day=day,
+        dayofyear=doy,
+        calendar="standard",
+        latitude=rng.uniform(-20, 20, n_features),
+    )
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the benchmark and append its figures to RESULTS.md."""
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--features", type=int, default=5000)
+    parser.add_argument("--years", type=int, default=48)
+    parser.add_argument("--dtype", choices=("float32", "float64"), default="float64")
+    parser.add_argument("--season", default="year", help='"year", or months as 5,6,7,8,9,10')
+    parser.add_argument("--indicators", default=",".join(DEFAULT_INDICATORS))
+    parser.add_argument("--no-write", action="store_true")
+    args = parser.parse_args(argv)
+
+    season: object = "year" if args.season == "year" else {"months": [int(m) for m in args.season.split(",")]}
+    indicators = args.indicators.split(",")
+    request = IndicatorRequest(
+        features={"type": "Feature", "geometry": None, "properties": {}},
+        season=season,
+        indicators=indicators,
+        lags=[0, 1, 2],
+        sequences=[[0, 1]],
+        spells=[
+            {
+                "name": "dry_hot",
+                "window": 5,
+                "when": [
+                    {"indicator": "prcp_total", "class_max": -1},
+                    {"indicator": "tmean", "class_min": 1},
+                ],
+            }
+        ]
+        if {"prcp_total", "tmean"} <= set(indicators)
+        else [],
+    )
+    t0 = time.perf_counter()
+    daily = synthetic_daily(args.features, args.years, args.dtype)
+    build = time.perf_counter() - t0
+    ids = [f"c-{i:05d}" for i in range(args.features)]
+    props = [{} for _ in ids]
+
+    t0, c0 = time.perf_counter(), time.process_time()
+    resolved = resolve_request(request, daily)
+    table = compute_table(daily, ids, props, resolved)
+    elapsed, cpu = time.perf_counter() - t0, time.process_time() - c0
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    frame = table.frame
+    line = (
+        f"- {args.features} features x {args.years} years ({args.dtype}, season {args.season}, "
+        f"{len(indicators)} indicators: {', '.join(indicators)}; lags 0-2, a sequence, "
+        f"{len(resolved.pairs)} pair(s), {len(resolved.spells)} spell(s)): compute_table {elapsed:.2f} s wall, "
+        f"{cpu:.2f} s CPU (load average {load:.1f} on {os.cpu_count()} cores) "
+        f"-> {len(frame)} rows x {frame.shape[1]} columns, {len(table.warnings)} warnings "
+        f"(series built in {build:.1f} s; {platform.processor() or platform.machine()}, "
+        f"{time.strftime('%Y-%m-%d')})"
+    )
+    print(line)
+    if not args.no_write:
+        text = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else "# Benchmark results\n"
+        if SECTION not in text:
+            text = (
+                text.rstrip("\n")
+                + f"\n\n{SECTION}\n\n`python bench/bench_indicators.py` (whole set, one process)\n"
+            )
+        head, _, tail = text.partition(SECTION)
+        # append our line at the end of our own section (before the next section, if any)
+        body, sep, rest = tail.partition("\n## ")
+        body = body.rstrip("\n") + "\n" + line + "\n"
+        RESULTS.write_text(
+            head + SECTION + body + (("\n" + sep.lstrip("\n") + rest) if sep else ""), encoding="utf-8"
+        )
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
