@@ -137,6 +137,7 @@ def features_and_weights(
         layer=layer,
         data_mask=store.data_mask(),
         max_cells=settings.max_cells_per_feature,
+        cache_size=settings.weights_cache_size,
     )
     return parsed, weights
 
