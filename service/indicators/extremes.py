@@ -32,13 +32,14 @@ Conventions this module chooses (no published definition settles them; they are 
 
 from __future__ import annotations
 
+import weakref
 from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
 
 from service.indicators.base import Baseline, Family, Indicator, SeasonCube, register
-from service.indicators.basic import WET_DAY_MM, count_days, longest_run, null_where_empty
+from service.indicators.basic import WET_DAY_MM, count_days, longest_run, null_where_empty, reduce_in_blocks
 
 WINDOW_HALF_WIDTH = 2  # days either side of the calendar day in a percentile pool (5-day window)
 MIN_WET_DAYS = 20  # fewest baseline wet days a wet-day percentile (r95ptot) is taken from
@@ -118,6 +119,19 @@ class CalendarDayThresholds:
         out[:, key < 0] = np.nan
         return out
 
+    def on_rows(self, rows: np.ndarray, key: np.ndarray) -> np.ndarray:
+        """Thresholds of flat season-year rows (feature * n_year + year), (rows, day); NaN on padding.
+
+        ``key`` is the cube's (year, day) calendar-day keys, -1 on padding (see :func:`_season_day_keys`).
+        """
+        n_feature, n_row, n_key = self.values.shape
+        n_year = key.shape[0]
+        feature, year = np.divmod(rows, n_year)
+        column = self.row_of_year[year][:, None] * n_key + np.maximum(key[year], 0)
+        out = self.values.reshape(n_feature, n_row * n_key)[feature[:, None], column]
+        out[key[year] < 0] = np.nan
+        return out
+
 
 def _season_day_keys(cube: SeasonCube) -> np.ndarray:
     """Calendar-day key of every (year, day) of the cube, -1 on padding."""
@@ -127,7 +141,11 @@ def _season_day_keys(cube: SeasonCube) -> np.ndarray:
     return np.where(cube.in_season, all_keys[safe], -1)
 
 
-_THRESHOLD_CACHE: list[tuple[SeasonCube, Baseline, str, float, CalendarDayThresholds]] = []
+# Thresholds of live cubes, so that tx90p, hotdry_days and hotdry_spell on one cube share one pass. Entries
+# hold weak references only and disappear with their cube or baseline (no request's data outlives it here).
+_THRESHOLD_CACHE: dict[
+    tuple[int, int, str, float], tuple[weakref.ref, weakref.ref, CalendarDayThresholds]
+] = {}
 _POOL_ELEMENTS = 1 << 25  # values per feature block of the percentile pools (256 MB of float64)
 
 
@@ -155,11 +173,13 @@ def calendar_day_thresholds(
     pool of a calendar day holds, for every baseline season-year, the daily-record values on that season's
     day with that calendar day and on the two days either side; 28 and 29 February share one pool.
     Vectorised over features (in blocks that bound memory) and days; one sort per baseline row. The last
-    few results are cached, so ``tx90p``, ``hotdry_days`` and ``hotdry_spell`` on one cube share the work.
+    results are cached while the cube lives, so ``tx90p``, ``hotdry_days`` and ``hotdry_spell`` on one cube
+    share the work.
     """
-    for c, b, v, qq, cached in _THRESHOLD_CACHE:
-        if c is cube and b is baseline and v == variable and qq == q:
-            return cached
+    cache_key = (id(cube), id(baseline), variable, q)
+    entry = _THRESHOLD_CACHE.get(cache_key)
+    if entry is not None and entry[0]() is cube and entry[1]() is baseline:
+        return entry[2]
     daily = cube.daily
     record = getattr(daily, variable)
     leap_calendar = daily.calendar.lower() != "360_day"
@@ -193,13 +213,16 @@ def calendar_day_thresholds(
             out[seasons_with_data < MIN_BASELINE_SEASONS] = np.nan
             values[start : start + features.size, r, :] = out
     result = CalendarDayThresholds(values=values, row_of_year=row_of_year)
-    _THRESHOLD_CACHE.append((cube, baseline, variable, q, result))
-    del _THRESHOLD_CACHE[:-4]
+
+    def forget(_: weakref.ref) -> None:
+        _THRESHOLD_CACHE.pop(cache_key, None)
+
+    _THRESHOLD_CACHE[cache_key] = (weakref.ref(cube, forget), weakref.ref(baseline, forget), result)
     return result
 
 
 def _percent_of_days(condition: np.ndarray, usable: np.ndarray) -> np.ndarray:
-    """Share (%) of usable days on which ``condition`` holds, per (feature, year); NaN with no usable day."""
+    """Share (%) of usable days on which ``condition`` holds, per row; NaN with no usable day."""
     n = np.count_nonzero(usable, axis=-1)
     hits = np.count_nonzero(condition & usable, axis=-1)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -209,14 +232,20 @@ def _percent_of_days(condition: np.ndarray, usable: np.ndarray) -> np.ndarray:
 # --- precipitation indices ------------------------------------------------------------------------------------
 
 
+def _longest_spell(values: np.ndarray, wet: bool) -> np.ndarray:
+    """Longest run of dry (wet=False) or wet days along the last axis (days); NaN with no valid day."""
+    condition = values >= WET_DAY_MM if wet else values < WET_DAY_MM
+    return null_where_empty(longest_run(condition).astype(np.float64), values)
+
+
 def cdd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Longest run of dry days (RR < 1 mm) within the season (days); a missing day ends a run."""
-    return null_where_empty(longest_run(cube.prcp < WET_DAY_MM).astype(np.float64), cube.prcp)
+    return reduce_in_blocks(lambda prcp: _longest_spell(prcp, wet=False), cube.prcp)
 
 
 def cwd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Longest run of wet days (RR >= 1 mm) within the season (days); a missing day ends a run."""
-    return null_where_empty(longest_run(cube.prcp >= WET_DAY_MM).astype(np.float64), cube.prcp)
+    return reduce_in_blocks(lambda prcp: _longest_spell(prcp, wet=True), cube.prcp)
 
 
 def r10mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
@@ -234,18 +263,13 @@ def rx1day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) ->
     return np.fmax.reduce(cube.prcp, axis=-1).astype(np.float64)
 
 
-def rx5day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
-    """Largest precipitation sum over five consecutive season days, all with data (mm); NaN if no window.
-
-    Windows that reach outside the season (padding is NaN) or contain a missing day are not used.
-    """
-    prcp = cube.prcp
+def largest_five_day_total(prcp: np.ndarray) -> np.ndarray:
+    """Largest sum of five consecutive days along the last axis, windows with a NaN day skipped (mm)."""
     n_day = prcp.shape[-1]
     if n_day < 5:
         return np.full(prcp.shape[:-1], np.nan)
     missing = np.isnan(prcp)
-    filled = np.where(missing, 0.0, prcp)
-    total = np.cumsum(filled, axis=-1, dtype=np.float64)
+    total = np.cumsum(np.where(missing, 0.0, prcp), axis=-1, dtype=np.float64)
     gaps = np.cumsum(missing, axis=-1, dtype=np.int32)
     window = total[..., 4:].copy()
     window[..., 1:] -= total[..., :-5]
@@ -255,13 +279,26 @@ def rx5day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) ->
     return np.fmax.reduce(window, axis=-1)
 
 
-def sdii(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
-    """Simple daily intensity: precipitation of wet days divided by their number (mm/day); NaN if none wet."""
-    wet = cube.prcp >= WET_DAY_MM
+def rx5day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Largest precipitation sum over five consecutive season days, all with data (mm); NaN if no window.
+
+    Windows that reach outside the season (padding is NaN) or contain a missing day are not used.
+    """
+    return reduce_in_blocks(largest_five_day_total, cube.prcp)
+
+
+def _wet_day_intensity(prcp: np.ndarray) -> np.ndarray:
+    """Wet-day (>= 1 mm) precipitation over the number of wet days, along the last axis (mm/day)."""
+    wet = prcp >= WET_DAY_MM
     n_wet = np.count_nonzero(wet, axis=-1)
-    amount = np.sum(np.where(wet, cube.prcp, 0.0), axis=-1, dtype=np.float64)
+    amount = np.sum(np.where(wet, prcp, 0.0), axis=-1, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(n_wet > 0, amount / np.maximum(n_wet, 1), np.nan)
+
+
+def sdii(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+    """Simple daily intensity: precipitation of wet days divided by their number (mm/day); NaN if none wet."""
+    return reduce_in_blocks(_wet_day_intensity, cube.prcp)
 
 
 def wet_day_threshold(cube: SeasonCube, baseline: Baseline, q: float) -> tuple[np.ndarray, np.ndarray]:
@@ -283,11 +320,15 @@ def wet_day_threshold(cube: SeasonCube, baseline: Baseline, q: float) -> tuple[n
 def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season precipitation on days with RR above the baseline wet-day 95th percentile (mm)."""
     threshold, row_of_year = wet_day_threshold(cube, baseline, 0.95)
-    per_year = threshold[:, row_of_year]  # (feature, year)
-    very_wet = (cube.prcp >= WET_DAY_MM) & (cube.prcp > per_year[..., None])
-    value = np.sum(np.where(very_wet, cube.prcp, 0.0), axis=-1, dtype=np.float64)
-    value = np.where(np.isnan(per_year), np.nan, value)
-    return null_where_empty(value, cube.prcp)
+    per_row = threshold[:, row_of_year].reshape(-1)  # flat (feature * n_year + year)
+
+    def very_wet_total(rows: np.ndarray, prcp: np.ndarray) -> np.ndarray:
+        limit = per_row[rows][:, None]
+        very_wet = (prcp >= WET_DAY_MM) & (prcp > limit)
+        value = np.sum(np.where(very_wet, prcp, 0.0), axis=-1, dtype=np.float64)
+        return null_where_empty(np.where(np.isnan(limit[:, 0]), np.nan, value), prcp)
+
+    return reduce_in_blocks(very_wet_total, cube.prcp, pass_rows=True)
 
 
 # --- temperature indices ------------------------------------------------------------------------------------
@@ -323,43 +364,59 @@ def tnn(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np
     return np.fmin.reduce(cube.tmin, axis=-1).astype(np.float64)
 
 
+def _exceedance_share(cube: SeasonCube, baseline: Baseline, variable: str, q: float) -> np.ndarray:
+    """Share (%) of season days with ``variable`` beyond its calendar-day ``q`` threshold (above for q > 0.5)."""
+    thresholds = calendar_day_thresholds(cube, baseline, variable, q)
+    key = _season_day_keys(cube)
+
+    def share(rows: np.ndarray, values: np.ndarray) -> np.ndarray:
+        threshold = thresholds.on_rows(rows, key)
+        usable = ~np.isnan(values) & ~np.isnan(threshold)
+        beyond = values > threshold if q > 0.5 else values < threshold
+        return _percent_of_days(beyond, usable)
+
+    return reduce_in_blocks(share, getattr(cube, variable), pass_rows=True)
+
+
 def tx90p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Share of season days with TX above the baseline calendar-day 90th percentile (% of days with data)."""
-    threshold = calendar_day_thresholds(cube, baseline, "tmax", 0.9).on_season_days(cube)
-    usable = ~np.isnan(cube.tmax) & ~np.isnan(threshold)
-    return _percent_of_days(cube.tmax > threshold, usable)
+    return _exceedance_share(cube, baseline, "tmax", 0.9)
 
 
 def tn10p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Share of season days with TN below the baseline calendar-day 10th percentile (% of days with data)."""
-    threshold = calendar_day_thresholds(cube, baseline, "tmin", 0.1).on_season_days(cube)
-    usable = ~np.isnan(cube.tmin) & ~np.isnan(threshold)
-    return _percent_of_days(cube.tmin < threshold, usable)
+    return _exceedance_share(cube, baseline, "tmin", 0.1)
 
 
 # --- compound heat and drought ------------------------------------------------------------------------------
 
 
-def hot_dry_mask(cube: SeasonCube, baseline: Baseline) -> tuple[np.ndarray, np.ndarray]:
-    """Hot-dry days (TX above the baseline calendar-day 90th percentile and RR < 1 mm) and usable days."""
-    threshold = calendar_day_thresholds(cube, baseline, "tmax", 0.9).on_season_days(cube)
-    usable = ~np.isnan(cube.tmax) & ~np.isnan(cube.prcp) & ~np.isnan(threshold)
-    hot_dry = (cube.tmax > threshold) & (cube.prcp < WET_DAY_MM)
-    return hot_dry, usable
+def _hot_dry(cube: SeasonCube, baseline: Baseline, longest: bool) -> np.ndarray:
+    """Count (or longest run) of hot-dry days per season-year; NaN where no day has data and a threshold.
+
+    A hot-dry day has TX above the baseline calendar-day 90th percentile and RR < 1 mm.
+    """
+    thresholds = calendar_day_thresholds(cube, baseline, "tmax", 0.9)
+    key = _season_day_keys(cube)
+
+    def reduce(rows: np.ndarray, tmax: np.ndarray, prcp: np.ndarray) -> np.ndarray:
+        threshold = thresholds.on_rows(rows, key)
+        usable = ~np.isnan(tmax) & ~np.isnan(prcp) & ~np.isnan(threshold)
+        hot_dry = (tmax > threshold) & (prcp < WET_DAY_MM)
+        value = longest_run(hot_dry) if longest else np.count_nonzero(hot_dry, axis=-1)
+        return np.where(np.count_nonzero(usable, axis=-1) > 0, value, np.nan)
+
+    return reduce_in_blocks(reduce, cube.tmax, cube.prcp, pass_rows=True)
 
 
 def hotdry_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Number of hot-dry days in the season (days); NaN where no day has data and a threshold."""
-    hot_dry, usable = hot_dry_mask(cube, baseline)
-    count = np.count_nonzero(hot_dry, axis=-1).astype(np.float64)
-    return np.where(np.count_nonzero(usable, axis=-1) > 0, count, np.nan)
+    return _hot_dry(cube, baseline, longest=False)
 
 
 def hotdry_spell(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Longest run of consecutive hot-dry days within the season (days); a missing day ends a run."""
-    hot_dry, usable = hot_dry_mask(cube, baseline)
-    run = longest_run(hot_dry).astype(np.float64)
-    return np.where(np.count_nonzero(usable, axis=-1) > 0, run, np.nan)
+    return _hot_dry(cube, baseline, longest=True)
 
 
 # --- catalog ------------------------------------------------------------------------------------------------

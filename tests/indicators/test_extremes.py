@@ -395,3 +395,19 @@ def test_float32_series_give_float64_values_close_to_float64_ones():
         v32 = entry.compute(cube32, fixed_baseline(cube32, 2000, 2004), entry.resolve({}))
         assert v32.dtype == np.float64 and v32.shape == (2, 6), name
         np.testing.assert_allclose(v32, v64, rtol=1e-6, atol=1e-6, err_msg=name)
+
+
+def test_threshold_cache_shares_one_pass_and_forgets_a_dead_cube():
+    import gc
+
+    daily = daily_series(2000, 4, tmax=np.arange(4 * 365 + 1, dtype=float) % 7)
+    cube = season_cube(daily, months=[1, 2])
+    base = fixed_baseline(cube, 2000, 2002)
+    first = extremes.calendar_day_thresholds(cube, base, "tmax", 0.9)
+    assert extremes.calendar_day_thresholds(cube, base, "tmax", 0.9) is first
+    assert extremes.calendar_day_thresholds(cube, base, "tmax", 0.5) is not first
+    keys = [k for k in extremes._THRESHOLD_CACHE if k[0] == id(cube)]
+    assert len(keys) == 2
+    del cube, first
+    gc.collect()
+    assert not any(k in extremes._THRESHOLD_CACHE for k in keys)
