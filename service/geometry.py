@@ -605,6 +605,21 @@ def _to_grid(geometries: np.ndarray, source: pyproj.CRS, grid_crs: pyproj.CRS) -
     return shapely.transform(geometries, move)
 
 
+def _wrap_longitudes(geometries: np.ndarray, grid: Grid) -> np.ndarray:
+    """Features shifted by 360 degrees of longitude where that puts them on the grid (0-360 grids)."""
+    xmin, _, xmax, _ = grid.bounds()
+    bounds = shapely.bounds(geometries)
+    out = geometries.copy()
+    for shift in (360.0, -360.0):
+        moved = (bounds[:, 2] + shift > xmin) & (bounds[:, 0] + shift < xmax)
+        off = (bounds[:, 2] <= xmin) | (bounds[:, 0] >= xmax)
+        pick = np.flatnonzero(moved & off)
+        if pick.size:
+            out[pick] = shapely.transform(geometries[pick], lambda xy, s=shift: xy + np.array([s, 0.0]))
+            bounds[pick] = shapely.bounds(out[pick])
+    return out
+
+
 def cell_areas_km2(grid: Grid) -> np.ndarray:
     """Area (km2) of every cell, (ny, nx) in the grid's own order: ellipsoidal on lat-lon grids."""
     plane = _plane(grid)
@@ -878,6 +893,8 @@ def _compute_weights(
     source = request_crs(parsed.crs)
     footprints = np.array([f.footprint for f in parsed.features], dtype=object)
     on_grid = _to_grid(footprints, source, grid.crs())
+    if grid.is_geographic:
+        on_grid = _wrap_longitudes(on_grid, grid)
     geoms = shapely.transform(on_grid, plane.to_plane)
     shapely.prepare(geoms)
     feature_area = shapely.area(geoms)

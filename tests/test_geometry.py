@@ -520,3 +520,10 @@ def test_unknown_crs_and_weighting_are_request_errors() -> None:
         parse_features(collection(polygon(box(0, 0, 1, 1))), crs="EPSG:99999999")
     with pytest.raises(RequestError, match="weighting 'volume' is not known"):
         weights_of(collection(polygon(box(0, 0, 1, 1))), lonlat_grid(0, 0, 1, 1, 1), weighting="volume")
+
+
+def test_longitudes_wrap_onto_a_0_to_360_grid() -> None:
+    grid = lonlat_grid(180.0, 0.0, 1.0, 4, 1)  # longitudes 180-184 east, i.e. -180 to -176
+    area = cell_areas_km2(grid)[0, 0]
+    w = weights_of(collection(polygon(box(-179.5, 0.0, -178.0, 1.0))), grid)
+    np.testing.assert_allclose(dense(w, grid)[0], [[area / 2, area, 0.0, 0.0]], rtol=1e-12)
