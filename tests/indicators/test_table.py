@@ -435,3 +435,62 @@ def test_feature_blocks_give_the_same_table(monkeypatch):
     blocks = compute_table(daily, ids, props, request)
     pd.testing.assert_frame_equal(whole.frame, blocks.frame)
     assert whole.warnings == blocks.warnings
+
+
+def test_default_set_and_the_issue_example_with_the_real_catalog():
+    import service.indicators  # noqa: F401  (the package imports every value module)
+
+    rng = np.random.default_rng(11)
+    daily = make_daily("1980-01-01", "1993-12-31", n_features=3, latitude=-12.0)
+    shape = daily.prcp.shape
+    daily = with_values(
+        daily,
+        tmax=28 + rng.normal(0, 3, shape),
+        tmin=17 + rng.normal(0, 2, shape),
+        prcp=np.where(rng.random(shape) < 0.4, rng.gamma(0.8, 9.0, shape), 0.0),
+    )
+    ids = ["v-1", "v-2", "v-3"]
+    frame = compute_table(daily, ids, [{}] * 3, _request()).frame
+    assert {
+        "spi_category",
+        "prcp_total_pct_normal",
+        "gdd",
+        "edd",
+        "cdd_label",
+        "prcp_total_and_tmean",
+    } <= set(frame)
+    assert frame["year"].min() == 1980 and len(frame) == 3 * 14
+    assert frame["spi_z"].equals(frame["spi"])
+    # the request of the issue, on the same series
+    example = _request(
+        years={"start": 1991, "end": 1993},
+        season={"months": [5, 6, 7, 8, 9, 10]},
+        baseline={"start": 1980, "end": 1990},
+        indicators=[
+            "prcp_total",
+            "tmean",
+            "cdd",
+            {"name": "gdd", "base": 10, "cap": 30},
+            {"name": "edd"},
+            "spei",
+        ],
+        lags=[0, 1, 2],
+        pairs=[["prcp_total", "tmean"]],
+        sequences=[[1, 2]],
+        spells=[
+            {
+                "name": "dry_hot",
+                "window": 5,
+                "when": [
+                    {"indicator": "prcp_total", "class_max": -1},
+                    {"indicator": "tmean", "class_min": 1},
+                ],
+            }
+        ],
+    )
+    table = compute_table(daily, ids, [{}] * 3, example)
+    assert table.frame["year"].tolist() == [1991, 1992, 1993] * 3
+    assert {"spei_category", "gdd_seq1_2", "dry_hot_run", "dry_hot_count", "tmean_class_lag2"} <= set(
+        table.frame
+    )
+    assert table.frame["tmean"].notna().all() and table.frame["season_complete"].eq(1.0).all()
