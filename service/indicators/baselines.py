@@ -138,19 +138,13 @@ def percent_of_normal(
 
 def _year_ranges(years: Sequence[int]) -> str:
     """1990, 1991, 1992, 1995 -> '1990-1992, 1995'."""
-    parts: list[str] = []
-    start = prev = None
+    runs: list[list[int]] = []
     for y in years:
-        if start is None:
-            start = prev = y
-        elif y == prev + 1:
-            prev = y
+        if runs and y == runs[-1][1] + 1:
+            runs[-1][1] = y
         else:
-            parts.append(f"{start}" if start == prev else f"{start}-{prev}")
-            start = prev = y
-    if start is not None:
-        parts.append(f"{start}" if start == prev else f"{start}-{prev}")
-    return ", ".join(parts)
+            runs.append([y, y])
+    return ", ".join(f"{a}" if a == b else f"{a}-{b}" for a, b in runs)
 
 
 def anomaly_warnings(

@@ -35,7 +35,7 @@ import pandas as pd
 
 from service.errors import OutOfRangeError, RequestError
 from service.indicators import baselines, classes, seasons, sequences
-from service.indicators.base import DailySeries, Indicator, get_indicator
+from service.indicators.base import Baseline, DailySeries, Indicator, get_indicator
 from service.schemas import (
     FixedBaseline,
     IndicatorRequest,
@@ -389,7 +389,7 @@ class _Block:
 def _compute_block(
     p: PlannedIndicator,
     cut: seasons.SeasonCut,
-    baseline: Any,
+    baseline: Baseline,
     request: IndicatorRequest,
     feature_ids: Sequence[str],
     out_cols: np.ndarray,
@@ -470,12 +470,12 @@ def _column_kinds(planned: Sequence[PlannedIndicator], request: IndicatorRequest
             kinds[f"{c}_{_sequence_suffix(a, b)}"] = _ColumnKind(
                 _CATEGORY, tuple(classes.joint_categories(labels[c], labels[c], "after"))
             )
-    for a, b in request.pairs:
+    for left, right in request.pairs:
         terms = []
-        for ref in (a, b):
+        for ref in (left, right):
             fam = by_column[ref].indicator.family
             terms.append([classes.pair_term(label, ref, fam) for label in labels[ref]])
-        kinds[_pair_column(a, b)] = _ColumnKind(
+        kinds[_pair_column(left, right)] = _ColumnKind(
             _CATEGORY, tuple(classes.joint_categories(terms[0], terms[1], "and"))
         )
     for s in request.spells:
@@ -523,8 +523,9 @@ def _group_columns(
                 sequences.lag_codes(block.codes, a), sequences.lag_codes(block.codes, b), n_class
             )
             out[f"{c}_{_sequence_suffix(a, b)}"] = codes[:, out_cols]
-    for a, b in request.pairs:
-        out[_pair_column(a, b)] = classes.joint_codes(blocks[a].codes, blocks[b].codes, n_class)[:, out_cols]
+    for left, right in request.pairs:
+        joint = classes.joint_codes(blocks[left].codes, blocks[right].codes, n_class)
+        out[_pair_column(left, right)] = joint[:, out_cols]
     for spell in request.spells:
         condition = _spell_condition(spell.when, blocks)
         out[f"{spell.name}_run"] = sequences.spell_run(condition)[:, out_cols]
