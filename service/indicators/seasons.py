@@ -179,12 +179,20 @@ def calendar_kind(calendar: str) -> str:
 
 
 def infer_calendar(month: np.ndarray, day: np.ndarray, year: np.ndarray) -> str:
-    """A calendar consistent with the dates: 360_day if Feb 30 occurs, noleap if a Gregorian Feb 29 is absent."""
+    """A calendar consistent with the dates (for date tables that do not carry one).
+
+    360_day if Feb 30 occurs; all_leap or julian if Feb 29 occurs outside Gregorian leap years; noleap if a
+    Gregorian leap year's Feb 28 is followed by Mar 1; else standard.
+    """
     feb = month == 2
     if np.any(feb & (day == 30)):
         return "360_day"
-    if np.any(feb & (day == 29)):
-        return "standard"
+    feb29_years = np.unique(year[feb & (day == 29)])
+    if feb29_years.size:
+        gregorian = (feb29_years % 4 == 0) & ((feb29_years % 100 != 0) | (feb29_years % 400 == 0))
+        if gregorian.all():
+            return "standard"
+        return "julian" if (feb29_years % 4 == 0).all() else "all_leap"
     leap_years = np.unique(year[feb & (day == 28)])
     leap_years = leap_years[(leap_years % 4 == 0) & ((leap_years % 100 != 0) | (leap_years % 400 == 0))]
     # a Gregorian leap year whose Feb 28 is followed by Mar 1 in the data: noleap

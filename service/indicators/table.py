@@ -129,14 +129,14 @@ def _reference(name: str, planned: Sequence[PlannedIndicator], where: str) -> st
 # --- resolving the request ----------------------------------------------------------------------------------
 
 
-def _date_arrays(dates: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
+def _date_arrays(dates: Any, calendar: str | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
     """year, month, day arrays and the calendar of a DateTable-like object (attributes or mapping)."""
 
     def get(name: str) -> Any:
-        return dates[name] if isinstance(dates, Mapping) else getattr(dates, name, None)
+        return dates.get(name) if isinstance(dates, Mapping) else getattr(dates, name, None)
 
     year, month, day = (np.asarray(get(n), dtype=np.int64) for n in ("year", "month", "day"))
-    calendar = get("calendar") or seasons.infer_calendar(month, day, year)
+    calendar = calendar or get("calendar") or seasons.infer_calendar(month, day, year)
     return year, month, day, str(calendar)
 
 
@@ -185,18 +185,18 @@ def _date_text(year: np.ndarray, month: np.ndarray, day: np.ndarray) -> str:
     return f"{year[0]:04d}-{month[0]:02d}-{day[0]:02d} to {year[-1]:04d}-{month[-1]:02d}-{day[-1]:02d}"
 
 
-def resolve_request(request: IndicatorRequest, dates: Any) -> IndicatorRequest:
+def resolve_request(request: IndicatorRequest, dates: Any, calendar: str | None = None) -> IndicatorRequest:
     """The request with every default filled from the data and every name checked against the catalog.
 
-    ``dates`` has int arrays ``year``, ``month``, ``day`` (and ``dayofyear``) for every time step, and may
-    carry ``calendar`` (else it is inferred from the dates). Fills: indicators (the default set), every
+    ``dates`` has int arrays ``year``, ``month``, ``day`` (and ``dayofyear``) for every time step; the
+    calendar is ``calendar``, else ``dates.calendar``, else inferred from the dates (pass the store's). Fills: indicators (the default set), every
     indicator's parameters, the baseline (the first ten season-years served whole, fewer if the data are
     shorter but at least 3), years (every season-year that the baseline and the lags allow), the default pair
     (prcp_total with tmean when both are requested and ``pairs`` was not given) and max_missing_share (0.10).
     Raises OutOfRangeError for a baseline or years outside the data, UnknownIndicatorError and RequestError
     for unknown names or parameters. Resolving a resolved request changes nothing.
     """
-    year, month, day, calendar = _date_arrays(dates)
+    year, month, day, calendar = _date_arrays(dates, calendar)
     ids, props = _request_features(request)
     groups = seasons.season_groups(request.season, ids, props)
     return _resolve(request, groups, year, month, day, calendar)

@@ -198,3 +198,14 @@ def test_property_season_errors_name_the_feature(props, match):
     with pytest.raises(FeatureError, match=match) as info:
         seasons.season_groups(PropertySeason(property="growing"), ["a", "b"], [{"growing": "year"}, props])
     assert info.value.feature_id == "b"
+
+
+def test_calendar_inferred_all_leap_and_julian():
+    lengths = (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31)
+    month = np.tile(np.repeat(np.arange(1, 13), lengths), 3)
+    day = np.tile(np.concatenate([np.arange(1, n + 1) for n in lengths]), 3)
+    assert seasons.infer_calendar(month, day, np.repeat(np.arange(1981, 1984), 366)) == "all_leap"
+    # 1900 has Feb 29 in the Julian calendar, not in the Gregorian one
+    julian = seasons.calendar_dates(1899, 1901, "julian")
+    assert seasons.infer_calendar(julian[1], julian[2], julian[0]) == "julian"
+    assert julian[0].size == 365 + 366 + 365

@@ -494,3 +494,15 @@ def test_default_set_and_the_issue_example_with_the_real_catalog():
         table.frame
     )
     assert table.frame["tmean"].notna().all() and table.frame["season_complete"].eq(1.0).all()
+
+
+def test_resolve_with_a_date_mapping_and_a_given_calendar():
+    daily = make_daily("1980-01-01", "1991-12-30", calendar="360_day")
+    dates = {"year": daily.year, "month": daily.month, "day": daily.day, "dayofyear": daily.dayofyear}
+    request = _request(indicators=["t_prcp"], season={"months": [12, 1, 2]})
+    resolved = resolve_request(request, dates, calendar="360_day")
+    # December to February (to Feb 30 in 360_day): the first whole season-year is 1981, the last 1991
+    assert (resolved.years.start, resolved.years.end) == (1981, 1991)
+    table = compute_table(daily, ["a"], [{}], resolved)
+    assert table.frame["t_prcp"].tolist() == [2.0 * 90] * 11
+    assert resolve_request(request, dates) == resolved  # the calendar inferred from Feb 30
