@@ -63,7 +63,13 @@ def _connect(address: str) -> distributed.Client:
     try:
         # set_as_default=False: a plain dask.compute elsewhere in the process must not silently move to
         # the cluster; only compute() below sends work there.
-        client = Client(address, timeout=CONNECT_TIMEOUT_S, set_as_default=False, name="wxshock")
+        client = Client(
+            address,
+            timeout=CONNECT_TIMEOUT_S,
+            set_as_default=False,
+            name="wxshock",
+            direct_to_workers=_direct_to_workers(),
+        )
     except (OSError, TimeoutError, ValueError) as exc:
         raise ClusterUnavailableError(
             f"dask scheduler {address!r} did not answer within {CONNECT_TIMEOUT_S:g} s "
@@ -73,6 +79,17 @@ def _connect(address: str) -> distributed.Client:
         ) from exc
     log.info("connected to dask scheduler %s", address)
     return client
+
+
+def _direct_to_workers() -> bool:
+    """Gather results straight from the workers unless dask's config says otherwise.
+
+    The daily series of a feature batch are large (features x days x variables float64); relayed through
+    the scheduler they cross the network twice and load the scheduler. Where the service cannot reach the
+    workers, set ``DASK_DISTRIBUTED__CLIENT__DIRECT_TO_WORKERS=False``.
+    """
+    configured = dask.config.get("distributed.client.direct-to-workers", None)
+    return True if configured is None else bool(configured)
 
 
 def _close_quietly(client: distributed.Client) -> None:

@@ -1,0 +1,200 @@
+"""The 5,000-polygon batch on local threads and on a local dask.distributed cluster (issue 6).
+
+    python bench/bench_cluster.py                  # 5,000 polygons, writes its section of bench/RESULTS.md
+    python bench/bench_cluster.py --features 500   # a quicker look, nothing written
+
+The batch is what a job runs: ``pipeline.run`` over every polygon (feature batches of the pipeline's default
+size), the aggregation computed through ``service.cluster.compute`` and the indicator table after it. It runs
+twice on the same machine:
+
+  threads  settings.threads = 2 (one per core), everything in this process
+  cluster  one ``dask scheduler`` and two ``dask worker --nworkers 1 --nthreads 1`` processes on 127.0.0.1
+           (the fixtures of the test suite), this process only the client
+
+The weights are computed once beforehand (they are cached by geometry in this process for both runs, and
+their time is reported on its own); the workers run one small warm-up batch first, so that their imports and
+first store open are not counted. Each mode runs ``--repeat`` times; the table gives the best and the median.
+The two runs must give the same table, bit for bit (checked, and the script fails otherwise).
+
+Polygons and store are those of bench/bench_aggregate.py: Voronoi cells of seeded points over the large demo
+store (invented region), so the two benchmarks measure the same batch.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import io
+import os
+import platform
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "bench"))
+
+RESULTS = ROOT / "bench" / "RESULTS.md"
+START, END = "<!-- bench_cluster: start -->", "<!-- bench_cluster: end -->"
+
+
+def batch_request(features: dict[str, Any]) -> Any:
+    """The batch job's request: a growing-season table with z scores, classes and a lag, over 1991-2022."""
+    from service.schemas import IndicatorRequest, validate_request
+
+    return validate_request(
+        IndicatorRequest,
+        {
+            "features": features,
+            "years": {"start": 1991, "end": 2022},
+            "season": {"months": [5, 6, 7, 8, 9, 10]},
+            "baseline": {"start": 1981, "end": 2010},
+            "indicators": [
+                "prcp_total",
+                "wet_days",
+                "tmean",
+                {"name": "gdd", "base": 10, "cap": 30},
+                {"name": "edd", "threshold": 29},
+            ],
+            "classes": {"edges": [-2, -1, 1, 2]},
+            "lags": [0, 1],
+        },
+    )
+
+
+def table_digest(frame: Any) -> str:
+    """SHA-256 of the table as Parquet bytes (values and column order), for the bit-for-bit comparison."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    sink = io.BytesIO()
+    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), sink)
+    return hashlib.sha256(sink.getvalue()).hexdigest()
+
+
+def timed_runs(request: Any, store: Any, settings: Any, repeat: int) -> tuple[list[float], str]:
+    """Wall-clock seconds of each run, and the digest of the (identical) tables."""
+    from service.pipeline import run
+
+    seconds: list[float] = []
+    digests: set[str] = set()
+    for _ in range(repeat):
+        start = time.perf_counter()
+        result = run(request, store, settings)
+        seconds.append(time.perf_counter() - start)
+        digests.add(table_digest(result.frame))
+    if len(digests) != 1:
+        raise SystemExit(f"runs with {settings.scheduler or 'threads'} gave different tables: {digests}")
+    return seconds, digests.pop()
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    parser.add_argument("--features", type=int, default=5000)
+    parser.add_argument("--repeat", type=int, default=2)
+    parser.add_argument("--no-write", action="store_true", help="print only; leave bench/RESULTS.md alone")
+    parser.add_argument(
+        "--store", help="another store (a quick look; nothing written); default the large demo"
+    )
+    args = parser.parse_args()
+
+    from bench_aggregate import invented_polygons, load
+
+    from service import cluster
+    from service.pipeline import features_and_weights
+    from service.settings import Settings
+    from service.store import open_store
+    from tests._support_cluster import DaskProcesses
+
+    if args.store:
+        store = open_store(args.store)
+        features = invented_polygons(store, args.features)
+    else:
+        store, features = load(args.features)
+    request = batch_request(features)
+    start = time.perf_counter()
+    features_and_weights(request, store, Settings(threads=2))  # fills the weights cache for both runs
+    weights_s = time.perf_counter() - start
+
+    print(f"{args.features} polygons on {store.location}; weights {weights_s:.1f} s", file=sys.stderr)
+    threads_s, threads_digest = timed_runs(request, store, Settings(threads=2), args.repeat)
+    print(f"threads: {[round(s, 1) for s in threads_s]} s", file=sys.stderr)
+
+    with tempfile.TemporaryDirectory(prefix="wxshock-bench-cluster-") as root:
+        processes = DaskProcesses(root=Path(root))
+        try:
+            processes.start_scheduler()
+            processes.ensure_workers()
+            on_cluster = Settings(scheduler=processes.address)
+            warm = batch_request(dict(features, features=features["features"][:20]))
+            timed_runs(warm, store, on_cluster, 1)
+            cluster_s, cluster_digest = timed_runs(request, store, on_cluster, args.repeat)
+        finally:
+            cluster.close_clients()
+            processes.stop_all()
+    print(f"cluster: {[round(s, 1) for s in cluster_s]} s", file=sys.stderr)
+    if cluster_digest != threads_digest:
+        raise SystemExit("the cluster's table differs from the threaded one")
+
+    section = render(args, store, weights_s, threads_s, cluster_s, threads_digest)
+    print(section)
+    if not args.no_write and not args.store and args.features == 5000:
+        write_section(section)
+    return 0
+
+
+def render(
+    args: Any, store: Any, weights_s: float, threads_s: list[float], cluster_s: list[float], digest: str
+) -> str:
+    """The Markdown section for bench/RESULTS.md."""
+    ny, nx = store.grid.shape
+    days = store.n_times
+    rows = [
+        ("threads (settings.threads = 2)", threads_s),
+        ("local cluster (1 scheduler, 2 workers x 1 thread)", cluster_s),
+    ]
+    lines = [
+        START,
+        "## Cluster: the 5,000-polygon batch on threads and on a local dask cluster (bench/bench_cluster.py)",
+        "",
+        f"{args.features} invented polygons (bench_aggregate's Voronoi cells) on the large demo store "
+        f"({ny} x {nx} cells, {days} days, tmax/tmin/prcp); `pipeline.run` as a batch job runs it (feature "
+        "batches of 1,000, growing season May-Oct 1991-2022, baseline 1981-2010, prcp_total, wet_days, "
+        "tmean, gdd, edd with z, classes and lag 1). Weights computed once beforehand "
+        f"({weights_s:.1f} s, not in the times below); workers warmed up with a 20-polygon batch.",
+        "",
+        "| run | best s | median s | runs |",
+        "|---|---:|---:|---:|",
+    ]
+    for label, seconds in rows:
+        lines.append(f"| {label} | {min(seconds):.1f} | {statistics.median(seconds):.1f} | {len(seconds)} |")
+    lines += [
+        "",
+        f"Both give the same table bit for bit (Parquet SHA-256 `{digest[:16]}...`). Machine: "
+        f"{os.cpu_count()} cores, Python {platform.python_version()}, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}; "
+        "other work was running on the machine at the time, so read the ratio rather than the seconds.",
+        END,
+    ]
+    return "\n".join(lines)
+
+
+def write_section(section: str) -> None:
+    """Replace this benchmark's section in bench/RESULTS.md (or append it)."""
+    text = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else "# Benchmark results\n"
+    if START in text and END in text:
+        before, rest = text.split(START, 1)
+        _, after = rest.split(END, 1)
+        text = before + section + after
+    else:
+        text = text.rstrip("\n") + "\n\n" + section + "\n"
+    RESULTS.write_text(text, encoding="utf-8")
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
