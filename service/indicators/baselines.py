@@ -93,7 +93,7 @@ def baseline_statistics(values: np.ndarray, baseline: Baseline) -> BaselineStati
 
 @dataclass(frozen=True)
 class Anomaly:
-    """z (feature, year), NaN where not computable, and why (reason codes OK, NO_VALUE, FEW_SEASONS, NO_SPREAD)."""
+    """z (feature, year), NaN where not computable, and why (codes OK, NO_VALUE, FEW_SEASONS, NO_SPREAD)."""
 
     z: np.ndarray
     reason: np.ndarray  # int8
@@ -129,7 +129,7 @@ def standardized_anomaly(values: np.ndarray) -> Anomaly:
 def percent_of_normal(
     values: np.ndarray, stats: BaselineStatistics, *, min_seasons: int = MIN_BASELINE_SEASONS
 ):
-    """100 x value / baseline mean (%), null where the mean is 0 or rests on fewer than ``min_seasons`` seasons."""
+    """100 x value / baseline mean (%), null where the mean is 0 or rests on fewer than ``min_seasons``."""
     values = np.asarray(values, dtype=np.float64)
     usable = (stats.count >= min_seasons) & (stats.mean > 0)
     with np.errstate(invalid="ignore", divide="ignore"):

@@ -118,7 +118,7 @@ def wmo_spi_category(values: np.ndarray) -> np.ndarray:
 
 
 def pair_term(label: str, column: str, family: str) -> str:
-    """How one indicator's class reads inside a joint class: directional words alone, others with the column."""
+    """How one class reads inside a joint class: directional words alone, other labels after the column."""
     directional = family in ("precipitation", "drought", "temperature") and label != NEAR_NORMAL
     return label if directional else f"{column} {label}"
 

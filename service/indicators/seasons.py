@@ -290,9 +290,9 @@ def cut_season(
 ) -> SeasonCut:
     """Cut the rows ``feature_index`` of ``daily`` into season-years (feature, season_year, day).
 
-    Vectorised over features and days: one slice copy per variable and season-year. The cube holds every season-year the record
-    serves whole; a (feature, season-year) whose share of missing days (absent from the record, or any
-    variable NaN) exceeds ``max_missing_share`` is NaN throughout and ``complete`` is False there.
+    Vectorised over features and days: one slice copy per variable and season-year. The cube holds every
+    season-year the record serves whole, in the series' dtype (float32 stays float32); a (feature,
+    season-year) whose share of missing days (absent from the record, or any variable NaN) exceeds ``max_missing_share`` is NaN throughout and ``complete`` is False there.
     """
     if feature_index is None:
         feature_index = np.arange(daily.tmax.shape[0], dtype=np.int64)

@@ -159,7 +159,7 @@ def _request_features(request: IndicatorRequest) -> tuple[list[str], list[dict]]
 def _served_span(
     groups: Sequence[seasons.SeasonGroup], year: np.ndarray, month: np.ndarray, day: np.ndarray, calendar: str
 ) -> tuple[int, int, str]:
-    """First and last season-year that every season group can serve whole, and a description of the seasons."""
+    """First and last season-year that every season group serves whole, and a description of the seasons."""
     first, last = -(10**9), 10**9
     names = []
     for group in groups:
@@ -189,10 +189,11 @@ def resolve_request(request: IndicatorRequest, dates: Any, calendar: str | None 
     """The request with every default filled from the data and every name checked against the catalog.
 
     ``dates`` has int arrays ``year``, ``month``, ``day`` (and ``dayofyear``) for every time step; the
-    calendar is ``calendar``, else ``dates.calendar``, else inferred from the dates (pass the store's). Fills: indicators (the default set), every
-    indicator's parameters, the baseline (the first ten season-years served whole, fewer if the data are
-    shorter but at least 3), years (every season-year that the baseline and the lags allow), the default pair
-    (prcp_total with tmean when both are requested and ``pairs`` was not given) and max_missing_share (0.10).
+    calendar is ``calendar``, else ``dates.calendar``, else inferred from the dates (pass the store's).
+    Fills: indicators (the default set), every indicator's parameters, the baseline (the first ten
+    season-years served whole, fewer if the data are shorter but at least 3), years (every season-year that
+    the baseline and the lags allow), the default pair (prcp_total with tmean when both are requested and
+    ``pairs`` was not given) and max_missing_share (0.10).
     Raises OutOfRangeError for a baseline or years outside the data, UnknownIndicatorError and RequestError
     for unknown names or parameters. Resolving a resolved request changes nothing.
     """

@@ -1,4 +1,4 @@
-"""Baselines, z against them (sample sd, ddof = 1) and percent of normal, checked by hand and against numpy."""
+"""Baselines, z against them (sample sd, ddof = 1) and percent of normal, by hand and against numpy."""
 
 from __future__ import annotations
 
