@@ -133,7 +133,7 @@ class DaskProcesses:
         argv = [
             _dask(), "worker", self.address, "--host", HOST, "--nworkers", "1", "--nthreads", "1",
             "--name", name, "--local-directory", str(local_dir), "--no-dashboard", "--death-timeout", "60",
-            "--memory-limit", "4GiB",
+            "--memory-limit", "4GiB", "--preload", "service.aggregate",
         ]  # fmt: skip
         self.workers[name] = _spawn(argv, self.root / f"{name}.log", self.root)
 
