@@ -109,12 +109,12 @@ def longest_run(condition: np.ndarray) -> np.ndarray:
 
 def prcp_total(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season precipitation total (mm): sum of the valid days' precipitation."""
-    return season_sum(cube.prcp)
+    return reduce_in_blocks(season_sum, cube.prcp)
 
 
 def wet_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Number of wet days (prcp >= 1 mm) in the season (days)."""
-    return count_days(cube.prcp >= WET_DAY_MM, cube.prcp)
+    return reduce_in_blocks(lambda prcp: count_days(prcp >= WET_DAY_MM, prcp), cube.prcp)
 
 
 def tmean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
@@ -124,12 +124,12 @@ def tmean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> 
 
 def tmax_mean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season mean of the daily maximum temperature (degC)."""
-    return season_mean(cube.tmax)
+    return reduce_in_blocks(season_mean, cube.tmax)
 
 
 def tmin_mean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season mean of the daily minimum temperature (degC)."""
-    return season_mean(cube.tmin)
+    return reduce_in_blocks(season_mean, cube.tmin)
 
 
 def dtr(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:

@@ -34,14 +34,13 @@ import numpy as np
 from scipy import special, stats
 
 from service.indicators.base import Baseline, Indicator, SeasonCube, register
-from service.indicators.basic import season_sum
+from service.indicators.basic import BLOCK_ELEMENTS, reduce_in_blocks, season_sum
 
 SOLAR_CONSTANT = 0.0820  # MJ m-2 min-1, FAO-56 eq. 21
-MJ_TO_MM = 0.408  # MJ m-2 day-1 to mm/day of evaporation, 1 / 2.45 MJ kg-1 (FAO-56 eq. 20)
+MJ_TO_MM = 0.408  # MJ m-2 day-1 to mm/day of evaporation, 1 / 2.45 MJ kg-1 (FAO-56, chapter 3)
 MIN_BASELINE_SEASONS = 3  # a baseline needs at least three seasons with data (issue 4)
 INDEX_LIMIT = 5.0  # SPI and SPEI are bounded to +-5: a probability of 0 or 1 maps here, never to infinity
 _PROBABILITY_FLOOR = float(stats.norm.cdf(-INDEX_LIMIT))
-_BLOCK_ELEMENTS = 1 << 18
 
 
 # --- radiation and PET --------------------------------------------------------------------------------------
@@ -113,7 +112,7 @@ def season_water_balance(cube: SeasonCube) -> np.ndarray:
     day_column = np.maximum(cube.dayofyear, 1) - 1  # padding days are NaN in the data anyway
     n_feature = cube.prcp.shape[0]
     out = np.empty(cube.prcp.shape[:2], dtype=np.float64)
-    step = max(1, _BLOCK_ELEMENTS // max(day_column.size, 1))
+    step = max(1, BLOCK_ELEMENTS // max(day_column.size, 1))
     for start in range(0, n_feature, step):
         block = slice(start, start + step)
         ra = np.take(radiation[block], day_column, axis=1)  # (feature, year, day)
@@ -358,7 +357,7 @@ def standardize_against_baseline(values: np.ndarray, baseline: Baseline, kind: s
 
 def spi(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Standardized Precipitation Index of the season total (standard-normal units)."""
-    return standardize_against_baseline(season_sum(cube.prcp), baseline, "gamma")
+    return standardize_against_baseline(reduce_in_blocks(season_sum, cube.prcp), baseline, "gamma")
 
 
 def spei(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:

@@ -265,12 +265,12 @@ def cwd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np
 
 def r10mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Number of days with RR >= 10 mm in the season (days)."""
-    return count_days(cube.prcp >= 10.0, cube.prcp)
+    return reduce_in_blocks(lambda prcp: count_days(prcp >= 10.0, prcp), cube.prcp)
 
 
 def r20mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Number of days with RR >= 20 mm in the season (days)."""
-    return count_days(cube.prcp >= 20.0, cube.prcp)
+    return reduce_in_blocks(lambda prcp: count_days(prcp >= 20.0, prcp), cube.prcp)
 
 
 def rx1day(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
@@ -351,22 +351,22 @@ def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -
 
 def su(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Summer days: number of days with TX > 25 degC (days)."""
-    return count_days(cube.tmax > 25.0, cube.tmax)
+    return reduce_in_blocks(lambda tmax: count_days(tmax > 25.0, tmax), cube.tmax)
 
 
 def tr(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Tropical nights: number of days with TN > 20 degC (days)."""
-    return count_days(cube.tmin > 20.0, cube.tmin)
+    return reduce_in_blocks(lambda tmin: count_days(tmin > 20.0, tmin), cube.tmin)
 
 
 def fd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Frost days: number of days with TN < 0 degC (days)."""
-    return count_days(cube.tmin < 0.0, cube.tmin)
+    return reduce_in_blocks(lambda tmin: count_days(tmin < 0.0, tmin), cube.tmin)
 
 
 def icing_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Icing days (ETCCDI ID): number of days with TX < 0 degC (days)."""
-    return count_days(cube.tmax < 0.0, cube.tmax)
+    return reduce_in_blocks(lambda tmax: count_days(tmax < 0.0, tmax), cube.tmax)
 
 
 def txx(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:

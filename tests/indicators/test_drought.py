@@ -27,6 +27,8 @@ def test_fao56_example_8_radiation():
     assert drought.inverse_relative_distance(j) == pytest.approx(0.985, abs=1e-3)
     assert declination == pytest.approx(0.120, abs=1e-3)
     assert drought.sunset_hour_angle(phi, declination) == pytest.approx(1.527, abs=1e-3)
+    # FAO-56 Example 9 [published], same place and day: daylight hours N = 24 ws / pi = 11.7 h (formula from memory)
+    assert 24 / np.pi * drought.sunset_hour_angle(phi, declination) == pytest.approx(11.7, abs=0.05)
     ra = drought.extraterrestrial_radiation(-20.0, j)
     assert ra == pytest.approx(32.2, abs=0.05)
     assert ra * drought.MJ_TO_MM == pytest.approx(13.1, abs=0.05)
