@@ -165,6 +165,44 @@ def test_cluster_aggregates_an_s3_store_like_threads_on_disk(
     assert Path(s3_server.log_path).exists()
 
 
+# --- wxshock ingest --out s3://... ---------------------------------------------------------------------------------
+
+
+def _netcdf(path: Path, years: tuple[int, int], seed: int) -> Path:
+    """A CF NetCDF file of daily tmax, tmin (degC) and prcp (mm/day) on a small grid."""
+    ds = make_dataset(ny=5, nx=4, years=years, layers=(), seed=seed)
+    ds["tmax"].attrs.update(units="degC", standard_name="air_temperature", cell_methods="time: maximum")
+    ds["tmin"].attrs.update(units="degC", standard_name="air_temperature", cell_methods="time: minimum")
+    ds["prcp"].attrs.update(units="mm/day", standard_name="lwe_precipitation_rate")
+    ds.to_netcdf(path)
+    return path
+
+
+def test_cli_ingest_writes_and_appends_to_s3_like_to_disk(
+    s3_server: S3Server, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture
+) -> None:
+    from service.cli import main
+
+    first = _netcdf(tmp_path / "first.nc", (2000, 2001), seed=3)
+    later = _netcdf(tmp_path / "later.nc", (2002, 2002), seed=4)
+    for name, value in s3_server.settings_env().items():
+        monkeypatch.setenv("WXSHOCK_" + name.upper(), value)
+    url = f"s3://{s3_server.bucket}/ingested/grid.zarr"
+    local = tmp_path / "grid.zarr"
+    for out in (url, str(local)):
+        assert main(["ingest", str(first), "--out", out, "--quiet"]) == 0
+        assert main(["ingest", str(later), "--out", out, "--quiet"]) == 0  # appended: the days that follow
+    printed = capsys.readouterr()
+    remote = open_store(url, storage_options=s3_server.storage_options())
+    on_disk = open_store(local)
+    assert remote.fingerprint == on_disk.fingerprint and remote.fingerprint in printed.out
+    assert (int(remote.dates.year[0]), int(remote.dates.year[-1])) == (2000, 2002)
+    for variable in ("tmax", "tmin", "prcp"):
+        assert remote.read(variable, *WHOLE).tobytes() == on_disk.read(variable, *WHOLE).tobytes()
+    for secret in _secrets(s3_server):
+        assert secret not in printed.out + printed.err
+
+
 # --- served through the API --------------------------------------------------------------------------------------
 
 
