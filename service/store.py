@@ -670,9 +670,9 @@ def _daily_numbers(time: xr.DataArray) -> tuple[np.ndarray, str]:
     """Day numbers (days since 1970-01-01, whole days) and calendar of a decoded daily time coordinate."""
     values = time.values
     if np.issubdtype(values.dtype, np.datetime64):
-        calendar = str(time.encoding.get("calendar", "standard"))
-        if calendar not in _DEFAULT_CALENDARS:
-            calendar = "standard"
+        # standard, gregorian and proleptic_gregorian agree on every date after 1582; one name keeps stores
+        # written from differently labelled files comparable (and appendable)
+        calendar = "standard"
         days = values.astype("datetime64[D]").astype(np.int64)
         return days, calendar
     if values.size and isinstance(values.flat[0], cftime.datetime):
