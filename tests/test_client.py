@@ -345,3 +345,39 @@ def test_client_is_importable_from_the_package() -> None:
     import service
 
     assert service.Client is Client
+
+
+EXAMPLES = Path(__file__).resolve().parent.parent / "examples" / "python"
+
+
+def test_the_python_examples_run(live_server, tiny_demo: Path, tmp_path: Path) -> None:  # noqa: F811
+    import subprocess
+    import sys
+
+    communities = str(tiny_demo.parent / "communities.geojson")
+    quick = subprocess.run(
+        [sys.executable, str(EXAMPLES / "quickstart.py"), live_server.base_url, communities],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert quick.returncode == 0, quick.stderr
+    assert quick.stdout.startswith("(1860, 27) sha256:")
+    assert "qu-007  2005" in quick.stdout
+    batch = subprocess.run(
+        [
+            sys.executable,
+            str(EXAMPLES / "batch_and_pictures.py"),
+            live_server.base_url,
+            communities,
+            str(tmp_path),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=180,
+    )
+    assert batch.returncode == 0, batch.stderr
+    assert "62 communities" in batch.stdout and "62/62" in batch.stderr
+    assert len(pd.read_parquet(tmp_path / "shocks.parquet")) > 0
+    for name in ("series.png", "map.png"):
+        assert (tmp_path / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

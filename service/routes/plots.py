@@ -164,7 +164,8 @@ def plot_map(
         max_vertices=settings.max_vertices_per_feature,
     )
     # Resolve years and baseline as the table would, for the one mapped indicator only.
-    resolved = resolve_request(body.model_copy(update={"indicators": [indicator]}), store.dates)
+    only_mapped = {"indicators": [indicator], "pairs": [], "sequences": [], "spells": []}
+    resolved = resolve_request(body.model_copy(update=only_mapped), store.dates)
     field = anomaly_field(
         store,
         indicator,

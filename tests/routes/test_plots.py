@@ -161,3 +161,17 @@ def test_plots_need_the_token_when_the_server_has_one(
                 member.post("/v1/plots/series", json=BODY | {"features": _one(tiny_communities)}).status_code
                 == 200
             )
+
+
+def test_map_plot_takes_a_full_indicator_request(live_server, tiny_communities: dict) -> None:  # noqa: F811
+    # The body of an indicator request with spells and pairs naming other indicators maps as well.
+    body = BODY | {
+        "features": _one(tiny_communities),
+        "spells": SPELLS,
+        "indicators": ["gdd"],
+        "pairs": [["prcp_total", "tmean"]],
+    }
+    with live_server.client() as http:
+        response = http.post("/v1/plots/map", params={"year": 2001}, json=body)
+    assert response.status_code == 200, response.text
+    assert _pixels(response.content).shape == (700, 900, 3)
