@@ -201,11 +201,8 @@ def _season_value(
     # start or end of the data (more than the one leap day shorter than the longest season-year).
     present_days = int(mask.sum())
     expected_days = present_days if present_days >= full_length - 1 else full_length
-    daily = None
-    for variable in variables:
-        block = store.read(variable, slice(None), slice(None), slice(first, stop))[:, :, mask]
-        daily = block if daily is None else daily + block
-    daily = daily / len(variables)
+    blocks = [store.read(v, slice(None), slice(None), slice(first, stop))[:, :, mask] for v in variables]
+    daily = np.sum(blocks, axis=0) / len(variables)  # tmean: (tmax + tmin) / 2, NaN where either is
     valid = np.isfinite(daily).sum(axis=2)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # cells without a day: NaN, set below anyway

@@ -12,11 +12,12 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from matplotlib.colors import LinearSegmentedColormap, Normalize
+from matplotlib.colors import Colormap, LinearSegmentedColormap, Normalize
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 
 from service.errors import RequestError
+from service.indicators.classes import class_labels, classify
 
 DEFAULT_EDGES: tuple[float, ...] = (-2.0, -1.0, 1.0, 2.0)
 
@@ -35,24 +36,20 @@ _FAMILIES: dict[str, dict[str, Any]] = {
     "precipitation": {"low": DRY, "high": WET, "low_word": "drier", "high_word": "wetter"},
     "temperature": {"low": COOL, "high": WARM, "low_word": "cooler", "high_word": "warmer"},
 }
-_INTENSITY = ("", "much ", "far ")
 
 
-def class_word(family: str, class_number: int) -> str:
-    """Our plain word for a class centred on 0: 'near normal', 'drier', 'much warmer', ..."""
-    if class_number == 0:
-        return "near normal"
-    side = _FAMILIES[family]["high_word" if class_number > 0 else "low_word"]
-    depth = abs(class_number) - 1
-    prefix = _INTENSITY[depth] if depth < len(_INTENSITY) else f"{depth + 1}x "
-    return f"{prefix}{side}"
+def class_word(family: str, class_number: int, edges: Sequence[float] = DEFAULT_EDGES) -> str:
+    """The table's own plain word for a class ('near normal', 'drier', 'much warmer', ...)."""
+    return class_labels(family, list(edges)).get(class_number, f"class {class_number}")
 
 
 def class_numbers(edges: Sequence[float]) -> list[int]:
-    """Class numbers for n edges: n + 1 classes numbered so that the class holding z = 0 is 0."""
-    edges = list(edges)
-    zero = int(np.searchsorted(np.asarray(edges), 0.0, side="right"))
-    return [i - zero for i in range(len(edges) + 1)]
+    """Class numbers of the n + 1 bands that n edges make, lowest first (the table's numbering)."""
+    edges = [float(e) for e in edges]
+    middles = (
+        [edges[0] - 1.0] + [(a + b) / 2 for a, b in zip(edges, edges[1:], strict=False)] + [edges[-1] + 1.0]
+    )
+    return [int(c) for c in classify(np.asarray(middles), edges)]
 
 
 def class_colour(family: str, class_number: int) -> str:
@@ -102,7 +99,9 @@ def _figure(size_px: tuple[int, int], dpi: int) -> Figure:
     return Figure(figsize=(width / dpi, height / dpi), dpi=dpi, facecolor="white")
 
 
-def _z_panel(ax: Any, years: np.ndarray, z: np.ndarray, edges: list[float], family: str, name: str) -> None:
+def _z_panel(
+    ax: Any, years: np.ndarray, z: np.ndarray, classes: np.ndarray, edges: list[float], family: str, name: str
+) -> None:
     """One panel: class bands shaded behind bars of z, each bar coloured by its class."""
     finite = z[np.isfinite(z)]
     reach = max(
@@ -119,16 +118,14 @@ def _z_panel(ax: Any, years: np.ndarray, z: np.ndarray, edges: list[float], fami
         ax.text(
             1.005,
             (max(low, -reach) + min(high, reach)) / 2,
-            class_word(family, number),
+            class_word(family, number, edges),
             transform=ax.get_yaxis_transform(),
             fontsize=7.5,
             va="center",
             ha="left",
             color="#444444",
         )
-    classes = np.searchsorted(np.asarray(edges), np.where(np.isfinite(z), z, 0.0), side="right")
-    zero = numbers.index(0)
-    colours = [class_colour(family, int(c) - zero) for c in classes]
+    colours = [class_colour(family, int(c)) if np.isfinite(c) else MISSING for c in classes]
     ok = np.isfinite(z)
     ax.bar(
         years[ok],
@@ -183,9 +180,11 @@ def series_plot(
             feature_id=str(feature_id),
             field="feature_id",
         )
-    panels = [(precipitation, "precipitation"), (temperature, "temperature")]
-    panels = [(name, family, _z_column(rows, name)) for name, family in panels]
-    panels = [(name, family, column) for name, family, column in panels if column is not None]
+    panels: list[tuple[str, str, str]] = []
+    for name, family in ((precipitation, "precipitation"), (temperature, "temperature")):
+        column = _z_column(rows, name)
+        if column is not None:
+            panels.append((name, family, column))
     if not panels:
         raise RequestError(
             f"the series plot needs the z-scores of {precipitation!r} or {temperature!r}; add them to "
@@ -212,7 +211,12 @@ def series_plot(
         ax.sharex(axes[0])
     for ax, (name, family, column) in zip(axes, panels, strict=False):
         z = pd.to_numeric(rows[column], errors="coerce").to_numpy(dtype=float)
-        _z_panel(ax, years, z, edges, family, name)
+        # The table's own class column when it has one, so that the picture and the table agree.
+        if f"{name}_class" in rows.columns:
+            classes = pd.to_numeric(rows[f"{name}_class"], errors="coerce").to_numpy(dtype=float)
+        else:
+            classes = classify(z, edges)
+        _z_panel(ax, years, z, classes, edges, family, name)
     if spells:
         _spell_strip(axes[-1], rows, years, list(spells))
     for ax in axes[:-1]:
@@ -247,7 +251,7 @@ def _spell_strip(ax: Any, rows: pd.DataFrame, years: np.ndarray, spells: list[st
     ax.grid(axis="x", color="#e4e4e4", linewidth=0.5, zorder=1)
 
 
-def anomaly_colours(family: str) -> LinearSegmentedColormap:
+def anomaly_colours(family: str) -> Colormap:
     """Our diverging scale for a family: deep low shade -> pale neutral -> deep high shade; grey for no data."""
     if family not in _FAMILIES:
         raise RequestError(f"family {family!r} has no map colours; use 'precipitation' or 'temperature'")

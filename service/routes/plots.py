@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Response
 
@@ -13,7 +13,7 @@ from service.schemas import IndicatorRequest
 
 router = APIRouter(prefix="/v1/plots", tags=["plots"], dependencies=[Depends(require_token)])
 
-PNG_RESPONSE = {
+PNG_RESPONSE: dict[int | str, dict[str, Any]] = {
     200: {
         "description": "A PNG picture",
         "content": {"image/png": {"schema": {"type": "string", "format": "binary"}}},
@@ -169,7 +169,7 @@ def plot_map(
     field = anomaly_field(
         store,
         indicator,
-        year if year is not None else resolved.years.end,
+        year if year is not None else (resolved.years.end if resolved.years is not None else None),
         season=resolved.season,
         baseline=resolved.baseline,
         max_missing_share=(
