@@ -5,6 +5,7 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import logging
+import re
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
@@ -51,9 +52,36 @@ problem document (`application/problem+json`).
 # --- problem documents ----------------------------------------------------------------------------------------
 
 
+# A dotted field name with list positions, e.g. "years.start", "pairs[0][1]", "spells[0].when[1].indicator".
+_FIELD_PATH = re.compile(r"^[a-z_]+(?:\[\d+\]|\.[a-z_]+)*$")
+# Fields whose dotted names follow the request's own structure (indicators.<name>.<parameter> does not: the
+# indicator list is addressed by position, so no pointer is made up for it).
+_POINTER_FIELDS = frozenset(
+    {"dataset", "years", "season", "baseline", "classes", "lags", "pairs", "sequences", "spells", "weighting",
+     "layout", "crs", "id_property", "max_missing_share", "variables"}
+)  # fmt: skip
+
+
+def pointer_from_field(field: str | None) -> str | None:
+    """An RFC 6901 pointer into the request body from a dotted field name ('years.start' -> '/years/start')."""
+    if field == "indicators":
+        return "/indicators"
+    if (
+        not field
+        or not _FIELD_PATH.match(field)
+        or re.split(r"[.\[]", field, maxsplit=1)[0] not in _POINTER_FIELDS
+    ):
+        return None
+    return "/" + re.sub(r"\[(\d+)\]", r"/\1", field).replace(".", "/")
+
+
 def problem_response(exc: BaseException, request: Request) -> JSONResponse:
     """The problem+json response of an exception (WxshockError or anything else, which becomes a 500)."""
     status, doc = problem_for(exc, instance=request.url.path)
+    if 400 <= status < 500 and "pointer" not in doc and "feature_id" not in doc:
+        pointer = pointer_from_field(doc.get("field"))
+        if pointer is not None:
+            doc["pointer"] = pointer
     headers = {"WWW-Authenticate": 'Bearer realm="wxshock"'} if isinstance(exc, AuthError) else None
     return JSONResponse(doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=headers)
 

@@ -8,11 +8,13 @@ from pydantic import BaseModel, ConfigDict, Field
 
 
 class ProblemItem(BaseModel):
-    """One failing field of a request: where (an RFC 6901 pointer into the body) and why."""
+    """One failing field or feature of a request: where (an RFC 6901 pointer into the body) and why."""
 
     model_config = ConfigDict(extra="allow")
-    pointer: str
-    message: str
+    pointer: str | None = None
+    message: str | None = Field(default=None, description="Why a field failed validation.")
+    detail: str | None = Field(default=None, description="Why a feature failed.")
+    feature_id: str | None = None
 
 
 class Problem(BaseModel):

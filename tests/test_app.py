@@ -1,0 +1,544 @@
+"""service.app on live servers: the OpenAPI contract, problem documents for a corpus of bad requests, limits,
+bearer tokens, CORS, a schemathesis run, and a bounded load test while a batch job runs."""
+
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+import shutil
+import statistics
+import subprocess
+import threading
+import time
+from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from service.app import create_app, openapi_document, pointer_from_field
+from service.settings import Settings
+from tests import _support_server as server_support
+
+live_server = server_support.live_server
+
+ROOT = Path(__file__).resolve().parents[1]
+INDICATORS = ["prcp_total", "tmean", {"name": "gdd", "base": 10, "cap": 30}]
+PROBLEM = "application/problem+json"
+
+
+# --- the OpenAPI contract -------------------------------------------------------------------------------------
+
+
+def test_the_app_schema_equals_the_committed_openapi_json() -> None:
+    committed = json.loads((ROOT / "openapi" / "openapi.json").read_text(encoding="utf-8"))
+    assert openapi_document() == committed, (
+        "the API changed: run `wxshock openapi` and commit openapi/openapi.json"
+    )
+
+
+def test_the_schema_is_built_without_opening_any_store(tmp_path: Path) -> None:
+    settings = Settings(stores=[str(tmp_path / "not-there.zarr")], data_dir=tmp_path)
+    schema = create_app(settings, open_stores=False).openapi()
+    assert not (tmp_path / "jobs").exists()
+    assert schema["info"]["title"] == "wxshock"
+
+
+def test_every_operation_has_a_stable_id_a_summary_and_problem_documents_for_errors() -> None:
+    schema = openapi_document()
+    operations = {
+        (method, path): operation
+        for path, item in schema["paths"].items()
+        for method, operation in item.items()
+    }
+    ids = {op["operationId"] for op in operations.values()}
+    assert {
+        "getHealth", "getReadiness", "listDatasets", "getDataset", "listIndicators", "computeIndicators",
+        "computeSeries", "submitJob", "getJob", "getJobResult", "cancelJob",
+    } <= ids  # fmt: skip
+    for (method, path), operation in operations.items():
+        assert operation.get("summary"), (method, path)
+        for status, response in operation["responses"].items():
+            if status.startswith(("4", "5")) and path not in ("/ready",):
+                assert list(response["content"]) == [PROBLEM], (method, path, status)
+    table = schema["paths"]["/v1/indicators"]["post"]["responses"]["200"]["content"]
+    assert set(table) == {"application/json", "text/csv", "application/vnd.apache.parquet"}
+
+
+def test_wxshock_openapi_writes_the_same_document(tmp_path: Path) -> None:
+    from service import cli
+
+    out = tmp_path / "openapi.json"
+    assert cli.main(["openapi", "--out", str(out)]) == 0
+    assert out.read_text(encoding="utf-8") == (ROOT / "openapi" / "openapi.json").read_text(encoding="utf-8")
+
+
+@pytest.mark.parametrize(
+    ("field", "pointer"),
+    [
+        ("years.start", "/years/start"),
+        ("pairs[0][1]", "/pairs/0/1"),
+        ("spells[0].when[1].indicator", "/spells/0/when/1/indicator"),
+        ("indicators", "/indicators"),
+        ("indicators.gdd.base", None),  # indicators are a list: no made-up pointer
+        ("Accept", None),
+        (None, None),
+    ],
+)
+def test_pointers_are_made_from_field_names_only_where_they_follow_the_body(
+    field: str | None, pointer: str | None
+) -> None:
+    assert pointer_from_field(field) == pointer
+
+
+# --- a corpus of bad requests ---------------------------------------------------------------------------------
+
+LIMITS = {
+    "max_body_bytes": 400_000,
+    "max_features_on_demand": 5,
+    "max_vertices_per_feature": 300,
+    "max_years_per_request": 30,
+}
+
+
+@pytest.fixture(scope="module")
+def strict_server(
+    tiny_demo: Path, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[server_support.LiveServer]:
+    """A server over the tiny demo with small limits."""
+    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path_factory.mktemp("strict"), **LIMITS)
+    with server_support.thread_server(settings) as server:
+        yield server
+
+
+@pytest.fixture(scope="module")
+def town(tiny_communities: dict) -> dict[str, Any]:
+    """One small demo community (a town polygon)."""
+    return next(f for f in tiny_communities["features"] if f["properties"]["kind"] == "town")
+
+
+def _valid(town: dict[str, Any], **fields: Any) -> dict[str, Any]:
+    """A request that the strict server serves, updated by ``fields``."""
+    body = {
+        "dataset": "demo",
+        "features": {"type": "FeatureCollection", "features": [copy.deepcopy(town)]},
+        "years": {"start": 2000, "end": 2005},
+        "baseline": {"start": 1980, "end": 1989},
+        "indicators": INDICATORS,
+    }
+    body.update(fields)
+    return body
+
+
+def _with_geometry(town: dict[str, Any], geometry: Any, **properties: Any) -> dict[str, Any]:
+    """A valid request whose one feature has another geometry (and extra properties)."""
+    feature = copy.deepcopy(town)
+    feature["geometry"] = geometry
+    feature["properties"].update(properties)
+    return _valid(town, features={"type": "FeatureCollection", "features": [feature]})
+
+
+def _square(x: float, y: float, size: float = 0.05) -> list[list[list[float]]]:
+    """A closed square ring with its south-west corner at (x, y)."""
+    return [[[x, y], [x + size, y], [x + size, y + size], [x, y + size], [x, y]]]
+
+
+def _circle(n: int) -> dict[str, Any]:
+    """A polygon of n vertices inside the demo grid."""
+    import math
+
+    ring = [
+        [-39.5 + 0.05 * math.cos(2 * math.pi * i / n), 14.5 + 0.05 * math.sin(2 * math.pi * i / n)]
+        for i in range(n)
+    ]
+    return {"type": "Polygon", "coordinates": [[*ring, ring[0]]]}
+
+
+def _swap(town: dict[str, Any]) -> dict[str, Any]:
+    """The town's geometry with each position's coordinates swapped (latitude first)."""
+    return {"type": "Polygon", "coordinates": [[[y, x] for x, y in town["geometry"]["coordinates"][0]]]}
+
+
+def _many(town: dict[str, Any], n: int) -> dict[str, Any]:
+    """n copies of the town under distinct ids."""
+    features = []
+    for i in range(n):
+        feature = copy.deepcopy(town)
+        feature["id"] = f"t-{i}"
+        features.append(feature)
+    return {"type": "FeatureCollection", "features": features}
+
+
+# (name, make(town) -> body (dict, or bytes sent as is), status, problem slug, where: pointer / feature_id / limit)
+Case = tuple[str, Callable[[dict[str, Any]], Any], int, str, dict[str, Any]]
+NAN_RING = "[[[-39.5, 14.5], [NaN, 14.6], [-39.4, 14.5], [-39.5, 14.5]]]"
+CORPUS: list[Case] = [
+    ("malformed JSON", lambda t: b'{"features": {"type": "FeatureCollection", ', 400, "validation-failed",
+     {"pointer": ""}),
+    ("trailing comma", lambda t: b'{"features": 1,}', 400, "validation-failed", {"pointer": ""}),
+    ("body is a list", lambda t: b"[1, 2, 3]", 422, "validation-failed", {"pointer": ""}),
+    ("empty body", lambda t: b"", 422, "validation-failed", {"pointer": ""}),
+    ("features is a number", lambda t: _valid(t, features=3), 422, "validation-failed", {"pointer": "/features"}),
+    ("no features", lambda t: _valid(t, features={"type": "FeatureCollection", "features": []}), 422,
+     "validation-failed", {"pointer": "/features/features"}),
+    ("misspelt field", lambda t: {**_valid(t), "baselin": {"start": 1980, "end": 1989}}, 422, "validation-failed",
+     {"pointer": "/baselin"}),
+    ("years as text", lambda t: _valid(t, years={"start": "two thousand", "end": 2005}), 422, "validation-failed",
+     {"pointer": "/years/start"}),
+    ("years reversed", lambda t: _valid(t, years={"start": 2005, "end": 2000}), 422, "validation-failed",
+     {"pointer": "/years"}),
+    ("baseline of two years", lambda t: _valid(t, baseline={"start": 1980, "end": 1981}), 422, "validation-failed",
+     {"pointer": "/baseline"}),
+    ("negative lag", lambda t: _valid(t, lags=[0, -1]), 422, "validation-failed", {"pointer": "/lags"}),
+    ("repeated lag", lambda t: _valid(t, lags=[1, 1]), 422, "validation-failed", {"pointer": "/lags"}),
+    ("months not in a run", lambda t: _valid(t, season={"months": [1, 5]}), 422, "validation-failed",
+     {"pointer": "/season/months"}),
+    ("window day 13-01", lambda t: _valid(t, season={"start": "13-01", "end": "04-30"}), 422, "validation-failed",
+     {"pointer": "/season/start"}),
+    ("edges not increasing", lambda t: _valid(t, classes={"edges": [1, -1]}), 422, "validation-failed",
+     {"pointer": "/classes/edges"}),
+    ("unknown weighting", lambda t: _valid(t, weighting="volume"), 422, "validation-failed",
+     {"pointer": "/weighting"}),
+    ("sequence a >= b", lambda t: _valid(t, sequences=[[2, 1]]), 422, "validation-failed",
+     {"pointer": "/sequences"}),
+    ("spell without a bound", lambda t: _valid(t, spells=[{"name": "dry", "when": [{"indicator": "prcp_total"}]}]),
+     422, "validation-failed", {"pointer": "/spells/0/when/0"}),
+    ("unknown dataset", lambda t: _valid(t, dataset="elsewhere"), 404, "unknown-dataset", {"pointer": "/dataset"}),
+    ("a path as dataset", lambda t: _valid(t, dataset="/tmp/demo.zarr"), 404, "unknown-dataset",
+     {"pointer": "/dataset"}),
+    ("unknown indicator", lambda t: _valid(t, indicators=["prcp_totl"]), 422, "unknown-indicator",
+     {"field": "indicators"}),
+    ("unknown parameter", lambda t: _valid(t, indicators=[{"name": "gdd", "bse": 10}]), 422, "unknown-indicator",
+     {"field": "indicators.gdd.bse"}),
+    ("parameter out of bounds", lambda t: _valid(t, indicators=[{"name": "gdd", "base": 1000}]), 422,
+     "unknown-indicator", {"field": "indicators.gdd.base"}),
+    ("baseline outside the data", lambda t: _valid(t, baseline={"start": 1900, "end": 1910}), 422, "out-of-range",
+     {"pointer": "/baseline"}),
+    ("years outside the data", lambda t: _valid(t, years={"start": 2020, "end": 2030}), 422, "out-of-range",
+     {"pointer": "/years/end"}),
+    ("lags before the data start",
+     lambda t: _valid(t, years={"start": 1976, "end": 1980}, baseline={"start": 1990, "end": 1999}, lags=[0, 3]),
+     422, "out-of-range", {"pointer": "/years/start"}),
+    ("pair of an indicator not asked for", lambda t: _valid(t, pairs=[["prcp_total", "edd"]]), 422,
+     "invalid-request", {"pointer": "/pairs/0/1"}),
+    ("unknown weight layer", lambda t: _valid(t, weighting={"layer": "cropland"}), 404, "unknown-dataset",
+     {"pointer": "/weighting/layer"}),
+    ("unreadable CRS", lambda t: _valid(t, crs="EPSG:999999"), 422, "invalid-request", {"pointer": "/crs"}),
+    ("ring not closed", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": [_square(-39.5, 14.5)[0][:-1]]}),
+     422, "invalid-feature", {"feature_id": True}),
+    ("swapped coordinates", lambda t: _with_geometry(t, _swap(t)), 422, "invalid-feature", {"feature_id": True}),
+    ("self-intersecting polygon",
+     lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": [[[-39.5, 14.5], [-39.4, 14.6], [-39.4, 14.5],
+                                                                       [-39.5, 14.6], [-39.5, 14.5]]]}),
+     422, "invalid-feature", {"feature_id": True}),
+    ("polygon outside the grid", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": _square(10, 10)}),
+     422, "feature-without-data", {"feature_id": True}),
+    ("unknown geometry type", lambda t: _with_geometry(t, {"type": "Blob", "coordinates": [1, 2]}), 422,
+     "invalid-feature", {"feature_id": True}),
+    ("coordinates as text",
+     lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": [[["a", "b"], ["c", "d"], ["e", "f"], ["a", "b"]]]}),
+     422, "invalid-feature", {"feature_id": True}),
+    ("NaN coordinates",
+     lambda t: json.dumps(_with_geometry(t, {"type": "Polygon", "coordinates": "RING"})).replace('"RING"', NAN_RING)
+     .encode(), 422, "invalid-feature", {"feature_id": True}),
+    ("latitude beyond 90", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": _square(-39.5, 94.5)}), 422,
+     "invalid-feature", {"feature_id": True}),
+    ("point without buffer", lambda t: _with_geometry(t, {"type": "Point", "coordinates": [-39.5, 14.5]}), 422,
+     "invalid-feature", {"pointer": "/features/features/0/properties/buffer_m"}),
+    ("duplicate feature ids", lambda t: _valid(t, features={"type": "FeatureCollection", "features": [t, t]}), 422,
+     "invalid-feature", {"pointer": "/features/features/1"}),
+    ("too many features", lambda t: _valid(t, features=_many(t, 6)), 413, "limit-exceeded",
+     {"limit": "max_features_on_demand"}),
+    ("too many vertices", lambda t: _with_geometry(t, _circle(400)), 422, "limit-exceeded",
+     {"limit": "max_vertices_per_feature"}),
+    ("too many years", lambda t: _valid(t, years={"start": 1990, "end": 2022}), 422, "limit-exceeded",
+     {"limit": "max_years_per_request"}),
+    ("oversized body", lambda t: _valid(t, features=_many(t, 3) | {"padding": "x" * 500_000}), 413,
+     "limit-exceeded", {"limit": "max_body_bytes"}),
+]  # fmt: skip
+
+
+@pytest.mark.parametrize(("name", "make", "status", "slug", "where"), CORPUS, ids=[c[0] for c in CORPUS])
+def test_each_bad_request_gets_the_right_problem_document(
+    strict_server: server_support.LiveServer,
+    town: dict[str, Any],
+    name: str,
+    make: Callable[[dict[str, Any]], Any],
+    status: int,
+    slug: str,
+    where: dict[str, Any],
+) -> None:
+    body = make(town)
+    with strict_server.client() as client:
+        if isinstance(body, bytes):
+            response = client.post(
+                "/v1/indicators", content=body, headers={"Content-Type": "application/json"}
+            )
+        else:
+            response = client.post("/v1/indicators", json=body)
+    assert response.status_code == status, response.text
+    assert response.headers["content-type"] == PROBLEM
+    problem = response.json()
+    assert problem["type"] == f"tag:wxshock,2026:problem/{slug}"
+    assert problem["status"] == status and problem["title"] and problem["instance"] == "/v1/indicators"
+    assert len(problem["detail"]) > 20
+    for key, expected in where.items():
+        if expected is True:
+            assert problem.get(key), (key, problem)
+        else:
+            assert problem.get(key) == expected, (key, problem)
+    if slug == "validation-failed":
+        assert problem["errors"] and all("pointer" in e and e["message"] for e in problem["errors"])
+
+
+def test_the_corpus_is_large_enough() -> None:
+    assert len(CORPUS) >= 30
+
+
+def test_the_valid_request_of_the_corpus_is_served(
+    strict_server: server_support.LiveServer, town: dict
+) -> None:
+    with strict_server.client() as client:
+        response = client.post("/v1/indicators", json=_valid(town))
+    assert response.status_code == 200, response.text
+    assert len(response.json()["rows"]) == 6
+
+
+def test_a_chunked_body_that_outgrows_the_limit_is_refused(strict_server: server_support.LiveServer) -> None:
+    def chunks() -> Iterator[bytes]:
+        yield b'{"features": {"type": "FeatureCollection", "features": [], "padding": "'
+        for _ in range(100):
+            yield b"x" * 10_000
+        yield b'"}}'
+
+    with strict_server.client() as client:
+        response = client.post(
+            "/v1/indicators", content=chunks(), headers={"Content-Type": "application/json"}
+        )
+    assert response.status_code == 413
+    problem = response.json()
+    assert problem["limit"] == "max_body_bytes" and "more than 400000 bytes" in problem["detail"]
+
+
+@pytest.mark.parametrize(
+    ("method", "path", "status", "kwargs"),
+    [
+        ("GET", "/v1/nothing", 404, {}),
+        ("DELETE", "/v1/datasets", 405, {}),
+        ("POST", "/v1/indicators?format=xml", 422, {"json": {}}),
+        ("POST", "/v1/indicators", 406, {"headers": {"Accept": "image/png"}}),
+        ("POST", "/v1/indicators", 422, {"content": b"{}", "headers": {"Content-Type": "text/plain"}}),
+        ("POST", "/v1/jobs?format=xlsx", 422, {"json": {}}),
+    ],
+)
+def test_routes_methods_and_formats_that_do_not_exist_are_problems_too(
+    strict_server: server_support.LiveServer, town: dict, method: str, path: str, status: int, kwargs: dict
+) -> None:
+    if status == 406:
+        kwargs = {**kwargs, "json": _valid(town)}
+    with strict_server.client() as client:
+        response = client.request(method, path, **kwargs)
+    assert response.status_code == status, response.text
+    assert response.headers["content-type"] == PROBLEM
+    assert response.json()["status"] == status
+
+
+def test_a_job_with_more_features_than_the_job_limit_is_refused(
+    tmp_path: Path, tiny_demo: Path, town: dict
+) -> None:
+    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path, max_features_per_job=3)
+    with server_support.thread_server(settings) as server, server.client() as client:
+        response = client.post("/v1/jobs", json=_valid(town, features=_many(town, 4)))
+    assert response.status_code == 413
+    assert response.json()["limit"] == "max_features_per_job"
+
+
+# --- bearer tokens and CORS -----------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def secured_server(
+    tiny_demo: Path, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[server_support.LiveServer]:
+    """A server with one plain token, one token given as a SHA-256 digest in a file, and CORS for one origin."""
+    data_dir = tmp_path_factory.mktemp("secured")
+    token_file = data_dir / "tokens.sha256"
+    digest = hashlib.sha256(b"file-token-2").hexdigest()
+    token_file.write_text(f"# research group tokens\n{digest}  # alice\n\n", encoding="utf-8")
+    settings = Settings(
+        stores=[str(tiny_demo)],
+        data_dir=data_dir,
+        tokens=["plain-token-1"],
+        token_file=token_file,
+        cors_origins=["http://localhost:5173"],
+    )
+    with server_support.thread_server(settings) as server:
+        yield server
+
+
+@pytest.mark.parametrize("path", ["/v1/datasets", "/v1/datasets/demo", "/v1/indicators", "/v1/jobs/abc"])
+@pytest.mark.parametrize(
+    "authorization", [None, "Bearer wrong", "Bearer", "Basic cGxhaW4tdG9rZW4tMQ==", "plain-token-1"]
+)
+def test_v1_routes_need_a_configured_token(
+    secured_server: server_support.LiveServer, path: str, authorization: str | None
+) -> None:
+    headers = {"Authorization": authorization} if authorization else {}
+    with secured_server.client(headers=headers) as client:
+        response = client.get(path)
+    assert response.status_code == 401
+    assert response.headers["content-type"] == PROBLEM
+    assert response.headers["WWW-Authenticate"].startswith("Bearer")
+    assert response.json()["type"].endswith("/unauthorized")
+
+
+@pytest.mark.parametrize("token", ["plain-token-1", "file-token-2"])
+def test_either_configured_token_opens_the_v1_routes(
+    secured_server: server_support.LiveServer, token: str
+) -> None:
+    with secured_server.client(token=token) as client:
+        assert client.get("/v1/datasets").status_code == 200
+        assert client.get("/v1/indicators").status_code == 200
+        assert client.get("/v1/jobs/unknown").status_code == 404  # past auth, then not found
+
+
+def test_a_post_without_a_token_is_refused_before_its_body_is_looked_at(
+    secured_server: server_support.LiveServer,
+) -> None:
+    with secured_server.client() as client:
+        assert client.post("/v1/indicators", content=b"{not json").status_code == 401
+        assert client.post("/v1/jobs", json={}).status_code == 401
+
+
+def test_health_and_ready_stay_open_with_tokens(secured_server: server_support.LiveServer) -> None:
+    with secured_server.client() as client:
+        assert client.get("/health").status_code == 200
+        assert client.get("/ready").status_code == 200
+
+
+def test_without_tokens_the_v1_routes_are_open(live_server: server_support.LiveServer) -> None:
+    with live_server.client() as client:
+        assert client.get("/v1/datasets").status_code == 200
+
+
+def _preflight(server: server_support.LiveServer, origin: str) -> httpx.Response:
+    """A CORS preflight for a POST with JSON and a bearer token."""
+    with server.client() as client:
+        return client.options(
+            "/v1/indicators",
+            headers={
+                "Origin": origin,
+                "Access-Control-Request-Method": "POST",
+                "Access-Control-Request-Headers": "authorization, content-type",
+            },
+        )
+
+
+def test_cors_allows_only_the_configured_origin(secured_server: server_support.LiveServer) -> None:
+    allowed = _preflight(secured_server, "http://localhost:5173")
+    assert allowed.status_code == 200
+    assert allowed.headers["access-control-allow-origin"] == "http://localhost:5173"
+    other = _preflight(secured_server, "http://elsewhere.invalid")
+    assert "access-control-allow-origin" not in other.headers
+    with secured_server.client(token="plain-token-1", headers={"Origin": "http://localhost:5173"}) as client:
+        response = client.get("/v1/datasets")
+    assert response.headers["access-control-allow-origin"] == "http://localhost:5173"
+    assert "X-Wxshock-Fingerprint" in response.headers["access-control-expose-headers"]
+
+
+def test_cors_is_off_unless_configured(live_server: server_support.LiveServer) -> None:
+    response = _preflight(live_server, "http://localhost:5173")
+    assert "access-control-allow-origin" not in response.headers
+    with live_server.client(headers={"Origin": "http://localhost:5173"}) as client:
+        assert "access-control-allow-origin" not in client.get("/v1/datasets").headers
+
+
+# --- schemathesis against the live app ------------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_schemathesis_finds_no_server_error_and_no_schema_violation(
+    live_server: server_support.LiveServer, tmp_path: Path
+) -> None:
+    executable = shutil.which("schemathesis") or shutil.which("st")
+    if executable is None:
+        pytest.fail("schemathesis is not installed; install the test extra (pip install -e '.[test]')")
+    checks = "not_a_server_error,status_code_conformance,content_type_conformance,response_schema_conformance"
+    result = subprocess.run(
+        [
+            executable, "run", f"{live_server.base_url}/openapi.json",
+            "--checks", checks,
+            "--max-examples", "12",
+            "--seed", "20261201",
+            "--phases", "examples,coverage,fuzzing",
+            "--workers", "1",
+            "--request-timeout", "30",
+            "--generation-database", "none",
+            "--suppress-health-check", "all",
+            "--no-color",
+        ],
+        capture_output=True, text=True, timeout=240, cwd=tmp_path,
+    )  # fmt: skip
+    output = result.stdout + result.stderr
+    assert result.returncode == 0, output[-6000:]
+    assert "No issues found" in output or "passed" in output, output[-3000:]
+
+
+# --- load while a batch job runs ------------------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_on_demand_requests_are_served_without_errors_while_a_batch_job_runs(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    polygons = [f for f in tiny_communities["features"] if f["geometry"]["type"] != "Point"]
+    batch = {"features": _many(polygons[0], 150), "indicators": INDICATORS}
+    with live_server.client() as client:
+        submitted = client.post("/v1/jobs", json=batch)
+        assert submitted.status_code == 202
+        location = submitted.headers["Location"]
+
+        def on_demand(i: int) -> tuple[int, float]:
+            feature = polygons[i % len(polygons)]
+            body = {"features": feature, "indicators": INDICATORS, "years": {"start": 1990, "end": 2022}}
+            start = time.perf_counter()
+            with live_server.client() as own:
+                response = own.post("/v1/indicators", json=body, params={"format": "parquet"})
+            return response.status_code, time.perf_counter() - start
+
+        health_times: list[float] = []
+        stop = threading.Event()
+
+        def probe_health() -> None:
+            with live_server.client() as own:
+                while not stop.is_set():
+                    start = time.perf_counter()
+                    assert own.get("/health").status_code == 200
+                    health_times.append(time.perf_counter() - start)
+                    time.sleep(0.05)
+
+        prober = threading.Thread(target=probe_health)
+        prober.start()
+        try:
+            with ThreadPoolExecutor(max_workers=4) as pool:  # four clients, 24 requests in all
+                results = list(pool.map(on_demand, range(24)))
+            state_during = client.get(location).json()["state"]
+        finally:
+            stop.set()
+            prober.join()
+        final = client.get(location).json()
+        deadline = time.monotonic() + 120
+        while final["state"] not in ("succeeded", "failed") and time.monotonic() < deadline:
+            time.sleep(0.1)
+            final = client.get(location).json()
+    assert [status for status, _ in results] == [200] * 24
+    assert final["state"] == "succeeded", final
+    assert state_during in ("queued", "running", "succeeded")
+    # The event loop never waits for computation: liveness answers quickly throughout.
+    assert health_times and statistics.median(health_times) < 0.5, health_times
+    print(
+        f"on-demand under load: median {statistics.median(t for _, t in results):.3f} s; job {state_during}"
+    )
