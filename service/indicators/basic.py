@@ -27,7 +27,7 @@ def valid_days(values: np.ndarray) -> np.ndarray:
     return np.count_nonzero(~np.isnan(values), axis=-1)
 
 
-def null_where_empty(result: np.ndarray, *arrays: np.ndarray) -> np.ndarray:
+def null_where_empty(result: np.ndarray | np.floating, *arrays: np.ndarray) -> np.ndarray:
     """``result`` as float64 with NaN where any of ``arrays`` has no valid day in that season-year."""
     out = np.asarray(result, dtype=np.float64)
     empty = np.zeros(out.shape, dtype=bool)

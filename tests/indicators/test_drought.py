@@ -273,3 +273,26 @@ def test_spei_fit_does_not_depend_on_the_origin_of_the_water_balance():
     w_shifted = drought.probability_weighted_moments(balance - 800.0)
     l2, l2_shifted = w[0] - 2 * w[1], w_shifted[0] - 2 * w_shifted[1]
     np.testing.assert_allclose(l2_shifted - l2, 0.3 * -800.0 / 12)
+
+
+@pytest.mark.parametrize("calendar", ["standard", "noleap", "360_day"])
+def test_spei_in_every_calendar(calendar):
+    rng = np.random.default_rng(2)
+    probe = daily_series(1990, 8, calendar=calendar)
+    n = probe.year.size
+    tmax = rng.normal(30, 3, (2, n))
+    prcp = np.where(rng.random((2, n)) < 0.3, rng.gamma(0.7, 12, (2, n)), 0.0)
+    daily = daily_series(
+        1990, 8, n_features=2, tmax=tmax, tmin=tmax - 10, prcp=prcp, calendar=calendar, latitude=[12.0, -3.0]
+    )
+    cube = season_cube(daily, months=[6, 7, 8])
+    balance = drought.season_water_balance(cube)
+    # by hand for one season: a 360-day year's days are spread over the 365-day orbit
+    days = cube.time_index[2][cube.in_season[2]]
+    doy = daily.dayofyear[days].astype(float)
+    if calendar == "360_day":
+        doy = (doy - 0.5) * 365 / 360 + 0.5
+    pet = drought.hargreaves(tmax[0, days], tmax[0, days] - 10, drought.extraterrestrial_radiation(12.0, doy))
+    assert balance[0, 2] == pytest.approx((prcp[0, days] - pet).sum())
+    spei = get_indicator("spei").compute(cube, fixed_baseline(cube, 1990, 1997), {})
+    assert np.isfinite(spei).all()
