@@ -143,7 +143,7 @@ def plot_map(
     height: Height = 700,
 ) -> Response:
     """PNG of one season-year's anomaly (z) over the grid, with the requested communities outlined."""
-    from service.geometry import parse_features
+    from service import pipeline
     from service.indicators.table import resolve_request
     from service.maps import anomaly_field, mappable, to_grid_crs
     from service.plots import map_plot
@@ -156,13 +156,9 @@ def plot_map(
     )
     mappable(indicator)
     store = registry.get_dataset(body.dataset)
-    parsed = parse_features(
-        body.features.model_dump(mode="json", exclude_none=False),
-        id_property=body.id_property,
-        crs=body.crs,
-        repair=body.repair,
-        max_vertices=settings.max_vertices_per_feature,
-    )
+    # The same feature checks as the table's (outside the grid, no data, limits), so a map never
+    # outlines a community that the table would refuse.
+    parsed, _ = pipeline.features_and_weights(body, store, settings)
     # Resolve years and baseline as the table would, for the one mapped indicator only.
     only_mapped = {"indicators": [indicator], "pairs": [], "sequences": [], "spells": []}
     resolved = resolve_request(body.model_copy(update=only_mapped), store.dates)

@@ -21,6 +21,12 @@ SPELLS = [
         "when": [{"indicator": "prcp_total", "z_min": 0.0}, {"indicator": "tmean", "z_min": 0.0}],
     }
 ]
+FAR_AWAY = {
+    "type": "Feature",
+    "id": "far-away",
+    "properties": {},
+    "geometry": {"type": "Polygon", "coordinates": [[[10, 10], [10.1, 10], [10.1, 10.1], [10, 10]]]},
+}
 BODY = {"baseline": {"start": 1981, "end": 1990}, "years": {"start": 1991, "end": 2020}, "lags": [0, 1]}
 
 
@@ -126,6 +132,7 @@ def test_map_plot_outlines_the_communities_over_the_anomaly(live_server, tiny_co
         ({"year": 1950}, {}, "1950 is not in the data"),
         ({}, {"season": {"property": "growing_season"}}, ""),
         ({}, {"baseline": {"start": 1900, "end": 1910}}, "1900-1910"),
+        ({}, {"features": FAR_AWAY}, "feature 'far-away' lies outside the grid"),
     ],
 )
 def test_map_plot_errors_are_problem_documents(
