@@ -29,6 +29,7 @@ from service.store import (
     _exists,
     _iso,
     _normalise_location,
+    append_store,
     open_store,
     write_store,
 )
@@ -136,20 +137,21 @@ def ingest_files(
 
     new = xr.Dataset({v: data.drop_vars("time", errors="ignore") for v, (data, _) in series.items()})
     new = new.assign_coords(time=_decoded_times(days, calendar), y=grid.y, x=grid.x)
-    layers = _static_layers(files, grid)
     existing = _existing_store(target, storage_options)
-    if existing is not None:
-        combined = _append(existing, new, grid, calendar, days, list(series))
-        for name in existing.layers + ((ELEVATION_LAYER,) if existing.has_elevation else ()):
-            layers.setdefault(name, existing.to_xarray()[name].load())
-        dataset = combined
-    else:
-        dataset = new
-    for name, layer in layers.items():
-        dataset[name] = (("y", "x"), np.asarray(layer.values, dtype=np.float32), _layer_attrs(layer))
-    dataset["crs"] = ((), np.int32(0), {"crs_wkt": grid.crs_wkt})
+    new["crs"] = ((), np.int32(0), {"crs_wkt": grid.crs_wkt})
     for v in series:
-        dataset[v].attrs["grid_mapping"] = "crs"
+        new[v].attrs["grid_mapping"] = "crs"
+    if existing is not None:
+        _check_append(existing, grid, calendar, days, list(series))
+        try:
+            return append_store(new, target, storage_options=storage_options, progress=progress)
+        except StoreError as exc:
+            raise IngestError(
+                f"ingest into {str(out)!r} failed, the previous store is unchanged: {exc.detail}"
+            ) from exc
+    dataset = new
+    for name, layer in _static_layers(files, grid).items():
+        dataset[name] = (("y", "x"), np.asarray(layer.values, dtype=np.float32), _layer_attrs(layer))
     # The same days on the same grid give the same store whether ingested at once or year by year, so the
     # attributes name no input files (their names are not part of what the data is).
     dataset.attrs.update({"title": "daily grid ingested from CF NetCDF files", "source": "wxshock ingest"})
@@ -501,10 +503,8 @@ def _existing_store(target: str, storage_options: dict | None) -> Store | None:
         ) from exc
 
 
-def _append(
-    store: Store, new: xr.Dataset, grid: Grid, calendar: str, days: np.ndarray, variables: list[str]
-) -> xr.Dataset:
-    """The existing store's data followed by the new days; they must continue it directly."""
+def _check_append(store: Store, grid: Grid, calendar: str, days: np.ndarray, variables: list[str]) -> None:
+    """The new days must continue the existing store directly, on its grid, calendar and variables."""
     if store.grid != grid:
         raise IngestError(
             f"store {store.location!r} has a different grid ({store.grid.shape[0]} x {store.grid.shape[1]} cells, "
@@ -519,7 +519,6 @@ def _append(
             f"store {store.location!r} holds {list(store.variables)!r} but the files hold {variables!r}; "
             "append the same variables"
         )
-    old = store.to_xarray()
     last = int(store._time_numbers[-1])  # noqa: SLF001 - same owner as the store
     start = int(days[0])
     if start <= last:
@@ -532,14 +531,6 @@ def _append(
             f"the files start {_date(start, calendar)} but store {store.location!r} ends {_date(last, calendar)}: "
             f"{start - last - 1} day(s) missing in between"
         )
-    old_part = old[variables].transpose("time", "y", "x").assign_coords(y=grid.y, x=grid.x)
-    old_part = old_part.drop_vars([c for c in old_part.coords if c not in ("time", "y", "x")])
-    for v in variables:
-        old_part[v].attrs = {}
-        old_part[v].encoding = {}
-    return xr.concat(
-        [old_part, new[variables]], dim="time", join="override", coords="minimal", compat="override"
-    )
 
 
 # --- static layers --------------------------------------------------------------------------------------------

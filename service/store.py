@@ -81,6 +81,7 @@ COMPRESSOR_NAME = "lz4"
 COMPRESSOR_LEVEL = 5
 
 TIME_UNITS = "days since 1970-01-01"
+TIME_COORD_CHUNK = 36_525  # a century of day numbers per chunk of the time coordinate, however long the store
 LAYOUT_VERSION = 1
 FINGERPRINT_ATTR = "wxshock_fingerprint"
 MASK_LAYER = "data_mask"
@@ -229,7 +230,8 @@ def _open_group(location: str, storage_options: dict | None, *, mode: str = "r")
     try:
         store = _zarr_store(location, storage_options, read_only=(mode == "r"))
         try:
-            return zarr.open_group(store, mode=mode, zarr_format=3, use_consolidated=(mode == "r") or None)
+            # consolidated metadata speeds reading; a store opened for writing must see the arrays themselves
+            return zarr.open_group(store, mode=mode, zarr_format=3, use_consolidated=(mode == "r"))
         except (ValueError, KeyError):
             return zarr.open_group(store, mode=mode, zarr_format=3, use_consolidated=False)
     except FileNotFoundError as exc:
@@ -593,8 +595,12 @@ class Layout:
     level: int = COMPRESSOR_LEVEL
 
     def chunks(self, ny: int, nx: int, nt: int) -> tuple[int, int, int]:
-        """(cy, cx, ct) of one compressed chunk for an array of this size."""
-        ct = nt if self.time_chunk is None else min(self.time_chunk, nt)
+        """(cy, cx, ct) of one compressed chunk for an array of this size.
+
+        The time length is fixed (not cut to the array), so a store that grows by appended years keeps the
+        chunking that a store written at once would have.
+        """
+        ct = nt if self.time_chunk is None else self.time_chunk
         return (min(self.tile, ny), min(self.tile, nx), max(ct, 1))
 
     def shards(self, ny: int, nx: int, nt: int) -> tuple[int, int, int] | None:
@@ -642,6 +648,105 @@ def write_store(
         _remove(aside, storage_options)
         raise
     return fingerprint
+
+
+def append_store(
+    ds: xr.Dataset,
+    location: str | Path,
+    *,
+    storage_options: dict | None = None,
+    progress: bool = False,
+) -> str:
+    """Append days that directly follow a store's last day; returns the new fingerprint.
+
+    ``ds`` is laid out as for :func:`write_store` (its static layers are ignored: the store keeps its own) and
+    must hold the store's variables on the store's grid and calendar. A local store is copied aside as hard
+    links (nothing is copied), the new days are written into the copy (zarr replaces a file rather than
+    changing it, so the links the old store still uses are untouched), the data mask and fingerprint are
+    recomputed, and the copy is swapped into place: only the chunks that hold new days are written. An object
+    store cannot hard-link, so there the whole store is rewritten aside instead.
+    """
+    target = _normalise_location(location)
+    store = open_store(target, storage_options=storage_options)
+    variables = store.variables
+    daily = ds[[v for v in variables if v in ds.data_vars]]
+    missing = [v for v in variables if v not in ds.data_vars]
+    if missing:
+        raise StoreFormatError(f"appending to store {store.name!r}: the new days lack {missing!r}")
+    extra = [v for v in VARIABLES if v in ds.data_vars and v not in variables]
+    if extra:
+        raise StoreFormatError(
+            f"appending to store {store.name!r}: it has no {extra!r}; append its variables only"
+        )
+    crs = _find_crs(ds)
+    if crs != store.grid.crs():
+        raise StoreFormatError(
+            f"appending to store {store.name!r}: the new days are in another CRS ({crs.name!r})"
+        )
+    daily = daily.assign_coords(crs=((), np.int32(0), {"crs_wkt": crs.to_wkt()}))
+    days, calendar = _daily_numbers(ds["time"])
+    last = int(store._time_numbers[-1]) if store.n_times else None
+    if calendar != store.calendar or last is None or int(days[0]) != last + 1:
+        raise StoreFormatError(
+            f"appending to store {store.name!r}: the new days must start the day after its last day "
+            f"({_iso(store.dates, store.n_times - 1)}, calendar {store.calendar!r}); they start "
+            f"{_iso(_date_table(days[:1], calendar), 0)} (calendar {calendar!r})"
+        )
+    if _is_url(target):
+        old = store.to_xarray()
+        combined = xr.concat(
+            [old[list(variables)].transpose("time", "y", "x"), daily.transpose("time", "y", "x")],
+            dim="time",
+            join="override",
+            coords="minimal",
+            compat="override",
+        )
+        for name in store.layers + ((ELEVATION_LAYER,) if store.has_elevation else ()):
+            combined[name] = old[name].load()
+        combined["crs"] = ((), np.int32(0), {"crs_wkt": crs.to_wkt()})
+        combined.attrs = {k: v for k, v in store._group.attrs.asdict().items() if k != FINGERPRINT_ATTR}
+        return write_store(combined, target, storage_options=storage_options, progress=progress)
+    cy, cx, ct = store.inner_chunk_shape
+    prepared = _prepare(daily, Layout(tile=max(cy, cx), time_chunk=ct))
+    aside = _aside_location(target, "appending")
+    try:
+        shutil.copytree(target, aside, copy_function=os.link)
+        _write_appended(aside, prepared, days, progress)
+        fingerprint = _finish(aside, storage_options, progress)
+        _swap_into_place(aside, target, storage_options)
+    except BaseException:
+        _remove(aside, storage_options)
+        raise
+    return fingerprint
+
+
+def _write_appended(location: str, prepared: _Prepared, days: np.ndarray, progress: bool) -> None:
+    """Grow the time axis of a store copy and write the new days into it."""
+    import dask.array as da
+
+    group = zarr.open_group(_zarr_store(location, None, read_only=False), mode="r+", zarr_format=3,
+                            use_consolidated=False)  # fmt: skip
+    time_array = group["time"]
+    old = int(time_array.shape[0])
+    time_array.resize((old + days.size,))
+    time_array[old:] = days.astype(np.int32)
+    sources, targets, regions = [], [], []
+    for v in prepared.variables:
+        array = group[v]
+        ny, nx, _ = array.shape
+        array.resize((ny, nx, old + days.size))
+        sources.append(prepared.dataset[v].data)
+        targets.append(array)
+        regions.append((slice(None), slice(None), slice(old, old + days.size)))
+    # a lock: new days share the last old chunk of each tile, which zarr reads, changes and writes back
+    import dask
+
+    with dask.config.set(scheduler="threads"):
+        if progress:
+            with _TqdmCallback("appending days"):
+                da.store(sources, targets, regions=regions, lock=True)
+        else:
+            da.store(sources, targets, regions=regions, lock=True)
 
 
 def _find_crs(ds: xr.Dataset) -> pyproj.CRS:
@@ -811,7 +916,7 @@ def _prepare(ds: xr.Dataset, layout: Layout) -> _Prepared:
             {"standard_name": "time", "axis": "T", "units": TIME_UNITS, "calendar": calendar},
         ),
     }
-    encoding["time"] = {"chunks": (max(nt, 1),)}
+    encoding["time"] = {"chunks": (TIME_COORD_CHUNK,)}
     encoding["x"] = {"chunks": (nx,)}
     encoding["y"] = {"chunks": (ny,)}
     attrs = {

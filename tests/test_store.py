@@ -17,6 +17,7 @@ from service.store import (
     FILL_VALUE,
     VARIABLES,
     Layout,
+    append_store,
     open_store,
     verify_store,
     write_store,
@@ -126,7 +127,7 @@ def test_describe_is_json_ready_and_complete(tmp_path: Path) -> None:
     assert info["lonlat_bounds"]["west"] <= lon and info["lonlat_bounds"]["south"] <= lat
     assert lon - info["lonlat_bounds"]["west"] < 0.05 and -122.1 < lon < -121.9
     assert info["fingerprint"].startswith("sha256:") and info["layers"] == ["population"]
-    assert info["chunks"] == {"y": 6, "x": 5, "time": 1080} and info["cells_with_data"] == 30
+    assert info["chunks"] == {"y": 6, "x": 5, "time": 3653} and info["cells_with_data"] == 30
 
 
 def test_store_pickles_as_its_location_and_reopens(tmp_path: Path) -> None:
@@ -264,3 +265,35 @@ def test_store_on_s3(tmp_path: Path, s3_server) -> None:  # noqa: F811 - fixture
 
 
 from tests._support_cluster import s3_server  # noqa: E402,F401 - the session's moto S3 fixture
+
+
+def test_append_writes_new_days_and_leaves_hard_linked_copies_alone(tmp_path: Path) -> None:
+    import os
+    import shutil
+
+    ds = make_dataset(ny=5, nx=4, years=(2000, 2003))
+    once = write_store(ds, tmp_path / "once.zarr")
+    first = ds.sel(time=slice("2000-01-01", "2001-12-31"))
+    rest = ds.sel(time=slice("2002-01-01", "2003-12-31")).drop_vars(["elevation", "population"])
+    write_store(first, tmp_path / "grown.zarr")
+    snapshot = tmp_path / "snapshot.zarr"
+    shutil.copytree(tmp_path / "grown.zarr", snapshot, copy_function=os.link)  # shares every file's inode
+    grown = append_store(rest, tmp_path / "grown.zarr")
+    assert grown == once  # same data, same layout: the same store as one written at once
+    assert verify_store(snapshot).ok and open_store(snapshot).describe()["time"]["end"] == "2001-12-31"
+    store = open_store(tmp_path / "grown.zarr")
+    assert len(store.dates) == 1461 and verify_store(tmp_path / "grown.zarr").ok
+    assert store.layers == ("population",) and store.has_elevation  # the store keeps its layers
+    got = store.read("tmax", slice(None), slice(None), slice(None))
+    assert np.nanmax(np.abs(got - ds["tmax"].transpose("y", "x", "time").values)) <= HALF_STEP
+
+
+def test_append_refuses_days_that_do_not_follow(tmp_path: Path) -> None:
+    ds = make_dataset(ny=2, nx=2, years=(2000, 2002))
+    write_store(ds.sel(time=slice("2000-01-01", "2000-12-31")), tmp_path / "s.zarr")
+    with pytest.raises(StoreFormatError, match=r"must start the day after its last day \(2000-12-31, calendar "
+                                                r"'standard'\); they start 2002-01-01"):  # fmt: skip
+        append_store(ds.sel(time=slice("2002-01-01", None)), tmp_path / "s.zarr")
+    with pytest.raises(StoreFormatError, match=r"the new days lack \['prcp'\]"):
+        append_store(ds.sel(time=slice("2001-01-01", None)).drop_vars("prcp"), tmp_path / "s.zarr")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["s.zarr"]
