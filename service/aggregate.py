@@ -35,8 +35,8 @@ REDUCTION_FAN_IN = 8
 # A day's mean is missing when the weight of its cells with data is below this share of the feature's
 # total weight (guards a denominator that is zero up to rounding).
 MIN_WEIGHT_SHARE = 1e-9
-# Days multiplied at a time within a chunk (a 32 x 32-cell tile of 256 days is 2 MB in float64).
-TIME_TILE_DAYS = 256
+# Days multiplied at a time within a chunk (a 32 x 32-cell tile of 128 days is 1 MB in float64).
+TIME_TILE_DAYS = 128
 
 
 @dataclass(frozen=True)
