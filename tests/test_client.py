@@ -381,3 +381,17 @@ def test_the_python_examples_run(live_server, tiny_demo: Path, tmp_path: Path) -
     assert len(pd.read_parquet(tmp_path / "shocks.parquet")) > 0
     for name in ("series.png", "map.png"):
         assert (tmp_path / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_daily_series_as_a_frame(client: Client, five: dict) -> None:
+    one = {"type": "FeatureCollection", "features": five["features"][:2]}
+    daily = client.series(one, years=(2000, 2001), variables=["prcp", "tmean"])
+    assert list(daily.columns) == ["feature_id", "date", "prcp", "tmean"]
+    assert len(daily) == 2 * 731  # 2000 is a leap year in the standard calendar
+    assert daily["date"].iloc[0] == "2000-01-01" and daily["date"].iloc[-1] == "2001-12-31"
+    assert daily.attrs["provenance"]["dataset"] == "demo"
+    # A season total from the daily series equals the table's (the table's floats are rounded to 1e-6).
+    table = client.indicators(one, baseline=(1981, 1990), years=(2000, 2000), indicators=["prcp_total"])
+    first = five["features"][0]["id"]
+    total = daily[(daily["feature_id"] == first) & daily["date"].str.startswith("2000")]["prcp"].sum()
+    assert table.loc[table["feature_id"] == first, "prcp_total"].item() == pytest.approx(total, abs=1e-5)
