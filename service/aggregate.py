@@ -151,15 +151,23 @@ def combine(partials: Sequence[Partial]) -> Partial:
 
 def finish(partial: Partial | None, n_features: int, days: int, add_offset: float) -> np.ndarray:
     """(feature, day) means in the variable's units from the fully reduced sums; NaN where no weight."""
-    out = np.full((n_features, days), np.nan)
     if partial is None:
-        return out
-    weight = np.broadcast_to(partial.total[:, None], partial.weighted_sum.shape)
-    if partial.correction is not None:
-        weight = weight + partial.correction
-    enough = weight > partial.total[:, None] * MIN_WEIGHT_SHARE
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(enough, partial.weighted_sum / weight + add_offset, np.nan)
+        return np.full((n_features, days), np.nan)
+    weighted_sum = partial.weighted_sum
+    if partial.correction is None:
+        # Every cell had data on every day: one division per row (the total weight is > 0 by construction).
+        mean = weighted_sum * (1.0 / partial.total)[:, None]
+    else:
+        weight = partial.total[:, None] + partial.correction
+        enough = weight > partial.total[:, None] * MIN_WEIGHT_SHARE
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = weighted_sum / weight
+        mean[~enough] = np.nan
+    if add_offset:
+        mean += add_offset
+    if len(partial.rows) == n_features:  # rows are unique and sorted, so they are 0..n-1
+        return mean
+    out = np.full((n_features, days), np.nan)
     out[partial.rows] = mean
     return out
 
