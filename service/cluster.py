@@ -47,7 +47,7 @@ def client_for(settings: Settings) -> distributed.Client | None:
         return None
     with _lock:
         client = _clients.get(address)
-        if client is not None and client.status in ("running", "connecting"):
+        if client is not None and client.status == "running":
             return client
         if client is not None:
             _close_quietly(client)
@@ -125,6 +125,7 @@ def compute(*collections: Any, settings: Settings) -> tuple[Any, ...]:
 def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...], address: str) -> tuple:
     """Run the collections on the cluster, waiting briefly for a worker; lost workers are the scheduler's."""
     from distributed import KilledWorker
+    from distributed.client import FutureCancelledError
     from distributed.comm.core import CommClosedError
 
     try:
@@ -146,9 +147,10 @@ def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...]
             "(distributed.scheduler.allowed-failures); check the workers' memory limit and logs",
             field="scheduler",
         ) from exc
-    except CommClosedError as exc:
+    except (CommClosedError, FutureCancelledError) as exc:
+        # FutureCancelledError: the client lost the scheduler while waiting ("scheduler-connection-lost").
         raise ClusterUnavailableError(
-            f"lost the connection to dask scheduler {address!r} during the computation ({exc}); "
-            "retry once the scheduler is back",
+            f"lost the connection to dask scheduler {address!r} during the computation "
+            f"({type(exc).__name__}); retry once the scheduler is back",
             field="scheduler",
         ) from exc

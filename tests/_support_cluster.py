@@ -22,9 +22,10 @@ import socket
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -188,19 +189,52 @@ def _dask() -> str:
     return str(candidate) if candidate.exists() else "dask"
 
 
-@pytest.fixture(scope="session")
-def dask_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[DaskProcesses]:
-    """A real dask scheduler with two single-threaded workers on 127.0.0.1, stopped at the end."""
+# A fixture function imported into two test modules is two fixtures to pytest, each with its own session
+# instance; these keep one running server per kind and stop it when the last of its fixtures is torn down.
+_SHARED: dict[str, list[Any]] = {}
+
+
+@contextlib.contextmanager
+def _shared(kind: str, start: Callable[[], tuple[Any, Callable[[], None]]]) -> Iterator[Any]:
+    """The running server of ``kind`` (started by ``start`` -> (server, stop) on first use), reference-counted."""
+    entry = _SHARED.get(kind)
+    if entry is None:
+        server, stop = start()
+        entry = _SHARED[kind] = [server, 0, stop]
+    entry[1] += 1
+    try:
+        yield entry[0]
+    finally:
+        entry[1] -= 1
+        if entry[1] == 0:
+            del _SHARED[kind]
+            entry[2]()
+
+
+def _start_dask(root: Path) -> tuple[DaskProcesses, Callable[[], None]]:
+    """Start the scheduler and two workers; stop whatever started when that fails."""
     from service import cluster
 
-    processes = DaskProcesses(root=tmp_path_factory.mktemp("dask-cluster"))
+    processes = DaskProcesses(root=root)
+
+    def stop() -> None:
+        cluster.close_clients()
+        processes.stop_all()
+
     try:
         processes.start_scheduler()
         processes.ensure_workers()
+    except BaseException:
+        stop()
+        raise
+    return processes, stop
+
+
+@pytest.fixture(scope="session")
+def dask_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[DaskProcesses]:
+    """A real dask scheduler with two single-threaded workers on 127.0.0.1, stopped at the end."""
+    with _shared("dask", lambda: _start_dask(tmp_path_factory.mktemp("dask-cluster"))) as processes:
         yield processes
-    finally:
-        cluster.close_clients()
-        processes.stop_all()
 
 
 # --- S3 (moto) --------------------------------------------------------------------------------------------------
@@ -236,11 +270,8 @@ class S3Server:
         }
 
 
-@pytest.fixture(scope="session")
-def s3_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[S3Server]:
-    """moto's S3 server mode on a free port with one empty bucket, stopped at the end."""
-
-    root = tmp_path_factory.mktemp("moto")
+def _start_moto(root: Path) -> tuple[S3Server, Callable[[], None]]:
+    """Start moto's S3 server on a free port and create the bucket; stop it when that fails."""
     port = free_port()
     log_path = root / "moto.log"
     moto = Path(sys.executable).with_name("moto_server")
@@ -269,9 +300,17 @@ def s3_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[S3Server]:
             aws_secret_access_key=server.secret_access_key,
             region_name=server.region,
         ).create_bucket(Bucket=server.bucket)
-        yield server
-    finally:
+    except BaseException:
         _stop_group(process)
+        raise
+    return server, lambda: _stop_group(process)
+
+
+@pytest.fixture(scope="session")
+def s3_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[S3Server]:
+    """moto's S3 server mode on a free port with one empty bucket, stopped at the end."""
+    with _shared("moto", lambda: _start_moto(tmp_path_factory.mktemp("moto"))) as server:
+        yield server
 
 
 # --- task functions (the workers import them from here) ----------------------------------------------------------

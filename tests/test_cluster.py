@@ -197,6 +197,27 @@ def test_scheduler_without_workers_is_a_clear_503(monkeypatch: pytest.MonkeyPatc
     cluster.close_clients()
 
 
+@pytest.mark.cluster
+def test_scheduler_lost_mid_computation_is_a_clear_503(tmp_path: Path) -> None:
+    own = DaskProcesses(root=tmp_path)  # a scheduler of this test's own: the shared one must stay up
+    try:
+        own.start_scheduler()
+        own.ensure_workers(("worker-solo",))
+        settings = _settings(scheduler=own.address)
+        slow = da.from_array(np.ones((60, 10)), chunks=(1, 10)).map_blocks(slow_block, 0.1, dtype=float).sum()
+        with ThreadPoolExecutor(1) as pool:
+            running = pool.submit(cluster.compute, slow, settings=settings)
+            client = cluster.client_for(settings)
+            deadline = time.monotonic() + 30
+            while time.monotonic() < deadline and not any(client.processing().values()):
+                time.sleep(0.02)
+            own.scheduler.kill()  # SIGKILL, no goodbye to anyone
+            with pytest.raises(ClusterUnavailableError, match="lost the connection to dask scheduler"):
+                running.result(timeout=60)
+    finally:
+        own.stop_all()
+
+
 # --- through the service: a real uvicorn server on threads and one on the cluster -------------------------------
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 import json
 import logging
 import pickle
@@ -30,20 +31,37 @@ WHOLE = (slice(None), slice(None), slice(None))
 
 @pytest.fixture(scope="module")
 def dataset():
-    """A small geographic grid over three years with a water cell and a population layer."""
-    return make_dataset(ny=8, nx=7, years=(2000, 2002), missing_cells=[(0, 0)], seed=11)
+    """A small geographic grid over two years with a water cell and a population layer."""
+    return make_dataset(ny=8, nx=7, years=(2000, 2001), missing_cells=[(0, 0)], seed=11)
 
 
 @pytest.fixture(scope="module")
 def pair(dataset, s3_server: S3Server, tmp_path_factory: pytest.TempPathFactory):
-    """The same Dataset written to disk and to s3://bucket/.../grid.zarr: (local store, s3 store, fingerprints)."""
+    """The same Dataset written to disk and to s3://bucket/.../grid.zarr: (local store, s3 store, logs).
+
+    ``logs`` is everything logged (DEBUG and up, botocore and s3fs included) while the S3 store was written,
+    opened and read, as (level name, message) lines.
+    """
     local_path = tmp_path_factory.mktemp("s3-pair") / "grid.zarr"
     local_fingerprint = write_store(dataset, local_path)
     url = f"s3://{s3_server.bucket}/round-trip/grid.zarr"
-    s3_fingerprint = write_store(dataset, url, storage_options=s3_server.storage_options())
+    logs = io.StringIO()
+    handler = logging.StreamHandler(logs)
+    handler.setFormatter(logging.Formatter("%(levelname)s %(name)s %(message)s"))
+    root = logging.getLogger()
+    level = root.level
+    root.addHandler(handler)
+    root.setLevel(logging.DEBUG)
+    try:
+        s3_fingerprint = write_store(dataset, url, storage_options=s3_server.storage_options())
+        remote = open_store(url, storage_options=s3_server.storage_options())
+        remote.read("tmax", *WHOLE)
+    finally:
+        root.removeHandler(handler)
+        root.setLevel(level)
     local = open_store(local_path)
-    remote = open_store(url, storage_options=s3_server.storage_options())
-    return local, remote, (local_fingerprint, s3_fingerprint)
+    assert local_fingerprint == s3_fingerprint
+    return local, remote, logs.getvalue()
 
 
 def _secrets(s3_server: S3Server) -> tuple[str, str]:
@@ -51,8 +69,8 @@ def _secrets(s3_server: S3Server) -> tuple[str, str]:
 
 
 def test_store_on_s3_reads_the_same_as_from_disk(pair) -> None:
-    local, remote, (local_fingerprint, s3_fingerprint) = pair
-    assert local_fingerprint == s3_fingerprint == remote.fingerprint == local.fingerprint
+    local, remote, _ = pair
+    assert remote.fingerprint == local.fingerprint
     assert remote.name == local.name == "grid"
     assert remote.grid == local.grid and remote.calendar == local.calendar
     for variable in local.variables:
@@ -110,16 +128,16 @@ def test_credentials_never_in_store_errors_or_problem_documents(
     assert s3_server.secret_access_key not in caplog.text
 
 
-def test_logs_at_info_hold_no_credentials(
-    dataset, s3_server: S3Server, caplog: pytest.LogCaptureFixture
-) -> None:
-    url = f"s3://{s3_server.bucket}/logged/grid.zarr"
-    with caplog.at_level(logging.INFO):
-        write_store(dataset.isel(time=slice(0, 400)), url, storage_options=s3_server.storage_options())
-        store = open_store(url, storage_options=s3_server.storage_options())
-        store.read("tmax", *WHOLE)
-    for secret in _secrets(s3_server):
-        assert secret not in caplog.text
+def test_logs_hold_no_credentials(pair, s3_server: S3Server) -> None:
+    _, _, logs = pair
+    lines = logs.splitlines()
+    assert any(" botocore" in line for line in lines)  # the capture did see the S3 client's own log
+    # The secret key never appears, at any level (requests are signed with a key derived from it).
+    assert s3_server.secret_access_key not in logs
+    # Above DEBUG nothing names the key id either (botocore's DEBUG request dumps may carry it in the
+    # Authorization header; the service never logs below INFO unless told to).
+    above_debug = "\n".join(line for line in lines if not line.startswith("DEBUG "))
+    assert s3_server.access_key_id not in above_debug
 
 
 def test_settings_give_the_storage_options_of_the_server(pair, s3_server: S3Server) -> None:
