@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import json
 import threading
 import time
 from pathlib import Path
@@ -277,17 +278,20 @@ def _submit_and_follow(client: httpx.Client, body: dict[str, Any], *, until: set
 
 
 @pytest.mark.slow
-def test_a_job_killed_mid_way_reruns_after_restart_and_gives_identical_bytes(
-    tiny_demo: Path, tmp_path: Path, tiny_communities: dict
-) -> None:
-    body = {"features": _many(tiny_communities, 300), "lags": [0, 1], "indicators": INDICATORS}
-    env = {"WXSHOCK_JOB_WORKERS": "1"}
+def test_a_job_killed_mid_way_reruns_after_restart_and_gives_identical_bytes(tmp_path: Path) -> None:
+    # `wxshock serve` without a store serves the demo, building it in the data directory on first start.
+    env = {"WXSHOCK_JOB_WORKERS": "1", "WXSHOCK_DEMO_SIZE": "tiny"}
     data_dir = tmp_path / "data"
+    server = server_support.start_process(data_dir=data_dir, env=env, timeout=300)
+    demo = data_dir / "demo.zarr"
+    built_at = (demo / "zarr.json").stat().st_mtime
+    communities = json.loads((data_dir / "communities.geojson").read_text(encoding="utf-8"))
+    body = {"features": _many(communities, 120), "lags": [0, 1], "indicators": INDICATORS}
 
     # Submit, wait until the worker runs the job, and SIGKILL the server: no clean-up of any kind runs.
-    server = server_support.start_process(stores=[tiny_demo], data_dir=data_dir, env=env)
     try:
         with server.client() as client:
+            assert [d["name"] for d in client.get("/v1/datasets").json()["datasets"]] == ["demo"]
             killed = _submit_and_follow(client, body, until={"running", "succeeded", "failed"})
             assert killed["state"] == "running", "the job ended before it could be interrupted"
             server.kill()
@@ -296,14 +300,14 @@ def test_a_job_killed_mid_way_reruns_after_restart_and_gives_identical_bytes(
     assert not list((data_dir / "jobs" / "results").glob("*.parquet"))  # no finished result was written
 
     # Start again: the job is re-queued and re-run; then the same request runs once more, uninterrupted.
-    server = server_support.start_process(stores=[tiny_demo], data_dir=data_dir, env=env)
+    server = server_support.start_process(data_dir=data_dir, env=env)
     try:
         with server.client() as client:
             uninterrupted = _submit_and_follow(client, body, until={"succeeded", "failed"})
             rerun = client.get(f"/v1/jobs/{killed['id']}").json()  # queued first, so finished first
             assert rerun["state"] == uninterrupted["state"] == "succeeded", (rerun, uninterrupted)
             assert rerun["attempts"] == 2 and uninterrupted["attempts"] == 1
-            assert rerun["features_done"] == rerun["features_total"] == 300
+            assert rerun["features_done"] == rerun["features_total"] == 120
             first = client.get(rerun["links"]["result"])
             second = client.get(uninterrupted["links"]["result"])
             assert first.status_code == second.status_code == 200
@@ -312,3 +316,4 @@ def test_a_job_killed_mid_way_reruns_after_restart_and_gives_identical_bytes(
     finally:
         server.stop()
     assert "re-queued 1 interrupted job" in server.log_path.read_text()  # type: ignore[union-attr]
+    assert (demo / "zarr.json").stat().st_mtime == built_at  # the demo is built once, not on every start

@@ -56,7 +56,9 @@ class Dataset(BaseModel):
     model_config = ConfigDict(extra="allow")
     name: str
     title: str = ""
-    variables: dict[str, dict[str, Any]] = Field(description="Per variable: units, standard_name, cell_methods.")
+    variables: dict[str, dict[str, Any]] = Field(
+        description="Per variable: units, standard_name, cell_methods."
+    )
     crs: dict[str, Any] = Field(description="name, epsg, is_geographic and the WKT of the grid's CRS.")
     resolution: dict[str, Any]
     bounds: dict[str, float] = Field(description="Outer cell edges in CRS units.")
@@ -65,7 +67,9 @@ class Dataset(BaseModel):
     years: list[int] = Field(description="First and last year with data.")
     calendar: str
     layers: list[str] = Field(description="Weight layers for {'weighting': {'layer': NAME}}.")
-    fingerprint: str = Field(description="Hash over the store's metadata and contents, recorded at write time.")
+    fingerprint: str = Field(
+        description="Hash over the store's metadata and contents, recorded at write time."
+    )
 
 
 class DatasetList(BaseModel):
