@@ -105,7 +105,7 @@ def season_cube(
     safe = np.where(in_season, time_index, 0)
 
     def cut(values: np.ndarray) -> np.ndarray:
-        out = values[feature_index][:, safe]
+        out = np.take(values[feature_index], safe, axis=1)  # C-contiguous (feature, year, day), as the core's
         out[:, ~in_season] = np.nan
         return out
 
