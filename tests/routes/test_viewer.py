@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import re
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -13,7 +14,7 @@ from PIL import Image
 from service.plots import NEUTRAL
 from service.routes.viewer import STATIC
 from tests._support_server import live_server  # noqa: F401 - fixture
-from tests._support_tools import WebDriver, chromium, webdriver  # noqa: F401 - fixtures
+from tests._support_tools import Browser, WebDriver, chromium, webdriver  # noqa: F401 - fixtures
 
 
 def test_the_page_and_its_assets_are_served(live_server) -> None:  # noqa: F811
@@ -115,3 +116,22 @@ def test_a_refused_request_shows_the_problem(live_server, webdriver: WebDriver) 
     driver.type("#lags", "0, -1")
     driver.click("#show")
     driver.wait_for("document.getElementById('problem').textContent.includes('/lags')")
+
+
+@pytest.mark.browser
+def test_a_link_carries_the_choice_into_a_one_shot_screenshot(
+    live_server,  # noqa: F811
+    chromium: Browser,  # noqa: F811
+    tmp_path: Path,
+) -> None:
+    # `chromium --headless --screenshot` of a link that names the community, baseline and lags: the page
+    # computes on its own, and the shot shows the picture's bars and the table's shaded z cells.
+    shot = chromium.screenshot(
+        live_server.base_url + "/?community=qu-003&baseline=1981-1990&lags=0,1", tmp_path / "link.png"
+    )
+    pixels = _pixels(shot.read_bytes())
+    assert pixels.shape[:2] == (900, 1280)
+    neutral_bars = (np.abs(pixels - np.asarray(to_rgb(NEUTRAL))) <= 0.02).all(axis=2)
+    assert neutral_bars.sum() > 500
+    columns = np.nonzero(neutral_bars)[1]
+    assert (columns > 330).mean() > 0.9  # in the results column, right of the controls
