@@ -129,14 +129,14 @@ def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...]
     from distributed.comm.core import CommClosedError
 
     try:
-        client.wait_for_workers(1, timeout=WORKER_WAIT_S)
-    except TimeoutError as exc:
-        raise ClusterUnavailableError(
-            f"dask scheduler {address!r} has no worker (waited {WORKER_WAIT_S:g} s); start at least one "
-            f"'dask worker {address}' or unset WXSHOCK_SCHEDULER to compute on local threads",
-            field="scheduler",
-        ) from exc
-    try:
+        try:
+            client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+        except TimeoutError as exc:
+            raise ClusterUnavailableError(
+                f"dask scheduler {address!r} has no worker (waited {WORKER_WAIT_S:g} s); start at least one "
+                f"'dask worker {address}' or unset WXSHOCK_SCHEDULER to compute on local threads",
+                field="scheduler",
+            ) from exc
         return dask.compute(*collections, scheduler=client, retries=TASK_RETRIES)
     except WxshockError:
         raise  # a domain error raised inside a task (a store that cannot be read) keeps its own type
