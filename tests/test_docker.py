@@ -174,6 +174,17 @@ def test_installs_the_package_from_the_copied_repository(dockerfile: list[Instru
     assert Path("pyproject.toml") in copied and Path("service") in copied
     installs = [i.text for i in dockerfile if i.keyword == "RUN" and "pip install" in i.text]
     assert any(shlex.split(t.split("&&")[0])[-1] == "." for t in installs)
+    # service.demo finds its inputs beside the package directory: they must be copied there, and the
+    # package must run from the copy (an editable install), not from a copy in site-packages.
+    import service.demo
+
+    workdir = Path(_one(dockerfile, "WORKDIR").words()[0])
+    inputs = Path(service.demo.DEMO_INPUTS).resolve().relative_to(REPO)
+    destinations = {
+        (workdir / i.words()[-1]).resolve(): Path(i.words()[0]) for i in dockerfile if i.keyword == "COPY"
+    }
+    assert destinations.get((workdir / inputs).resolve()) == inputs
+    assert any(" -e ." in f" {t.split('&&')[0].strip()}" for t in installs)
     ignored = (REPO / "docker" / "Dockerfile.dockerignore").read_text(encoding="utf-8").split()
     for source in copied:  # the ignore file lets through everything COPY needs
         assert f"!{source}" in ignored or f"!{source}/" in ignored
