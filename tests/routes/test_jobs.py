@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import copy
 import time
+from pathlib import Path
 from typing import Any
 
 import httpx
 import pytest
 
+from service.settings import Settings
 from tests import _support_server as server_support
 
 live_server = server_support.live_server
@@ -140,3 +142,39 @@ def test_a_request_the_run_would_refuse_is_refused_at_submission(
         unknown = _problem(client.post("/v1/jobs", json=_body(tiny_communities, 1, dataset="elsewhere")), 404)
         assert unknown["type"].endswith("/unknown-dataset")
         assert client.get("/ready").json()["jobs_queued"] <= before
+
+
+def _squares_on_data(store_path: Path, count: int) -> dict[str, Any]:
+    """``count`` small square communities, each inside a grid cell that has data."""
+    import numpy as np
+
+    from service.store import open_store
+
+    store = open_store(store_path)
+    rows, cols = np.nonzero(store.data_mask())
+    x, y = store.grid.x, store.grid.y
+    half_x, half_y = abs(float(x[1] - x[0])) / 4, abs(float(y[1] - y[0])) / 4
+    features = []
+    for i in range(count):
+        cx, cy = float(x[cols[i % len(cols)]]), float(y[rows[i % len(rows)]])
+        ring = [[cx - half_x, cy - half_y], [cx + half_x, cy - half_y], [cx + half_x, cy + half_y],
+                [cx - half_x, cy + half_y], [cx - half_x, cy - half_y]]  # fmt: skip
+        features.append({"type": "Feature", "id": f"hh-{i:05d}", "properties": {}, "geometry": {
+            "type": "Polygon", "coordinates": [ring]}})  # fmt: skip
+    return {"type": "FeatureCollection", "features": features}
+
+
+@pytest.mark.slow
+def test_a_job_of_20000_features_is_accepted_followed_and_cancelled(tiny_demo: Path, tmp_path: Path) -> None:
+    body = {"features": _squares_on_data(tiny_demo, 20_000), "indicators": INDICATORS}
+    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path)
+    with server_support.thread_server(settings) as server, server.client(timeout=120) as client:
+        response = client.post("/v1/jobs", json=body)
+        assert response.status_code == 202, response.text[:500]
+        accepted = response.json()
+        assert accepted["features_total"] == 20_000
+        status = client.get(response.headers["Location"]).json()
+        assert status["state"] in ("queued", "running") and status["features_done"] < 20_000
+        assert client.get("/health").status_code == 200
+        cancelled = client.delete(response.headers["Location"]).json()
+        assert cancelled["state"] == "cancelled"
