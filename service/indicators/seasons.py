@@ -287,12 +287,18 @@ def cut_season(
     feature_index: np.ndarray | None = None,
     *,
     max_missing_share: float = DEFAULT_MAX_MISSING_SHARE,
+    buffers: dict[str, np.ndarray] | None = None,
 ) -> SeasonCut:
     """Cut the rows ``feature_index`` of ``daily`` into season-years (feature, season_year, day).
 
     Vectorised over features and days: one slice copy per variable and season-year. The cube holds every
     season-year the record serves whole, in the series' dtype (float32 stays float32); a (feature,
-    season-year) whose share of missing days (absent from the record, or any variable NaN) exceeds ``max_missing_share`` is NaN throughout and ``complete`` is False there.
+    season-year) whose share of missing days (absent from the record, or any variable NaN) exceeds
+    ``max_missing_share`` is NaN throughout and ``complete`` is False there.
+
+    ``buffers`` (a dict the caller keeps between calls) lets a loop over feature blocks reuse the cube's
+    arrays instead of allocating fresh ones (measured about twice as fast); the cube of the previous call
+    with the same dict is then overwritten, so use it only when that cube is no longer needed.
     """
     if feature_index is None:
         feature_index = np.arange(daily.tmax.shape[0], dtype=np.int64)
@@ -326,16 +332,21 @@ def cut_season(
     if steps.size and not sliceable:
         raise RuntimeError(f"season {season.label}: a season-year is not one stretch of the record")
 
-    def gather(values: np.ndarray) -> np.ndarray:
+    def gather(name: str, values: np.ndarray) -> np.ndarray:
         source = values[first : first + feature_index.size] if contiguous else values[feature_index]
         dtype = source.dtype if np.issubdtype(source.dtype, np.floating) else np.float64
-        out = np.empty((source.shape[0], *in_season.shape), dtype=dtype)
+        shape = (source.shape[0], *in_season.shape)
+        out = None if buffers is None else buffers.get(name)
+        if out is None or out.shape != shape or out.dtype != dtype:
+            out = np.empty(shape, dtype=dtype)
+            if buffers is not None:
+                buffers[name] = out
         for y, (start, n) in enumerate(zip(row_first_step.tolist(), days_per_row.tolist(), strict=True)):
             out[:, y, :n] = source[:, start : start + n]
             out[:, y, n:] = np.nan
         return out
 
-    tmax, tmin, prcp = gather(daily.tmax), gather(daily.tmin), gather(daily.prcp)
+    tmax, tmin, prcp = gather("tmax", daily.tmax), gather("tmin", daily.tmin), gather("prcp", daily.prcp)
     missing = np.isnan(tmax)
     missing |= np.isnan(tmin)
     missing |= np.isnan(prcp)

@@ -595,10 +595,13 @@ def compute_table(
     warnings: list[dict[str, Any]] = []
     first_year = None
     block_size = max(1, FEATURE_BLOCK_ELEMENTS // max(1, daily.year.size))
+    buffers: dict[str, np.ndarray] = {}  # the cube arrays, reused block after block
     for group in groups:
         for start in range(0, group.feature_index.size, block_size):
             rows = group.feature_index[start : start + block_size]
-            cut = seasons.cut_season(daily, group.season, rows, max_missing_share=request.max_missing_share)
+            cut = seasons.cut_season(
+                daily, group.season, rows, max_missing_share=request.max_missing_share, buffers=buffers
+            )
             out_cols = np.searchsorted(cut.cube.years, years)
             if np.any(out_cols >= cut.cube.years.size) or np.any(cut.cube.years[out_cols] != years):
                 raise RuntimeError(
