@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from matplotlib.collections import PolyCollection
 from matplotlib.colors import Colormap, LinearSegmentedColormap, Normalize
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
@@ -127,14 +128,20 @@ def _z_panel(
         )
     colours = [class_colour(family, int(c)) if np.isfinite(c) else MISSING for c in classes]
     ok = np.isfinite(z)
-    ax.bar(
-        years[ok],
-        z[ok],
-        width=0.72,
-        color=[c for c, good in zip(colours, ok, strict=False) if good],
-        edgecolor="#333333",
-        linewidth=0.4,
-        zorder=3,
+    # One collection of rectangles rather than a patch per bar: the same picture, drawn several times faster.
+    half = 0.36
+    bars = [
+        [(year - half, 0.0), (year - half, value), (year + half, value), (year + half, 0.0)]
+        for year, value in zip(years[ok], z[ok], strict=True)
+    ]
+    ax.add_collection(
+        PolyCollection(
+            bars,
+            facecolors=[c for c, good in zip(colours, ok, strict=True) if good],
+            edgecolors="#333333",
+            linewidths=0.4,
+            zorder=3,
+        )
     )
     if (~ok).any():
         ax.scatter(
