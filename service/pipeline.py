@@ -227,10 +227,11 @@ def run(
     batch_size: int = DEFAULT_BATCH_FEATURES,
 ) -> RunResult:
     """Season indicators for every feature of the request, one row per (feature_id, year)."""
-    resolved = resolve_request(request, store.dates)
+    resolved = resolve_request(request, store.dates, store.calendar)
     _check_years((resolved.years.start, resolved.years.end), settings)
     parsed, weights = features_and_weights(resolved, store, settings)
-    span = time_span(store, resolved.years.end)
+    # a fixed baseline may lie after the requested years: read up to whichever ends later
+    span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
     properties = [f.properties for f in parsed.features]
     total = len(parsed.features)
     frames: list[pd.DataFrame] = []
