@@ -34,7 +34,7 @@ import numpy as np
 from scipy import special, stats
 
 from service.indicators.base import Baseline, Indicator, SeasonCube, register
-from service.indicators.basic import BLOCK_ELEMENTS, reduce_in_blocks, season_sum
+from service.indicators.basic import reduce_in_blocks, season_sum
 
 SOLAR_CONSTANT = 0.0820  # MJ m-2 min-1, FAO-56 eq. 21
 MJ_TO_MM = 0.408  # MJ m-2 day-1 to mm/day of evaporation, 1 / 2.45 MJ kg-1 (FAO-56, chapter 3)
@@ -103,22 +103,21 @@ def season_water_balance(cube: SeasonCube) -> np.ndarray:
     """Climatic water balance of each season-year, sum of P - ET0 (Hargreaves) over the valid days (mm).
 
     Days missing any of prcp, tmax, tmin drop out; NaN when no day is valid. Vectorised over days and
-    features, in blocks of features that keep the daily PET out of a full-size temporary.
+    features, in blocks of season-years that keep the daily PET out of a full-size temporary.
     """
     daily = cube.daily
     n_doy = 360 if daily.calendar.lower() == "360_day" else 366
     doy = _equivalent_day_of_year(np.arange(1, n_doy + 1), daily.calendar)
     radiation = extraterrestrial_radiation(cube.latitude[:, None], doy[None, :])  # (feature, doy)
     day_column = np.maximum(cube.dayofyear, 1) - 1  # padding days are NaN in the data anyway
-    n_feature = cube.prcp.shape[0]
-    out = np.empty(cube.prcp.shape[:2], dtype=np.float64)
-    step = max(1, BLOCK_ELEMENTS // max(day_column.size, 1))
-    for start in range(0, n_feature, step):
-        block = slice(start, start + step)
-        ra = np.take(radiation[block], day_column, axis=1)  # (feature, year, day)
-        pet = hargreaves(cube.tmax[block], cube.tmin[block], ra)
-        out[block] = season_sum(cube.prcp[block] - pet)
-    return out
+    n_year = day_column.shape[0]
+
+    def balance(rows: np.ndarray, prcp: np.ndarray, tmax: np.ndarray, tmin: np.ndarray) -> np.ndarray:
+        feature, year = np.divmod(rows, n_year)
+        ra = radiation[feature[:, None], day_column[year]]  # (rows, day) MJ m-2 day-1
+        return season_sum(prcp - hargreaves(tmax, tmin, ra))
+
+    return reduce_in_blocks(balance, cube.prcp, cube.tmax, cube.tmin, pass_rows=True)
 
 
 # --- distributions ------------------------------------------------------------------------------------------
