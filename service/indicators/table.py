@@ -530,7 +530,9 @@ def _group_columns(
     for spell in request.spells:
         condition = _spell_condition(spell.when, blocks)
         out[f"{spell.name}_run"] = sequences.spell_run(condition)[:, out_cols]
-        out[f"{spell.name}_count"] = sequences.spell_count(condition, spell.window)[:, out_cols]
+        count = sequences.spell_count(condition, spell.window)[:, out_cols]
+        out[f"{spell.name}_count"] = count
+        warnings += _unknown_spell_warnings(spell, count, out_cols, cut, feature_ids)
     out["season_complete"] = cut.present_share[:, out_cols]
     return out
 
@@ -542,6 +544,33 @@ def _spell_condition(when: Sequence[SpellCondition], blocks: Mapping[str, _Block
         [blocks[c.indicator].z for c in when],
         [(c.class_min, c.class_max, c.z_min, c.z_max) for c in when],
     )
+
+
+def _unknown_spell_warnings(
+    spell: Spell, count: np.ndarray, out_cols: np.ndarray, cut: seasons.SeasonCut, feature_ids: Sequence[str]
+) -> list[dict[str, Any]]:
+    """Per feature, the requested years whose spell count is null because a season in its window is unknown.
+
+    Years whose window reaches before the data are left to :func:`_spell_warnings` (one warning for all).
+    """
+    full_window = out_cols - spell.window + 1 >= 0
+    unknown = np.isnan(count) & full_window[None, :]
+    warnings = []
+    for f in np.flatnonzero(unknown.any(axis=1)):
+        when = [int(y) for y in cut.cube.years[out_cols[unknown[f]]]]
+        warnings.append(
+            {
+                "feature_id": feature_ids[int(cut.cube.feature_index[f])],
+                "indicator": None,
+                "year": when[0] if len(when) == 1 else None,
+                "reason": (
+                    f"spell {spell.name!r}: {spell.name}_count left null for {baselines._year_ranges(when)}: "
+                    f"among the last {spell.window} seasons is one whose class or z is null (see the other "
+                    f"warnings of this community)"
+                ),
+            }
+        )
+    return warnings
 
 
 def _spell_warnings(request: IndicatorRequest, first_year: int, years: np.ndarray) -> list[dict[str, Any]]:

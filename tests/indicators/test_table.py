@@ -506,3 +506,22 @@ def test_resolve_with_a_date_mapping_and_a_given_calendar():
     table = compute_table(daily, ["a"], [{}], resolved)
     assert table.frame["t_prcp"].tolist() == [2.0 * 90] * 11
     assert resolve_request(request, dates) == resolved  # the calendar inferred from Feb 30
+
+
+def test_spell_count_null_around_an_unknown_season_is_explained():
+    daily, ids = _january_daily({"a": [1, 5, 3, 5, 1, 1, 1, 5, 1, 1]})
+    prcp = daily.prcp.copy()
+    prcp[0, (daily.year == 1985) & (daily.month == 1)] = np.nan  # January 1985 missing
+    request = _request(
+        season={"months": [1]},
+        indicators=["t_prcp"],
+        spells=[{"name": "dry", "window": 3, "when": [{"indicator": "t_prcp", "z_max": -0.5}]}],
+    )
+    table = compute_table(with_values(daily, prcp=prcp), ids, [{}], request)
+    frame = table.frame.set_index("year")
+    assert frame.loc[[1985, 1986, 1987], "dry_count"].isna().all()
+    assert frame.loc[1988, "dry_count"] >= 0 and pd.isna(frame.loc[1985, "dry_run"])
+    assert frame.loc[1986, "dry_run"] in (0, 1)  # the run starts again after the unknown season
+    reasons = [w["reason"] for w in table.warnings if w["feature_id"] == "a"]
+    assert any("dry_count left null for 1985-1987" in r for r in reasons)
+    assert any("1980-1981" in w["reason"] and w["feature_id"] is None for w in table.warnings)
