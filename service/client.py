@@ -97,11 +97,10 @@ def _geodataframe_features(frame: Any, id_column: str | None) -> tuple[dict[str,
         feature["id"] = value
     collection.pop("bbox", None)
     crs = None
+    # WGS84 (EPSG:4326 or OGC:CRS84) is what GeoJSON means already; any other CRS goes along by name or WKT.
     if frame.crs is not None and not frame.crs.equals("OGC:CRS84") and frame.crs.to_epsg() != 4326:
         authority = frame.crs.to_authority()
         crs = f"{authority[0]}:{authority[1]}" if authority else frame.crs.to_wkt()
-    elif frame.crs is not None and frame.crs.to_epsg() == 4326:
-        crs = None  # lon/lat axis order is what GeoJSON means anyway
     return collection, crs
 
 
