@@ -149,7 +149,7 @@ def _season_day_keys(cube: SeasonCube) -> np.ndarray:
 _THRESHOLD_CACHE: dict[
     tuple[int, int, str, float], tuple[weakref.ref, weakref.ref, CalendarDayThresholds]
 ] = {}
-_POOL_ELEMENTS = 1 << 25  # values per feature block of the percentile pools (256 MB of float64)
+_POOL_ELEMENTS = 1 << 20  # values per feature block of the percentile pools (8 MB of float64)
 
 
 def _window_times(cube: SeasonCube, years: np.ndarray, n_keys: int) -> tuple[np.ndarray, np.ndarray]:
@@ -194,6 +194,7 @@ def calendar_day_thresholds(
     values = np.full((n_feature, rows.shape[0], n_keys), np.nan)
     members = [np.searchsorted(used_years, np.flatnonzero(row)) for row in rows]
     block = max(1, _POOL_ELEMENTS // max(window.size, 1))
+    scratch: dict[int, np.ndarray] = {}
     for start in range(0, n_feature, block):
         features = cube.feature_index[start : start + block]
         pools = np.take(np.take(record, features, axis=0), window, axis=1)  # (feature, key, year, offset)
@@ -217,7 +218,11 @@ def calendar_day_thresholds(
             else:
                 chosen = pools[:, :, member]
                 seasons_with_data = np.count_nonzero(has_data[:, :, member], axis=-1)
-            pool = np.ascontiguousarray(chosen).reshape(features.size, n_keys, -1)
+            buffer = scratch.get(member.size)
+            if buffer is None or buffer.shape != chosen.shape:  # one scratch pool per size, reused
+                buffer = scratch[member.size] = np.empty(chosen.shape, dtype=chosen.dtype)
+            np.copyto(buffer, chosen)
+            pool = buffer.reshape(features.size, n_keys, -1)
             february = (
                 np.concatenate([pool[:, _FEB_28], pool[:, _FEB_29]], axis=-1) if leap_calendar else None
             )
