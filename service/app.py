@@ -177,7 +177,7 @@ def install_error_handlers(app: FastAPI) -> None:
         detail = {
             404: f"no route {request.url.path!r}; see /docs for the routes",
             405: f"{request.method} is not allowed on {request.url.path!r}",
-        }.get(status, str(exc.detail))
+        }.get(status, str(getattr(exc, "detail", "")))
         doc = {
             "type": PROBLEM_TYPE_PREFIX + slug,
             "title": title,

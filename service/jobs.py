@@ -548,11 +548,11 @@ def check_job_request(request: IndicatorRequest, registry: StoreRegistry, settin
     from service.indicators.table import resolve_request
 
     store = registry.get_dataset(request.dataset)
-    resolved = resolve_request(request, store.dates)
-    years = resolved.years.end - resolved.years.start + 1
-    if years > settings.max_years_per_request:
+    span = resolve_request(request, store.dates).years
+    years = span.end - span.start + 1 if span is not None else 0
+    if span is not None and years > settings.max_years_per_request:
         raise LimitExceededError(
-            f"the request spans {years} years ({resolved.years.start}-{resolved.years.end}); at most "
+            f"the request spans {years} years ({span.start}-{span.end}); at most "
             f"{settings.max_years_per_request} are allowed (setting max_years_per_request); ask for fewer years",
             limit="max_years_per_request",
             allowed=settings.max_years_per_request,

@@ -359,6 +359,22 @@ def test_a_job_with_more_features_than_the_job_limit_is_refused(
 # --- bearer tokens and CORS -----------------------------------------------------------------------------------
 
 
+@pytest.mark.parametrize(
+    ("content", "message"),
+    [
+        ("# tokens\nnot-a-digest\n", "token file line 2 is not a SHA-256 hex digest"),
+        (hashlib.sha256(b"x").hexdigest()[:60] + "\n", "token file line 1 is not a SHA-256 hex digest"),
+    ],
+)
+def test_a_token_file_that_is_not_digests_stops_the_start(tmp_path: Path, content: str, message: str) -> None:
+    from service.errors import WxshockError
+
+    token_file = tmp_path / "tokens"
+    token_file.write_text(content, encoding="utf-8")
+    with pytest.raises(WxshockError, match=message):
+        create_app(Settings(data_dir=tmp_path, token_file=token_file))
+
+
 @pytest.fixture(scope="module")
 def secured_server(
     tiny_demo: Path, tmp_path_factory: pytest.TempPathFactory

@@ -11,7 +11,7 @@ from typing import Annotated, Any
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
-from service.errors import AuthError, LimitExceededError, StoreError
+from service.errors import AuthError, LimitExceededError, StoreError, WxshockError
 from service.jobs import JobRunner
 from service.registry import StoreRegistry
 from service.settings import Settings
@@ -40,14 +40,14 @@ def read_token_file(path: Path) -> set[str]:
     try:
         lines = path.read_text(encoding="utf-8").splitlines()
     except OSError as exc:
-        raise StoreError(f"cannot read the token file (setting token_file): {exc.strerror}") from None
+        raise WxshockError(f"cannot read the token file (setting token_file): {exc.strerror}") from None
     digests = set()
     for number, line in enumerate(lines, start=1):
         text = line.split("#", 1)[0].strip().lower()
         if not text:
             continue
         if len(text) != 64 or any(c not in "0123456789abcdef" for c in text):
-            raise StoreError(
+            raise WxshockError(
                 f"token file line {number} is not a SHA-256 hex digest (64 hex digits); write "
                 "`printf %s TOKEN | sha256sum` output, one digest a line"
             )

@@ -47,7 +47,7 @@ def job_status(job: Job) -> JobStatus:
         links["result"] = f"/v1/jobs/{job.id}/result"
     return JobStatus(
         id=job.id,
-        state=job.state,
+        state=job.state,  # type: ignore[arg-type]
         dataset=job.dataset,
         format=job.format,  # type: ignore[arg-type]
         features_total=total,
