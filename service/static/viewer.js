@@ -194,6 +194,20 @@ function renderTable(doc) {
   });
 }
 
+function renderWarnings(warnings) {
+  const box = $("warnings");
+  box.hidden = !warnings.length;
+  box.querySelector("summary").textContent = warnings.length + " value(s) left empty";
+  const list = box.querySelector("ul");
+  list.textContent = "";
+  warnings.forEach((w) => {
+    const item = document.createElement("li");
+    const where = [w.indicator, w.year].filter((v) => v !== null && v !== undefined).join(" ");
+    item.textContent = (where ? where + ": " : "") + w.reason;
+    list.appendChild(item);
+  });
+}
+
 async function show(event) {
   if (event) event.preventDefault();
   $("problem").hidden = true;
@@ -217,7 +231,8 @@ async function show(event) {
     $("figure").hidden = false;
     const p = doc.provenance;
     $("provenance").textContent = "dataset " + p.dataset + ", fingerprint " + p.fingerprint + ", request " + p.request_hash + " (" + p.software + ")";
-    const warned = doc.warnings.length ? " " + doc.warnings.length + " value(s) left empty; see the warnings in the JSON." : "";
+    renderWarnings(doc.warnings);
+    const warned = doc.warnings.length ? " " + doc.warnings.length + " value(s) left empty, for the reasons listed below." : "";
     setState("ready", doc.rows.length + " season-years of " + body.features.features[0].id + "." + warned);
   } catch (e) {
     showProblem(e);

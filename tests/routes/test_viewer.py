@@ -90,6 +90,15 @@ def test_pick_a_community_baseline_and_lags_and_see_table_and_plot(
     assert "fingerprint sha256:" in driver.execute(
         "return document.getElementById('provenance').textContent;"
     )
+    # The result's warnings (values left empty, and why) are listed, one item each.
+    listed = driver.execute(
+        "return [...document.querySelectorAll('#warnings li')].map(li => li.textContent);"
+    )
+    status = driver.execute("return document.getElementById('status').textContent;")
+    if listed:
+        assert f"{len(listed)} value(s) left empty" in status and all(item.strip() for item in listed)
+    else:
+        assert "left empty" not in status
 
     # The screenshot holds the picture where the page put it: near-normal bars and coloured class bands.
     shot = _pixels(driver.screenshot())
