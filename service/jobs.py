@@ -467,9 +467,9 @@ class JobRunner:
             except sqlite3.Error:
                 log.exception("cannot read the job queue")
                 job = None
+            if time.time() - self._last_clean_up > self._clean_up_seconds:
+                self.clean_up()  # also between jobs, so that a busy queue does not keep old results forever
             if job is None:
-                if time.time() - self._last_clean_up > self._clean_up_seconds:
-                    self.clean_up()
                 self._wake.wait(self._poll_seconds)
                 self._wake.clear()
                 continue
@@ -489,20 +489,22 @@ class JobRunner:
                 last_write[0] = now
                 self.db.progress(job.id, int(done), int(total))
 
-        def cancelled() -> bool:
-            if self._stop.is_set():
-                return True
+        def cancelled_by_user() -> bool:
             if job.id in self._cancelled:
                 return True
             current = self.db.get(job.id)
             return current is None or current.state != "running"
+
+        def cancelled() -> bool:
+            # A stopping server interrupts the run too; the job stays 'running' and is re-queued on start.
+            return self._stop.is_set() or cancelled_by_user()
 
         try:
             request = IndicatorRequest.model_validate_json(self.db.request_of(job.id))
             body, media_type, headers = self._run_job(
                 request, self.registry, self.settings, job.format, progress=progress, cancelled=cancelled
             )
-            if cancelled():
+            if cancelled_by_user():
                 raise RunCancelledError(f"job {job.id} was cancelled")
             name = f"{job.id}.{SUFFIXES[job.format]}"
             _write_atomically(self.results / name, body)
