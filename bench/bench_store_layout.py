@@ -5,8 +5,8 @@ Run: python bench/bench_store_layout.py [--workdir DIR] [--quick]
 For each layout the script writes the same int16 array with zarr (the codecs and dims of service/store.py),
 then times, with the files in the page cache (warm reads; a cold disk adds its own latency on top):
 - a 5 x 5-cell read of all 41 years (median of 15 windows at random places, some across tile edges),
-- a full pass (every read unit read and decoded, on 2 threads), and, for plain chunks, the bare numcodecs
-  blosc decode of the same chunk bytes (the floor a full pass can approach),
+- a full pass (every read unit read and decoded, on 2 threads; fastest of 3), and, for plain chunks, the bare
+  numcodecs blosc decode of the same chunk bytes already in memory (the floor a full pass can approach),
 - appending one year to a 40-year copy (hard-linked, as an ingest that writes aside would): for whole-time
   chunks this means rewriting every chunk to keep the layout.
 It prints a Markdown table and appends it, with the machine's description, to bench/RESULTS.md.
@@ -53,7 +53,9 @@ class Layout:
 LAYOUTS = [
     Layout("32x32 tiles, whole time (14975 d), lz4", (32, 32, NT)),
     Layout("32x32 tiles, decade chunks (3653 d), lz4", (32, 32, 3653)),
-    Layout("32x32 tiles, decade inner chunks in 4-decade shards, lz4", (32, 32, 3653), shards=(32, 32, 4 * 3653)),
+    Layout(
+        "32x32 tiles, decade inner chunks in 4-decade shards, lz4", (32, 32, 3653), shards=(32, 32, 4 * 3653)
+    ),
     Layout("32x32 tiles, one-year chunks (365 d), lz4", (32, 32, 365)),
     Layout("map-sized one-year chunks (256x256x365), lz4", (256, 256, 365)),
     Layout("32x32 tiles, decade chunks, zstd level 1", (32, 32, 3653), codec="zstd", level=1),
@@ -129,7 +131,9 @@ def read_units(array: zarr.Array) -> list[tuple[slice, slice, slice]]:
     """Every read unit (shard or chunk) of an array."""
     unit = array.shards or array.chunks
     starts = product(*(range(0, n, c) for n, c in zip(array.shape, unit, strict=True)))
-    return [tuple(slice(s, min(s + c, n)) for s, c, n in zip(st, unit, array.shape, strict=True)) for st in starts]
+    return [
+        tuple(slice(s, min(s + c, n)) for s, c, n in zip(st, unit, array.shape, strict=True)) for st in starts
+    ]
 
 
 def time_small_reads(array: zarr.Array, rng: np.random.Generator, repeats: int = 15) -> float:
@@ -219,9 +223,15 @@ def run(workdir: Path, quick: bool) -> str:
             size_mb = disk_bytes(path) / 1e6
             array = zarr.open_array(str(path), mode="r")
             small = time_small_reads(array, np.random.default_rng(5))
-            full = time_full_pass(array)
-            bare = time_bare_decode(path, layout)
-            append = time_append_year(workdir, values, layout) if name == "tmax" and "map-sized" not in layout.label else None
+            # the machine may be shared: the fastest of three passes is the least disturbed one
+            full = min(time_full_pass(array) for _ in range(3))
+            bares = [time_bare_decode(path, layout) for _ in range(3)]
+            bare = None if bares[0] is None else min(b for b in bares if b is not None)
+            append = (
+                time_append_year(workdir, values, layout)
+                if name == "tmax" and "map-sized" not in layout.label
+                else None
+            )
             files = sum(1 for f in path.rglob("*") if f.is_file())
             rows.append((name, layout.label, size_mb, files, write_s, small * 1000, full, bare, append))
             print(rows[-1], flush=True)

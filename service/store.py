@@ -441,7 +441,7 @@ class Store:
             "variables": variables,
             "crs": {"name": crs.name, "epsg": epsg, "is_geographic": grid.is_geographic, "wkt": grid.crs_wkt},
             "shape": {"y": grid.shape[0], "x": grid.shape[1], "time": self.n_times},
-            "resolution": {"x": grid.resolution[0], "y": grid.resolution[1], "units": unit},
+            "resolution": {"x": _tidy(grid.resolution[0]), "y": _tidy(grid.resolution[1]), "units": unit},
             "bounds": {"xmin": xmin, "ymin": ymin, "xmax": xmax, "ymax": ymax},
             "lonlat_bounds": lonlat,
             "time": {
@@ -513,6 +513,11 @@ def _check_layout(group: zarr.Group, location: str) -> None:
                 raise StoreFormatError(
                     f"store {location!r}: variable {v!r} has dims {dims!r}, expected ('y', 'x', 'time')"
                 )
+
+
+def _tidy(value: float) -> float:
+    """A float without its last-digit noise (0.009999999999999948 -> 0.01), 12 significant digits."""
+    return float(f"{value:.12g}")
 
 
 def _edges(centres: np.ndarray) -> np.ndarray:
