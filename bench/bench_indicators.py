@@ -147,11 +147,13 @@ def main(argv: list[str] | None = None) -> int:
                 + f"\n\n{SECTION}\n\n`python bench/bench_indicators.py` (whole set, one process)\n"
             )
         head, _, tail = text.partition(SECTION)
-        # append our line at the end of our own section (before the next section, if any)
-        body, sep, rest = tail.partition("\n## ")
+        # append our line at the end of our own section: before the next heading or another section's marker
+        ends = [i for i in (tail.find("\n## "), tail.find("\n<!--")) if i >= 0]
+        cut = min(ends) if ends else len(tail)
+        body, rest = tail[:cut], tail[cut:]
         body = body.rstrip("\n") + "\n" + line + "\n"
         RESULTS.write_text(
-            head + SECTION + body + (("\n" + sep.lstrip("\n") + rest) if sep else ""), encoding="utf-8"
+            head + SECTION + body + ("\n" + rest.lstrip("\n") if rest else ""), encoding="utf-8"
         )
     return 0
 
