@@ -1,4 +1,4 @@
-"""service.cluster on plain dask arrays: local threads, a real two-worker cluster, a worker lost mid-way."""
+"""service.cluster: local threads and a real two-worker cluster, on plain dask arrays and through the service."""
 
 from __future__ import annotations
 
