@@ -149,33 +149,43 @@ def combine(partials: Sequence[Partial]) -> Partial:
     return Partial(rows, weighted_sum, total, correction)
 
 
-def finish(partial: Partial | None, n_features: int, days: int, add_offset: float) -> np.ndarray:
-    """(feature, day) means in the variable's units from the fully reduced sums; NaN where no weight."""
-    if partial is None:
-        return np.full((n_features, days), np.nan)
-    weighted_sum = partial.weighted_sum
-    if partial.correction is None:
-        # Every cell had data on every day: one division per row (the total weight is > 0 by construction).
-        mean = weighted_sum * (1.0 / partial.total)[:, None]
+def finish(partials: Sequence[Partial], n_features: int, days: int, add_offset: float) -> np.ndarray:
+    """(feature, day) means in the variable's units from the last partial sums; NaN where no weight.
+
+    The last reduction step and the division share one (feature, day) array: fresh memory is the costly
+    part of this step (page faults), so it is allocated once.
+    """
+    out = np.zeros((n_features, days))
+    total = np.zeros(n_features)
+    correction = None
+    for p in partials:
+        out[p.rows] += p.weighted_sum
+        total[p.rows] += p.total
+        if p.correction is not None:
+            if correction is None:
+                correction = np.zeros((n_features, days))
+            correction[p.rows] += p.correction
+    no_weight = total <= 0
+    if correction is None:
+        # Every cell had data on every day: one reciprocal per feature.
+        with np.errstate(divide="ignore"):
+            out *= np.where(no_weight, np.nan, 1.0 / np.where(no_weight, 1.0, total))[:, None]
     else:
-        weight = partial.total[:, None] + partial.correction
-        enough = weight > partial.total[:, None] * MIN_WEIGHT_SHARE
+        weight = correction
+        weight += total[:, None]
+        enough = weight > total[:, None] * MIN_WEIGHT_SHARE
         with np.errstate(invalid="ignore", divide="ignore"):
-            mean = weighted_sum / weight
-        mean[~enough] = np.nan
+            out /= weight
+        out[~enough] = np.nan
     if add_offset:
-        mean += add_offset
-    if len(partial.rows) == n_features:  # rows are unique and sorted, so they are 0..n-1
-        return mean
-    out = np.full((n_features, days), np.nan)
-    out[partial.rows] = mean
+        out += add_offset
     return out
 
 
-def _tree(dsk: dict[Any, Any], leaves: list[Any], name: str) -> Any:
-    """Add a sum of the partials at ``leaves`` to the graph, REDUCTION_FAN_IN at a time; its key."""
+def _tree(dsk: dict[Any, Any], leaves: list[Any], name: str) -> list[Any]:
+    """Add sums of the partials at ``leaves``, REDUCTION_FAN_IN at a time, until at most that many remain."""
     level = 0
-    while len(leaves) > 1:
+    while len(leaves) > REDUCTION_FAN_IN:
         keys = []
         for i in range(0, len(leaves), REDUCTION_FAN_IN):
             key = (f"{name}-combine-{level}", i)
@@ -183,7 +193,7 @@ def _tree(dsk: dict[Any, Any], leaves: list[Any], name: str) -> Any:
             keys.append(key)
         leaves = keys
         level += 1
-    return leaves[0] if leaves else None
+    return leaves
 
 
 def _time_range(time: slice, n_times: int) -> tuple[int, int]:
@@ -237,8 +247,8 @@ def aggregate(
                 key = (f"{name}-chunk", b, k)
                 dsk[key] = (chunk_sums, store, var, chunk, slice(t0, t1), enc.scale_factor, enc.fill_value)
                 leaves.append(key)
-            reduced = _tree(dsk, leaves, f"{name}-{b}")
-            dsk[(name, 0, b)] = (finish, reduced, n_features, t1 - t0, enc.add_offset)
+            last = _tree(dsk, leaves, f"{name}-{b}")
+            dsk[(name, 0, b)] = (finish, last, n_features, t1 - t0, enc.add_offset)
         if blocks:
             graph = HighLevelGraph.from_collections(name, dsk, dependencies=())
             chunks = ((n_features,), tuple(t1 - t0 for t0, t1 in blocks))
