@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Literal
 
 import numpy as np
@@ -36,9 +37,9 @@ class DailySeries:
     calendar: str
     latitude: np.ndarray  # (feature,) degrees north, for radiation-based PET
 
-    @property
+    @cached_property
     def tmean(self) -> np.ndarray:
-        """Daily mean temperature (degC) as the mean of tmax and tmin."""
+        """Daily mean temperature (degC) as the mean of tmax and tmin (computed once)."""
         return (self.tmax + self.tmin) / 2.0
 
 
@@ -62,9 +63,9 @@ class SeasonCube:
     daily: DailySeries
     feature_index: np.ndarray  # (feature,) rows of daily that this cube holds (features share a season)
 
-    @property
+    @cached_property
     def tmean(self) -> np.ndarray:
-        """Daily mean temperature (degC), (feature, year, day)."""
+        """Daily mean temperature (degC), (feature, year, day), computed once per cube."""
         return (self.tmax + self.tmin) / 2.0
 
     @property
