@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import importlib
 import importlib.util
+import json
 import logging
+import math
 import re
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
@@ -75,6 +77,28 @@ def pointer_from_field(field: str | None) -> str | None:
     return "/" + re.sub(r"\[(\d+)\]", r"/\1", field).replace(".", "/")
 
 
+class ProblemResponse(JSONResponse):
+    """application/problem+json, written as ASCII JSON so that any echoed value (even a lone surrogate) encodes."""
+
+    media_type = PROBLEM_MEDIA_TYPE
+
+    def render(self, content: Any) -> bytes:
+        return json.dumps(
+            _finite(content), ensure_ascii=True, allow_nan=False, separators=(",", ":")
+        ).encode()
+
+
+def _finite(value: Any) -> Any:
+    """``value`` with NaN and infinite floats (which JSON cannot hold) written as their names."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return repr(value)
+    if isinstance(value, dict):
+        return {str(k): _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    return value
+
+
 def problem_response(exc: BaseException, request: Request) -> JSONResponse:
     """The problem+json response of an exception (WxshockError or anything else, which becomes a 500)."""
     status, doc = problem_for(exc, instance=request.url.path)
@@ -83,7 +107,7 @@ def problem_response(exc: BaseException, request: Request) -> JSONResponse:
         if pointer is not None:
             doc["pointer"] = pointer
     headers = {"WWW-Authenticate": 'Bearer realm="wxshock"'} if isinstance(exc, AuthError) else None
-    return JSONResponse(doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=headers)
+    return ProblemResponse(doc, status_code=status, headers=headers)
 
 
 def validation_problem(exc: RequestValidationError, content_type: str = "") -> RequestValidationFailed:
@@ -185,9 +209,7 @@ def install_error_handlers(app: FastAPI) -> None:
             "detail": detail,
             "instance": request.url.path,
         }
-        return JSONResponse(
-            doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers=getattr(exc, "headers", None)
-        )
+        return ProblemResponse(doc, status_code=status, headers=getattr(exc, "headers", None))
 
     async def unexpected(request: Request, exc: Exception) -> JSONResponse:
         log.exception("unexpected failure on %s %s", request.method, request.url.path, exc_info=exc)
@@ -251,9 +273,7 @@ def _content_length(scope: Scope) -> int | None:
 async def _send_problem(scope: Scope, send: Send, exc: WxshockError) -> None:
     """Answer with the problem document of ``exc`` straight from middleware."""
     status, doc = problem_for(exc, instance=scope.get("path"))
-    response = JSONResponse(
-        doc, status_code=status, media_type=PROBLEM_MEDIA_TYPE, headers={"Connection": "close"}
-    )
+    response = ProblemResponse(doc, status_code=status, headers={"Connection": "close"})
 
     async def no_body() -> Message:
         return {"type": "http.disconnect"}

@@ -250,6 +250,12 @@ CORPUS: list[Case] = [
      "invalid-feature", {"pointer": "/features/features/0/properties/buffer_m"}),
     ("duplicate feature ids", lambda t: _valid(t, features={"type": "FeatureCollection", "features": [t, t]}), 422,
      "invalid-feature", {"pointer": "/features/features/1"}),
+    ("lone surrogate in an id", lambda t: json.dumps(_valid(t, features={"type": "FeatureCollection", "features": [
+        {**t, "id": "\udcff"}]})).encode(), 422, "invalid-request", {"pointer": "/features/features/0/id"}),
+    ("lone surrogate where a feature should be", lambda t: b'{"features": "\\udcff"}', 422, "validation-failed",
+     {"pointer": "/features"}),
+    ("NaN as an option", lambda t: json.dumps(_valid(t, max_missing_share=float("nan"))).encode(), 422,
+     "validation-failed", {"pointer": "/max_missing_share"}),
     ("too many features", lambda t: _valid(t, features=_many(t, 6)), 413, "limit-exceeded",
      {"limit": "max_features_on_demand"}),
     ("too many vertices", lambda t: _with_geometry(t, _circle(400)), 422, "limit-exceeded",

@@ -10,8 +10,10 @@ from typing import Annotated, Any
 
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+from pydantic import BaseModel
+from pydantic_core import PydanticSerializationError
 
-from service.errors import AuthError, LimitExceededError, StoreError, WxshockError
+from service.errors import AuthError, LimitExceededError, RequestError, StoreError, WxshockError
 from service.jobs import JobRunner
 from service.registry import StoreRegistry
 from service.settings import Settings
@@ -157,3 +159,37 @@ PROVENANCE_HEADERS = {
     "X-Wxshock-Request-Hash": "Hash of the resolved request, dataset fingerprint and software version.",
     "X-Wxshock-Software": "Software name and version.",
 }
+
+
+def ensure_encodable(body: BaseModel) -> None:
+    """Refuse text that cannot be written back as UTF-8 (a lone surrogate escape such as "\\udcff")."""
+    try:
+        body.model_dump_json()
+    except PydanticSerializationError:
+        pointer = _first_unencodable(body.model_dump(mode="python"), "")
+        raise RequestError(
+            f"the request holds text that is not valid Unicode at {pointer or 'the body'} (a lone surrogate "
+            "such as \\udcff); send the text as UTF-8",
+            pointer=pointer,
+        ) from None
+
+
+def _first_unencodable(value: Any, pointer: str) -> str | None:
+    """The JSON pointer of the first string (key or value) that UTF-8 cannot encode."""
+    if isinstance(value, str):
+        try:
+            value.encode("utf-8")
+        except UnicodeEncodeError:
+            return pointer
+        return None
+    items: Any = (
+        value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, list) else ()
+    )
+    for key, item in items:
+        where = f"{pointer}/{str(key).replace('~', '~0').replace('/', '~1')}"
+        if isinstance(key, str) and _first_unencodable(key, where) is not None:
+            return where
+        found = _first_unencodable(item, where)
+        if found is not None:
+            return found
+    return None

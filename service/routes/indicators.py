@@ -11,6 +11,7 @@ from service.routes.deps import (
     AppSettings,
     Registry,
     check_feature_count,
+    ensure_encodable,
     feature_total,
     require_token,
     table_responses,
@@ -83,6 +84,7 @@ def compute_indicators(
     from service import encode, pipeline
 
     fmt = encode.format_from(request.headers.get("accept"), format)
+    ensure_encodable(body)
     check_feature_count(
         feature_total(body.features),
         settings.max_features_on_demand,

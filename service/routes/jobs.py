@@ -15,6 +15,7 @@ from service.routes.deps import (
     Jobs,
     Registry,
     check_feature_count,
+    ensure_encodable,
     feature_total,
     require_token,
     table_responses,
@@ -88,6 +89,7 @@ def submit_job(
     ] = "parquet",
 ) -> JobStatus:
     """Queue an indicator request with any number of features as a batch job; 202 with its Location."""
+    ensure_encodable(body)
     check_feature_count(
         feature_total(body.features), settings.max_features_per_job, "max_features_per_job", on_demand=False
     )

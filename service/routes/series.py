@@ -10,6 +10,7 @@ from service.routes.deps import (
     AppSettings,
     Registry,
     check_feature_count,
+    ensure_encodable,
     feature_total,
     require_token,
     table_responses,
@@ -42,6 +43,7 @@ def compute_series(
     from service import encode, pipeline
 
     fmt = encode.format_from(request.headers.get("accept"), format, default="parquet")
+    ensure_encodable(body)
     check_feature_count(
         feature_total(body.features),
         settings.max_features_on_demand,
