@@ -2,6 +2,7 @@
 
     python bench/bench_pictures.py             # 20 rounds, replaces its section in bench/RESULTS.md
     python bench/bench_pictures.py --rounds 5  # a quicker look, nothing written
+    python bench/bench_pictures.py --map-store bench/out/large/synthetic.zarr   # the map's field on a big grid
 
 Measures, after two warm-up rounds, on a uvicorn server in this process (127.0.0.1):
   client   Client.indicators for one community, default request but prcp_total and tmean, Parquet on the wire
@@ -59,11 +60,66 @@ def _timed(call, rounds: int) -> dict[str, float]:
     return {"p50": float(np.percentile(values, 50)), "p95": float(np.percentile(values, 95)), "cpu": cpu}
 
 
+def _write_section(start: str, end: str, section: str) -> None:
+    """Replace (or append) one marked section of bench/RESULTS.md."""
+    text = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else "# Benchmark results\n"
+    if start in text and end in text:
+        text = text[: text.index(start)] + section + text[text.index(end) + len(end) :]
+    elif start != START and END in text:  # a map figure goes right after the pictures section
+        where = text.index(END) + len(END)
+        text = text[:where] + "\n" + section + text[where:]
+    else:
+        text = text.rstrip("\n") + "\n\n" + section + "\n"
+    RESULTS.write_text(text, encoding="utf-8")
+
+
+def map_field(location: str) -> None:
+    """Time the map's per-cell anomaly field (tmean, May-October 2010 against 1981-1990) on one store."""
+    import resource
+
+    from service.maps import anomaly_field
+    from service.schemas import FixedBaseline, MonthsSeason
+    from service.store import open_store
+
+    store = open_store(location)
+    wall, cpu = time.perf_counter(), time.process_time()
+    anomaly_field(
+        store,
+        "tmean",
+        2010,
+        season=MonthsSeason(months=[5, 6, 7, 8, 9, 10]),
+        baseline=FixedBaseline(start=1981, end=1990),
+    )
+    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    ny, nx = store.grid.shape
+    map_start, map_end = (
+        f"<!-- bench_pictures_map {location}: start -->",
+        f"<!-- bench_pictures_map {location}: end -->",
+    )
+    section = "\n".join(
+        [
+            map_start,
+            f"- Map field (`--map-store {location}`): {ny} x {nx} cells, tmean May-October 2010 against "
+            f"1981-1990 (11 season-years read, one at a time): {wall:.1f} s wall, {cpu:.1f} s CPU, peak RSS "
+            f"{peak:.0f} MB (load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores; "
+            f"{time.strftime('%Y-%m-%d')}).",
+            map_end,
+        ]
+    )
+    print(section)
+    _write_section(map_start, map_end, section)
+
+
 def main() -> None:
     """Build the tiny demo, serve it, time each route, and write the figures."""
     parser = argparse.ArgumentParser()
     parser.add_argument("--rounds", type=int, default=20)
+    parser.add_argument("--map-store", help="only time the map's anomaly field on this store")
     args = parser.parse_args()
+    if args.map_store:
+        map_field(args.map_store)
+        return
 
     import shapely
     import uvicorn
@@ -143,12 +199,7 @@ def main() -> None:
     section = "\n".join([START, *lines, END])
     print(section)
     if args.rounds >= 20:
-        text = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else "# Benchmark results\n"
-        if START in text and END in text:
-            text = text[: text.index(START)] + section + text[text.index(END) + len(END) :]
-        else:
-            text = text.rstrip("\n") + "\n\n" + section + "\n"
-        RESULTS.write_text(text, encoding="utf-8")
+        _write_section(START, END, section)
 
 
 if __name__ == "__main__":
