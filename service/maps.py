@@ -73,8 +73,13 @@ def season_years(
             return year.copy(), (month_day >= first) & (month_day <= last)
         late = month_day >= first
         return year + late.astype(int), late | (month_day <= last)
+    given = (
+        f"a per-feature season (property {season.property!r})"
+        if isinstance(getattr(season, "property", None), str)
+        else repr(season)
+    )
     raise RequestError(
-        f'the map needs one season for the whole grid, got {season!r}; give season as "year", '
+        f'the map needs one season for the whole grid, got {given}; give season as "year", '
         '{"months": [...]} or {"start": "MM-DD", "end": "MM-DD"}',
         field="season",
         pointer="/season",

@@ -130,7 +130,12 @@ def test_map_plot_outlines_the_communities_over_the_anomaly(live_server, tiny_co
     [
         ({"indicator": "cdd"}, {}, "cannot be mapped"),
         ({"year": 1950}, {}, "1950 is not in the data"),
-        ({}, {"season": {"property": "growing_season"}}, ""),
+        ({}, {"season": {"property": "growing_season"}}, "has no property 'growing_season'"),
+        (
+            {},
+            {"season": {"property": "growing_season"}, "features": "with its own season"},
+            "one season for the whole grid, got a per-feature season (property 'growing_season')",
+        ),
         ({}, {"baseline": {"start": 1900, "end": 1910}}, "1900-1910"),
         ({}, {"features": FAR_AWAY}, "feature 'far-away' lies outside the grid"),
     ],
@@ -142,6 +147,10 @@ def test_map_plot_errors_are_problem_documents(
     body: dict,
     message: str,
 ) -> None:
+    if body.get("features") == "with its own season":
+        feature = dict(tiny_communities["features"][0])
+        feature["properties"] = {"growing_season": {"months": [5, 6, 7]}}
+        body = body | {"features": feature}
     with live_server.client() as http:
         response = http.post(
             "/v1/plots/map", params=params, json=BODY | {"features": _one(tiny_communities)} | body
