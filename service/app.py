@@ -83,6 +83,7 @@ class ProblemResponse(JSONResponse):
     media_type = PROBLEM_MEDIA_TYPE
 
     def render(self, content: Any) -> bytes:
+        """The document as compact ASCII JSON bytes."""
         return json.dumps(
             _finite(content), ensure_ascii=True, allow_nan=False, separators=(",", ":")
         ).encode()
