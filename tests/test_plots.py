@@ -92,6 +92,19 @@ def test_series_plot_shades_the_class_bands() -> None:
     assert np.nonzero(greenish)[0].mean() < np.nonzero(sandy)[0].mean()
 
 
+def test_series_plot_colours_bars_by_the_tables_own_classes() -> None:
+    # z = -1 exactly is class -1 in the table (an edge belongs to the class farther from 0): a 'drier' bar.
+    frame = _frame()
+    frame.loc[(frame["feature_id"] == "c-01") & (frame["year"] == 1992), "prcp_total_z"] = -1.0
+    pixels = _pixels(series_plot(frame, "c-01"))
+    assert _near(pixels, class_colour("precipitation", -1)).sum() > 100
+    frame["prcp_total_class"] = 0  # a table that says 'near normal' everywhere wins over the z values
+    frame["tmean_class"] = 0
+    pixels = _pixels(series_plot(frame, "c-01"))
+    assert _near(pixels, class_colour("precipitation", 2)).sum() == 0
+    assert _near(pixels, class_colour("precipitation", -1)).sum() == 0
+
+
 def test_series_plot_without_spells_and_only_temperature() -> None:
     frame = _frame().drop(columns=["prcp_total_z", "dry_hot_run"])
     pixels = _pixels(series_plot(frame, "c-01", size_px=(600, 400)))
@@ -120,9 +133,11 @@ def test_class_words_and_numbers() -> None:
     assert class_numbers([-2, -1, 1, 2]) == [-2, -1, 0, 1, 2]
     assert class_numbers([0.5, 1.5]) == [0, 1, 2]
     assert class_numbers([-1.0]) == [-1, 0]
+    # The words are the indicator table's own labels (service.indicators.classes).
     assert class_word("precipitation", -2) == "much drier"
     assert class_word("temperature", 1) == "warmer"
     assert class_word("temperature", 0) == "near normal"
+    assert class_word("temperature", 1, [-3, -2, -1, 1, 2, 3]) == "slightly warmer"
     assert class_colour("precipitation", 1) == WET[0] and class_colour("precipitation", -1) == DRY[0]
     assert class_colour("temperature", 5) == WARM[-1]
 
