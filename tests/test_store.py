@@ -262,6 +262,12 @@ def test_store_on_s3(tmp_path: Path, s3_server) -> None:  # noqa: F811 - fixture
     changed["tmin"][0, 0, 0] += 1.0
     assert write_store(changed, url, storage_options=options) != fingerprint  # replaced in place
     assert open_store(url, storage_options=options).fingerprint != fingerprint
+    # appending on an object store rewrites it aside, and gives the store a local write of both years gives
+    both = make_dataset(years=(2000, 2001))
+    write_store(both.sel(time=slice(None, "2000-12-31")), url, storage_options=options)
+    grown = append_store(both.sel(time=slice("2001-01-01", None)).drop_vars(["elevation", "population"]), url,
+                         storage_options=options)  # fmt: skip
+    assert grown == write_store(both, tmp_path / "both.zarr")
 
 
 from tests._support_cluster import s3_server  # noqa: E402,F401 - the session's moto S3 fixture
