@@ -322,18 +322,47 @@ def sdii(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> n
 
 
 def wet_day_threshold(cube: SeasonCube, baseline: Baseline, q: float) -> tuple[np.ndarray, np.ndarray]:
-    """The ``q``-percentile of baseline wet-day RR (mm) per (feature, row), and each season-year's row."""
+    """The ``q``-percentile (q >= 0.5) of baseline wet-day RR (mm) per (feature, row), and each year's row.
+
+    Type 8 quantile of the wet days (RR >= 1 mm) of the baseline season-years; NaN with fewer than
+    MIN_WET_DAYS of them or fewer than three baseline season-years with data. A high quantile needs only
+    the largest few values of the pool, and the largest K values of a union of seasons are among each
+    season's own largest K: so each season's wet days are sorted once, and each baseline row sorts only
+    the union of its seasons' top K (one small sort per row, vectorised over features).
+    """
     rows, row_of_year = _baseline_rows(baseline)
-    out = np.full((cube.prcp.shape[0], rows.shape[0]), np.nan)
-    for r, row in enumerate(rows):
-        seasons = np.flatnonzero(row)
-        if seasons.size < MIN_BASELINE_SEASONS:
-            continue
-        chosen = cube.prcp[:, seasons, :]
-        seasons_with_data = np.count_nonzero((~np.isnan(chosen)).any(axis=-1), axis=-1)
-        values = np.where(chosen >= WET_DAY_MM, chosen, np.nan).reshape(cube.prcp.shape[0], -1)
-        threshold = quantile_type8(values, q, MIN_WET_DAYS, overwrite=True)
-        out[:, r] = np.where(seasons_with_data >= MIN_BASELINE_SEASONS, threshold, np.nan)
+    n_feature, n_year, n_day = cube.prcp.shape
+    out = np.full((n_feature, rows.shape[0]), np.nan)
+    wet = np.where(cube.prcp >= WET_DAY_MM, cube.prcp, np.nan)
+    wet_count = np.count_nonzero(~np.isnan(wet), axis=-1)  # (feature, year)
+    has_data = (~np.isnan(cube.prcp)).any(axis=-1)  # (feature, year)
+    usable_rows = [(r, np.flatnonzero(row)) for r, row in enumerate(rows)]
+    usable_rows = [(r, seasons) for r, seasons in usable_rows if seasons.size >= MIN_BASELINE_SEASONS]
+    if not usable_rows or n_day == 0:
+        return out, row_of_year
+    # how deep from the top each row's quantile reaches: ranks floor(h) and floor(h) + 1 of n values
+    pooled = np.stack([wet_count[:, seasons].sum(axis=-1) for _, seasons in usable_rows], axis=1)
+    h = np.clip((pooled + 1.0 / 3.0) * q + 1.0 / 3.0, 1.0, np.maximum(pooled, 1).astype(np.float64))
+    depth = min(n_day, int((pooled - np.floor(h)).max()) + 1)
+    # each season's wet days, largest first (NaN last), cut to the deepest rank any row needs
+    largest = -np.sort(-wet.reshape(-1, n_day), axis=-1)[:, :depth].reshape(n_feature, n_year, depth)
+    for column, (r, seasons) in enumerate(usable_rows):
+        n = pooled[:, column]
+        top = np.maximum(n, 1)
+        h_row = h[:, column]
+        low = np.floor(h_row).astype(np.int64)
+        frac = h_row - low
+        high = np.minimum(low + 1, top)
+        union = -np.sort(-largest[:, seasons].reshape(n_feature, -1), axis=-1)  # largest first, NaN last
+        # ascending rank j of n values is rank n - j + 1 from the top, index n - j
+        at_low = np.clip(n - low, 0, union.shape[-1] - 1)
+        at_high = np.clip(n - high, 0, union.shape[-1] - 1)
+        x_low = np.take_along_axis(union, at_low[:, None], axis=-1)[:, 0]
+        x_high = np.take_along_axis(union, at_high[:, None], axis=-1)[:, 0]
+        with np.errstate(invalid="ignore"):
+            value = np.where(frac > 0, x_low + frac * (x_high - x_low), x_low)
+        enough = (n >= MIN_WET_DAYS) & (has_data[:, seasons].sum(axis=-1) >= MIN_BASELINE_SEASONS)
+        out[:, r] = np.where(enough, value, np.nan)
     return out, row_of_year
 
 

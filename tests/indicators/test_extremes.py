@@ -199,6 +199,29 @@ def test_quantile_type8_matches_numpy_median_unbiased():
         assert got[i] == pytest.approx(np.quantile(row, 0.9, method="median_unbiased"))
 
 
+@pytest.mark.parametrize("q", [0.5, 0.9, 0.95, 0.99])
+def test_wet_day_threshold_equals_a_full_sort_of_each_baseline(q):
+    rng = np.random.default_rng(int(q * 100))
+    probe = daily_series(2000, 9)
+    n = probe.year.size
+    prcp = np.where(rng.random((4, n)) < 0.3, rng.gamma(0.8, 10.0, (4, n)), 0.0)
+    prcp[1, rng.random(n) < 0.2] = np.nan
+    prcp[2] = np.where(rng.random(n) < 0.02, 5.0, 0.0)  # few wet days, all tied
+    cube = season_cube(daily_series(2000, 9, n_features=4, prcp=prcp), months=[6, 7, 8, 9])
+    for base in (fixed_baseline(cube, 2000, 2004), trailing_baseline(cube, 4)):
+        threshold, row_of_year = extremes.wet_day_threshold(cube, base, q)
+        for t in range(cube.years.size):
+            seasons = np.flatnonzero(base.members[t])
+            for f in range(4):
+                pool = cube.prcp[f, seasons].ravel()
+                pool = pool[pool >= 1.0]
+                got = threshold[f, row_of_year[t]]
+                if seasons.size < 3 or pool.size < extremes.MIN_WET_DAYS:
+                    assert np.isnan(got)
+                else:  # numpy's median_unbiased is Hyndman & Fan type 8
+                    assert got == pytest.approx(np.quantile(pool, q, method="median_unbiased"))
+
+
 def test_tx90p_tn10p_by_hand():
     # Season March-May. Baseline 2000-2009: year k has TX = k and TN = -k on every day, so each calendar-day
     # pool is the values 0..9 (resp. 0..-9), five of each (50 values). Type 8 by hand: h = (50 + 1/3) 0.9 +
