@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import threading
 import time
@@ -339,3 +340,18 @@ def test_batch_job_survives_a_worker_stopped_mid_way(servers, tiny_communities: 
         assert got == expected
     finally:
         dask_cluster.ensure_workers()
+
+
+@pytest.mark.cluster
+def test_cli_compute_with_scheduler_writes_the_same_file(
+    tiny_demo: Path, tiny_communities: dict, dask_cluster: DaskProcesses, tmp_path: Path
+) -> None:
+    from service.cli import main
+
+    some = dict(tiny_communities, features=tiny_communities["features"][:6])
+    request = tmp_path / "request.json"
+    request.write_text(json.dumps(_demo_request(some)), encoding="utf-8")
+    base = ["compute", "--store", str(tiny_demo), "--request", str(request), "--quiet"]
+    assert main([*base, "--out", str(tmp_path / "threads.parquet")]) == 0
+    assert main([*base, "--out", str(tmp_path / "cluster.parquet"), "--scheduler", dask_cluster.address]) == 0
+    assert (tmp_path / "cluster.parquet").read_bytes() == (tmp_path / "threads.parquet").read_bytes()
