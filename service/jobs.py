@@ -267,6 +267,16 @@ class JobDatabase:
             ).rowcount
         return requeued, failed
 
+    def requeue(self, job_id: str) -> bool:
+        """Put a running job back in the queue (to be tried again); False when it is no longer running."""
+        with self._transaction() as db:
+            cursor = db.execute(
+                "UPDATE jobs SET state = 'queued', started_at = NULL, features_done = 0 "
+                "WHERE id = ? AND state = 'running'",
+                (job_id,),
+            )
+            return cursor.rowcount == 1
+
     def expired(self, before: float) -> list[Job]:
         """Finished jobs that finished before ``before`` (seconds since the epoch)."""
         with self._lock:
@@ -320,6 +330,7 @@ class JobRunner:
         *,
         run_job: RunJob = run_with_pipeline,
         poll_seconds: float = 0.5,
+        retry_seconds: float = 5.0,
         clean_up_seconds: float = 600.0,
     ) -> None:
         self.settings = settings
@@ -330,6 +341,7 @@ class JobRunner:
         self.db = JobDatabase(self.directory / "jobs.sqlite")
         self._run_job = run_job
         self._poll_seconds = poll_seconds
+        self._retry_seconds = retry_seconds
         self._clean_up_seconds = clean_up_seconds
         self._wake = threading.Event()
         self._stop = threading.Event()
@@ -520,9 +532,16 @@ class JobRunner:
             else:
                 log.info("job %s: cancelled", job.id)
         except Exception as exc:  # noqa: BLE001 - a job's failure is recorded, never lost, never kills the worker
+            status, problem = problem_for(exc, instance=f"/v1/jobs/{job.id}")
+            if status == 503 and job.attempts < MAX_ATTEMPTS and not self._stop.is_set():
+                # The cluster or a store was unavailable, not the request wrong: wait, then queue it again.
+                delay = self._retry_seconds * job.attempts
+                log.warning("job %s: %s; trying again in %.0f s", job.id, problem["detail"], delay)
+                self._stop.wait(delay)
+                self.db.requeue(job.id)
+                return
             if not isinstance(exc, RequestError):
                 log.exception("job %s failed", job.id)
-            _, problem = problem_for(exc, instance=f"/v1/jobs/{job.id}")
             self.db.finish(job.id, "failed", time.time(), error=problem)
         finally:
             self._cancelled.discard(job.id)

@@ -13,7 +13,7 @@ import httpx
 import pytest
 
 from service import encode, pipeline
-from service.errors import JobNotFoundError, JobStateError, RequestError
+from service.errors import ClusterUnavailableError, JobNotFoundError, JobStateError, RequestError
 from service.jobs import (
     MAX_ATTEMPTS,
     Job,
@@ -258,6 +258,53 @@ def test_a_job_that_fails_keeps_its_problem_document(runner: JobRunner, tiny_com
         runner.result_path(job.id)
     with pytest.raises(JobStateError, match="already failed"):
         runner.cancel(job.id)
+
+
+def test_a_job_whose_cluster_was_unavailable_is_tried_again(
+    tiny_demo: Path, tmp_path: Path, tiny_communities: dict
+) -> None:
+    calls = []
+
+    def cluster_down_once(request, registry, settings, fmt, *, progress, cancelled):  # noqa: ANN001, ANN202
+        calls.append(time.monotonic())
+        if len(calls) == 1:
+            raise ClusterUnavailableError("the dask scheduler at tcp://127.0.0.1:1 cannot be reached")
+        return run_with_pipeline(request, registry, settings, fmt, progress=progress, cancelled=cancelled)
+
+    store = open_store(tiny_demo)
+    runner = JobRunner(Settings(data_dir=tmp_path), StoreRegistry({store.name: store}), run_job=cluster_down_once,
+                       poll_seconds=0.05, retry_seconds=0.2)  # fmt: skip
+    runner.start()
+    try:
+        job, _ = runner.submit(_request(tiny_communities, 2), "csv")
+        done = _wait(runner, job.id, {"succeeded", "failed"})
+    finally:
+        runner.stop()
+    assert done.state == "succeeded" and done.attempts == 2
+    assert len(calls) == 2 and calls[1] - calls[0] >= 0.2
+
+
+def test_a_job_whose_cluster_stays_unavailable_fails_after_a_few_tries(
+    tiny_demo: Path, tmp_path: Path, tiny_communities: dict
+) -> None:
+    def cluster_down(request, registry, settings, fmt, *, progress, cancelled):  # noqa: ANN001, ANN202
+        raise ClusterUnavailableError("the dask scheduler at tcp://127.0.0.1:1 cannot be reached")
+
+    store = open_store(tiny_demo)
+    runner = JobRunner(Settings(data_dir=tmp_path), StoreRegistry({store.name: store}), run_job=cluster_down,
+                       poll_seconds=0.05, retry_seconds=0.05)  # fmt: skip
+    runner.start()
+    try:
+        job, _ = runner.submit(_request(tiny_communities, 1), "csv")
+        failed = _wait(runner, job.id, {"succeeded", "failed"})
+    finally:
+        runner.stop()
+    assert failed.state == "failed" and failed.attempts == MAX_ATTEMPTS
+    assert (
+        failed.error is not None
+        and failed.error["status"] == 503
+        and "cannot be reached" in failed.error["detail"]
+    )
 
 
 # --- SIGKILL in the middle of a job, then restart -------------------------------------------------------------
