@@ -132,10 +132,10 @@ def main(argv: list[str] | None = None) -> int:
                 "",
             ]
         )
-        # insert at the end of our own section, before the next section of someone else
+        # insert at the end of our own section, before the next section (or section marker) of someone else
         start = text.index(SECTION) + len(SECTION)
-        following = text.find("\n## ", start)
-        end = len(text) if following < 0 else following + 1
+        following = [i for i in (text.find("\n## ", start), text.find("\n<!--", start)) if i >= 0]
+        end = min(following) + 1 if following else len(text)
         head = text[:end].rstrip("\n") + "\n\n"
         RESULTS.write_text(head + block + text[end:].lstrip("\n"))
     return 0
