@@ -101,6 +101,7 @@ LIMITS = {
     "max_features_on_demand": 5,
     "max_vertices_per_feature": 300,
     "max_years_per_request": 30,
+    "max_cells_per_feature": 40,  # the town of the corpus covers 6 cells of 0.025 degrees
 }
 
 
@@ -260,6 +261,8 @@ CORPUS: list[Case] = [
      {"limit": "max_features_on_demand"}),
     ("too many vertices", lambda t: _with_geometry(t, _circle(400)), 422, "limit-exceeded",
      {"limit": "max_vertices_per_feature"}),
+    ("too many cells", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": _square(-39.8, 14.2, 0.3)}),
+     422, "limit-exceeded", {"limit": "max_cells_per_feature"}),
     ("too many years", lambda t: _valid(t, years={"start": 1990, "end": 2022}), 422, "limit-exceeded",
      {"limit": "max_years_per_request"}),
     ("oversized body", lambda t: _valid(t, features=_many(t, 3) | {"padding": "x" * 500_000}), 413,
