@@ -72,11 +72,14 @@ ADD_OFFSET = 0.0
 FILL_VALUE = -32768  # int16 minimum: never a real value at 0.1 units
 _INT16_MIN, _INT16_MAX = -32767, 32767
 
-# Store layout, chosen by measurement (bench/bench_store_layout.py, figures in bench/RESULTS.md, section
-# "Store layout"): tiles of 32 x 32 cells with time fastest in memory serve both the few-cells-all-years read
-# and the full pass; see the bench for why the time length of a chunk is what it is.
+# Store layout, chosen by measurement (bench/bench_store_layout.py; figures in bench/RESULTS.md, "Store layout"):
+# one variable of 256 x 256 cells x 41 years on our 2-core machine. Tiles of 32 x 32 cells with time fastest
+# (dims y, x, time) serve both workloads; decade-long chunks read 5 cells x 41 years in 18 ms (whole-time tiles
+# 56 ms), make a full pass at the bare blosc decode speed (1.81 s CPU against 1.77 s), and append a year in 2.3 s
+# (whole-time chunks: 15.3 s, as every chunk is rewritten; decade chunks in 4-decade shards: 3.8 s). blosc lz4
+# with byte shuffle decodes 2.3x faster than zstd level 1 for 9 % (tmax) to 35 % (prcp) more disk.
 TILE_CELLS = 32
-TIME_CHUNK_DAYS = 3653  # about ten years per chunk, so appending a year rewrites one chunk row, not the store
+TIME_CHUNK_DAYS = 3653  # ten years (with their leap days) per chunk
 COMPRESSOR_NAME = "lz4"
 COMPRESSOR_LEVEL = 5
 
