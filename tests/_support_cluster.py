@@ -31,6 +31,7 @@ import numpy as np
 import pytest
 
 REPO = Path(__file__).resolve().parents[1]
+DASK_CONFIG = REPO / "docker" / "dask.yaml"
 HOST = "127.0.0.1"
 START_TIMEOUT_S = 60.0
 _PR_SET_PDEATHSIG = 1
@@ -54,6 +55,7 @@ def _spawn(argv: list[str], log_path: Path, cwd: Path) -> subprocess.Popen[bytes
     """Start a server command in its own process group, its output to a log file."""
     env = dict(os.environ)
     env["PYTHONPATH"] = os.pathsep.join(p for p in (str(REPO), env.get("PYTHONPATH", "")) if p)
+    env["DASK_CONFIG"] = str(DASK_CONFIG)  # the scheduler's and workers' settings of the container image
     log = open(log_path, "ab")  # noqa: SIM115 - the child holds its own descriptor
     try:
         return subprocess.Popen(

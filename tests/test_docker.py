@@ -8,6 +8,7 @@ own command, run against a real server, passes. Not checked: that the image buil
 
 from __future__ import annotations
 
+import copy
 import json
 import shlex
 import subprocess
@@ -332,3 +333,19 @@ def test_scheduler_health_check_uses_its_own_port(compose: dict) -> None:
     scheduler = compose["services"]["scheduler"]
     port = _dask_command(scheduler["command"])["port"]
     assert f"{port}" in " ".join(scheduler["healthcheck"]["test"]) and scheduler["expose"] == [str(port)]
+
+
+def test_dask_settings_file_is_installed_where_dask_reads_it(dockerfile: list[Instruction]) -> None:
+    import dask
+    from distributed.nanny import _get_env_variables
+
+    copies = {i.words()[-1]: i.words()[0] for i in dockerfile if i.keyword == "COPY"}
+    assert copies.get("/etc/dask/dask.yaml") == "docker/dask.yaml"
+    assert "/etc/dask" in dask.config.paths  # one of the places dask looks for settings by default
+    from_file = dask.config.collect(paths=[str(REPO / "docker" / "dask.yaml")], env={})
+    merged = dask.config.update(copy.deepcopy(dask.config.config), from_file)  # the file over the defaults
+    with dask.config.set(merged):
+        assert dask.config.get("distributed.scheduler.allowed-failures") == 3
+        environment = _get_env_variables("distributed.nanny.pre-spawn-environ")
+    assert "MALLOC_TRIM_THRESHOLD_" not in environment  # see docker/dask.yaml for why
+    assert environment.get("OMP_NUM_THREADS") == "1"  # distributed's other defaults stay
