@@ -243,7 +243,10 @@ def run(
         if cancelled is not None and cancelled():
             raise RunCancelledError(f"cancelled after {done} of {total} features")
         batch = take_weights(weights, rows)
-        (daily_ds,) = cluster.compute(aggregate(store, batch, time=span), settings=settings)
+        # The indicators take tmean from tmax and tmin themselves; not computing the Dataset's tmean saves a
+        # quarter of the series moved back from a dask cluster (and the work of making it).
+        daily_lazy = aggregate(store, batch, time=span).drop_vars("tmean", errors="ignore")
+        (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
         daily = _daily_series(daily_ds, store, span, np.asarray(batch.latitude))
         table = compute_table(daily, list(batch.feature_ids), [properties[i] for i in rows], resolved)
         frames.append(_feature_columns(table.frame, weights, rows))
@@ -296,7 +299,8 @@ def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunR
     start = int(np.searchsorted(dates.year, years[0], side="left"))
     stop = int(np.searchsorted(dates.year, years[1], side="right"))
     span = slice(start, stop)
-    (daily_ds,) = cluster.compute(aggregate(store, weights, time=span), settings=settings)
+    daily_lazy = aggregate(store, weights, time=span).drop_vars("tmean", errors="ignore")  # made below
+    (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
     labels = [
         f"{y:04d}-{m:02d}-{d:02d}"
         for y, m, d in zip(dates.year[span], dates.month[span], dates.day[span], strict=True)
