@@ -208,7 +208,7 @@ def expected_wet_amount(world: dict[str, Any], dayofyear: np.ndarray, elevation_
 
 
 def climatological_mean_temperature(
-    world: dict[str, Any], dayofyear: np.ndarray, elevation_m: np.ndarray
+    world: dict[str, Any], dayofyear: np.ndarray, elevation_m: np.ndarray | float
 ) -> np.ndarray:
     """Daily mean temperature (degC) of the harmonics and lapse rate, before trend, anomalies and wet-day shift."""
     temp = world["temperature"]

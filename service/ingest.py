@@ -201,32 +201,33 @@ def _scan(files: list[Path], explicit: dict[str, str], progress: bool) -> list[_
 def _identify(path: Path, ds: xr.Dataset, explicit: dict[str, str]) -> dict[str, str]:
     """{our variable: name in the file} for one file."""
     found: dict[str, str] = {}
-    for variable, name in explicit.items():
+    for wanted, name in explicit.items():
         if name in ds.data_vars:
-            found[variable] = name
+            found[wanted] = name
     taken = set(found.values())
-    for name, var in ds.data_vars.items():
-        name = str(name)
+    for key, var in ds.data_vars.items():
+        name = str(key)
         if name in taken or var.ndim != 3:
             continue
         standard = str(var.attrs.get("standard_name", "")).strip()
         methods = str(var.attrs.get("cell_methods", ""))
         variable: str | None = None
         if standard in TEMPERATURE_NAMES:
+            named = next((v for v in ("tmax", "tmin") if name in FALLBACK_NAMES[v]), None)
             if re.search(r"time\s*:\s*max", methods):
                 variable = "tmax"
             elif re.search(r"time\s*:\s*min", methods):
                 variable = "tmin"
+            elif named is not None and methods.strip():
+                raise IngestError(
+                    f"file {str(path)!r}: variable {name!r} is air_temperature but its cell_methods "
+                    f"({methods!r}) say neither 'time: maximum' nor 'time: minimum'; "
+                    f"name it with --var tmax={name} or --var tmin={name}"
+                )
             else:
-                # without cell_methods the CMIP names tasmax/tasmin still say which; contradicting ones do not
-                fallback = [v for v in ("tmax", "tmin") if name in FALLBACK_NAMES[v] and not methods.strip()]
-                if not fallback:
-                    raise IngestError(
-                        f"file {str(path)!r}: variable {name!r} is air_temperature but its cell_methods "
-                        f"({methods!r}) say neither 'time: maximum' nor 'time: minimum'; "
-                        f"name it with --var tmax={name} or --var tmin={name}"
-                    )
-                variable = fallback[0]
+                # without cell_methods the CMIP names tasmax/tasmin still say which; any other air temperature
+                # (a daily mean, say) is not one of ours
+                variable = named
         elif standard in PRECIPITATION_NAMES:
             variable = "prcp"
         elif not standard:
@@ -430,7 +431,7 @@ def _common_calendar(sources: list[_Source]) -> str:
 # --- time -----------------------------------------------------------------------------------------------------
 
 
-def _date(days: np.ndarray, calendar: str) -> str:
+def _date(days: np.ndarray | int, calendar: str) -> str:
     """'YYYY-MM-DD' of one day number."""
     return _iso(_date_table(np.asarray(days, dtype=np.int64).reshape(1), calendar), 0)
 

@@ -361,3 +361,17 @@ def test_command_line_ingest_describe_verify(tmp_path: Path, capsys: pytest.Capt
         == 2
     )
     assert "no input file has a variable named 'nope'" in capsys.readouterr().err
+
+
+def test_a_daily_mean_temperature_beside_the_others_is_left_out(tmp_path: Path) -> None:
+    ds = make_dataset(ny=2, nx=2, years=(2000, 2000))
+    files = write_cf(ds, tmp_path / "in", split="one")
+
+    def add_mean(cf: xr.Dataset) -> xr.Dataset:
+        cf["tas"] = (cf["tasmax"] + cf["tasmin"]) / 2
+        cf["tas"].attrs = {"standard_name": "air_temperature", "cell_methods": "time: mean", "units": "K"}
+        return cf
+
+    _rewrite(files[0], add_mean)
+    ingest_files(files, tmp_path / "s.zarr", progress=False)
+    assert_same_values(tmp_path / "s.zarr", ds)
