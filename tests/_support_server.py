@@ -138,7 +138,9 @@ def start_process(
 
 
 @contextmanager
-def thread_server(settings: Settings, *, timeout: float = 120.0, token: str | None = None) -> Iterator[LiveServer]:
+def thread_server(
+    settings: Settings, *, timeout: float = 120.0, token: str | None = None
+) -> Iterator[LiveServer]:
     """Run create_app(settings) under uvicorn in a thread of this process, on 127.0.0.1, for the block."""
     import uvicorn
 
