@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 from functools import cached_property
 from itertools import product
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import cftime
 import numpy as np
@@ -219,7 +219,7 @@ def _store_name(location: str) -> str:
     return Path(last).stem or last
 
 
-def _open_group(location: str, storage_options: dict | None, *, mode: str = "r") -> zarr.Group:
+def _open_group(location: str, storage_options: dict | None, *, mode: Literal["r", "r+"] = "r") -> zarr.Group:
     """Open the store's root group, turning "not there" and "not zarr" into a StoreError that says which."""
     if not _is_url(location) and not (Path(location) / "zarr.json").is_file():
         if not Path(location).exists():
@@ -1226,12 +1226,12 @@ def _swap_into_place(aside: str, target: str, storage_options: dict | None) -> N
     store untouched.
     """
     if _is_url(target):
-        fs, target_path = _filesystem(target, storage_options)
-        _, aside_path = _filesystem(aside, storage_options)
-        if fs.exists(target_path):
-            fs.rm(target_path, recursive=True)
-        fs.copy(aside_path, target_path, recursive=True)
-        fs.rm(aside_path, recursive=True)
+        fs, target_key = _filesystem(target, storage_options)
+        _, aside_key = _filesystem(aside, storage_options)
+        if fs.exists(target_key):
+            fs.rm(target_key, recursive=True)
+        fs.copy(aside_key, target_key, recursive=True)
+        fs.rm(aside_key, recursive=True)
         return
     target_path = Path(target)
     target_path.parent.mkdir(parents=True, exist_ok=True)
