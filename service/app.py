@@ -336,6 +336,10 @@ def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
         finally:
             if state.jobs is not None:
                 await run_in_threadpool(state.jobs.stop)
+            # A distributed client left open would keep the process (and the scheduler's slot) alive.
+            from service import cluster
+
+            await run_in_threadpool(cluster.close_clients)
 
     app = FastAPI(
         title="wxshock",
