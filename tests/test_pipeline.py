@@ -20,40 +20,12 @@ from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
 from service.store import open_store
 
+EXAMPLE_REQUEST = Path(__file__).parents[1] / "examples" / "request.json"
+
 
 def example_request(features: dict[str, Any]) -> dict[str, Any]:
-    """The example request of the indicator issue, on the demo's communities and years."""
-    return {
-        "dataset": "demo",
-        "features": features,
-        "years": {"start": 1991, "end": 2018},
-        "season": {"months": [5, 6, 7, 8, 9, 10]},
-        "baseline": {"start": 1980, "end": 1990},
-        "indicators": [
-            "prcp_total",
-            "tmean",
-            "cdd",
-            {"name": "gdd", "base": 10, "cap": 30},
-            {"name": "edd", "threshold": 29},
-            {"name": "spei"},
-        ],
-        "classes": {"edges": [-2, -1, 1, 2]},
-        "lags": [0, 1, 2],
-        "pairs": [["prcp_total", "tmean"]],
-        "sequences": [[1, 2]],
-        "spells": [
-            {
-                "name": "dry_hot",
-                "window": 5,
-                "when": [
-                    {"indicator": "prcp_total", "class_max": -1},
-                    {"indicator": "tmean", "class_min": 1},
-                ],
-            }
-        ],
-        "weighting": "area",
-        "layout": "wide",
-    }
+    """The example request of the indicator issue (examples/request.json) on the given features."""
+    return {**json.loads(EXAMPLE_REQUEST.read_text(encoding="utf-8")), "features": features}
 
 
 @pytest.fixture(scope="module")

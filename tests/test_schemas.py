@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -27,34 +29,10 @@ POINT = {
 }
 COLLECTION = {"type": "FeatureCollection", "features": [POINT]}
 
-# The example request of the indicator issue, verbatim but for the features.
+# The example request of the indicator issue, as shipped in examples/request.json.
 EXAMPLE = {
-    "dataset": "demo",
+    **json.loads((Path(__file__).parents[1] / "examples" / "request.json").read_text(encoding="utf-8")),
     "features": COLLECTION,
-    "years": {"start": 1991, "end": 2018},
-    "season": {"months": [5, 6, 7, 8, 9, 10]},
-    "baseline": {"start": 1980, "end": 1990},
-    "indicators": [
-        "prcp_total",
-        "tmean",
-        "cdd",
-        {"name": "gdd", "base": 10, "cap": 30},
-        {"name": "edd", "threshold": 29},
-        {"name": "spei"},
-    ],
-    "classes": {"edges": [-2, -1, 1, 2]},
-    "lags": [0, 1, 2],
-    "pairs": [["prcp_total", "tmean"]],
-    "sequences": [[1, 2]],
-    "spells": [
-        {
-            "name": "dry_hot",
-            "window": 5,
-            "when": [{"indicator": "prcp_total", "class_max": -1}, {"indicator": "tmean", "class_min": 1}],
-        }
-    ],
-    "weighting": "area",
-    "layout": "wide",
 }
 
 
