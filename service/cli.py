@@ -164,7 +164,9 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("ingest", help="ingest CF NetCDF files into a store")
     p.add_argument("files", nargs="+", help="NetCDF files (one per year and variable, or any split)")
     p.add_argument("--out", required=True, help="store directory or s3:// URL; appended to when it exists")
-    p.add_argument("--var", action="append", default=[], help="explicit variable, e.g. tmax=tasmax (repeatable)")
+    p.add_argument(
+        "--var", action="append", default=[], help="explicit variable, e.g. tmax=tasmax (repeatable)"
+    )
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_ingest)
 

@@ -110,8 +110,16 @@ class LimitExceededError(RequestError):
     slug = "limit-exceeded"
     title = "Limit exceeded"
 
-    def __init__(self, detail: str, *, limit: str, allowed: int | float, got: int | float, status: int = 422,
-                 **kwargs: Any) -> None:
+    def __init__(
+        self,
+        detail: str,
+        *,
+        limit: str,
+        allowed: int | float,
+        got: int | float,
+        status: int = 422,
+        **kwargs: Any,
+    ) -> None:
         super().__init__(detail, limit=limit, allowed=allowed, got=got, **kwargs)
         self.status = status
         self.limit = limit

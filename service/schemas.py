@@ -109,7 +109,13 @@ def _by_keys(**tags: str):  # noqa: ANN202 - a pydantic discriminator callable
     def choose(value: object) -> str | None:
         if isinstance(value, str):
             return "Name"
-        keys = value.keys() if isinstance(value, dict) else vars(value).keys() if hasattr(value, "__dict__") else ()
+        keys = (
+            value.keys()
+            if isinstance(value, dict)
+            else vars(value).keys()
+            if hasattr(value, "__dict__")
+            else ()
+        )
         for key, tag in tags.items():
             if key in keys:
                 return tag
@@ -127,8 +133,8 @@ Season = Annotated[
     Discriminator(
         _by_keys(months="Months", start="Window", end="Window", property="Property"),
         custom_error_type="season",
-        custom_error_message="season must be \"year\", {\"months\": [...]}, {\"start\": \"MM-DD\", "
-        "\"end\": \"MM-DD\"} or {\"property\": NAME}",
+        custom_error_message='season must be "year", {"months": [...]}, {"start": "MM-DD", '
+        '"end": "MM-DD"} or {"property": NAME}',
     ),
 ]
 
@@ -145,7 +151,9 @@ class FixedBaseline(_Model):
         if self.start > self.end:
             raise ValueError(f"baseline start ({self.start}) is after its end ({self.end})")
         if self.end - self.start + 1 < 3:
-            raise ValueError(f"baseline {self.start}-{self.end} has fewer than 3 seasons; a normal needs at least 3")
+            raise ValueError(
+                f"baseline {self.start}-{self.end} has fewer than 3 seasons; a normal needs at least 3"
+            )
         return self
 
 
@@ -199,7 +207,9 @@ class SpellCondition(_Model):
     def _some_bound(self) -> SpellCondition:
         """A condition without a bound would always hold."""
         if all(v is None for v in (self.class_min, self.class_max, self.z_min, self.z_max)):
-            raise ValueError(f"condition on {self.indicator!r} gives none of class_min, class_max, z_min, z_max")
+            raise ValueError(
+                f"condition on {self.indicator!r} gives none of class_min, class_max, z_min, z_max"
+            )
         return self
 
 
@@ -215,7 +225,9 @@ class Spell(_Model):
     def _column_name(cls, name: str) -> str:
         """The name becomes a column prefix: lower-case letters, digits and underscores."""
         if not _NAME.match(name):
-            raise ValueError(f"spell name {name!r} must be lower-case letters, digits and '_', starting with a letter")
+            raise ValueError(
+                f"spell name {name!r} must be lower-case letters, digits and '_', starting with a letter"
+            )
         return name
 
 
@@ -240,50 +252,64 @@ class _FeatureRequest(_Model):
 
     dataset: str | None = Field(default=None, description="Dataset name; default: the first served dataset.")
     features: Annotated[
-        Annotated[GeoJSONFeatureCollection, Tag("FeatureCollection")] | Annotated[GeoJSONFeature, Tag("Feature")],
+        Annotated[GeoJSONFeatureCollection, Tag("FeatureCollection")]
+        | Annotated[GeoJSONFeature, Tag("Feature")],
         Discriminator(
-            lambda v: (v.get("type") if isinstance(v, dict) else getattr(v, "type", None))
-            if (v.get("type") if isinstance(v, dict) else getattr(v, "type", None)) in ("Feature", "FeatureCollection")
-            else None,
+            lambda v: (
+                (v.get("type") if isinstance(v, dict) else getattr(v, "type", None))
+                if (v.get("type") if isinstance(v, dict) else getattr(v, "type", None))
+                in ("Feature", "FeatureCollection")
+                else None
+            ),
             custom_error_type="features",
             custom_error_message="features must be a GeoJSON FeatureCollection or Feature (RFC 7946)",
         ),
     ]
     id_property: str | None = Field(
-        default=None, description="Feature property that holds the community id; default: the Feature's own id."
+        default=None,
+        description="Feature property that holds the community id; default: the Feature's own id.",
     )
     crs: str | None = Field(
-        default=None, description="CRS of the coordinates (any pyproj-readable string); default: WGS84 lon/lat."
+        default=None,
+        description="CRS of the coordinates (any pyproj-readable string); default: WGS84 lon/lat.",
     )
     weighting: Weighting = "area"
-    repair: bool = Field(default=False, description="Make invalid polygons valid (and report it) instead of failing.")
+    repair: bool = Field(
+        default=False, description="Make invalid polygons valid (and report it) instead of failing."
+    )
 
 
 class IndicatorRequest(_FeatureRequest):
     """A request for season indicators: POST /v1/indicators, POST /v1/jobs, `wxshock compute`."""
 
-    years: YearSpan | None = Field(default=None, description="Default: all years the baseline and lags allow.")
-    season: Season = "year"
-    baseline: Annotated[
-        Annotated[FixedBaseline, Tag("Fixed")] | Annotated[TrailingBaseline, Tag("Trailing")],
-        Discriminator(
-            _by_keys(trailing="Trailing", start="Fixed", end="Fixed"),
-            custom_error_type="baseline",
-            custom_error_message='baseline must be {"start": YEAR, "end": YEAR} or {"trailing": N}',
-        ),
-    ] | None = Field(
-        default=None, description="Default: the first ten season-years of data."
+    years: YearSpan | None = Field(
+        default=None, description="Default: all years the baseline and lags allow."
     )
-    indicators: list[
+    season: Season = "year"
+    baseline: (
         Annotated[
-            Annotated[str, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
+            Annotated[FixedBaseline, Tag("Fixed")] | Annotated[TrailingBaseline, Tag("Trailing")],
             Discriminator(
-                _by_keys(name="Spec"),
-                custom_error_type="indicator",
-                custom_error_message='an indicator is a name or {"name": NAME, PARAMETER: VALUE, ...}',
+                _by_keys(trailing="Trailing", start="Fixed", end="Fixed"),
+                custom_error_type="baseline",
+                custom_error_message='baseline must be {"start": YEAR, "end": YEAR} or {"trailing": N}',
             ),
         ]
-    ] | None = Field(default=None, description="Default: the default set.")
+        | None
+    ) = Field(default=None, description="Default: the first ten season-years of data.")
+    indicators: (
+        list[
+            Annotated[
+                Annotated[str, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
+                Discriminator(
+                    _by_keys(name="Spec"),
+                    custom_error_type="indicator",
+                    custom_error_message='an indicator is a name or {"name": NAME, PARAMETER: VALUE, ...}',
+                ),
+            ]
+        ]
+        | None
+    ) = Field(default=None, description="Default: the default set.")
     classes: Classes = Field(default_factory=Classes)
     lags: list[int] = Field(default_factory=lambda: [0], min_length=1, max_length=50)
     pairs: list[tuple[str, str]] = Field(default_factory=list, max_length=20)
@@ -291,7 +317,10 @@ class IndicatorRequest(_FeatureRequest):
     spells: list[Spell] = Field(default_factory=list, max_length=20)
     layout: Literal["wide", "long"] = "wide"
     max_missing_share: float | None = Field(
-        default=None, ge=0.0, le=1.0, description="Share of missing days above which a season is not reported."
+        default=None,
+        ge=0.0,
+        le=1.0,
+        description="Share of missing days above which a season is not reported.",
     )
 
     @field_validator("lags")

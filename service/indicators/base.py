@@ -53,7 +53,9 @@ class SeasonCube:
     daily record (e.g. for calendar-day percentile thresholds over whole baseline years).
     """
 
-    years: np.ndarray  # (year,) int season-year labels (a season crossing the new year takes the year it ends)
+    years: (
+        np.ndarray
+    )  # (year,) int season-year labels (a season crossing the new year takes the year it ends)
     tmax: np.ndarray  # (feature, year, day) degC
     tmin: np.ndarray  # (feature, year, day) degC
     prcp: np.ndarray  # (feature, year, day) mm/day
@@ -166,7 +168,8 @@ def get_indicator(name: str) -> Indicator:
         return _REGISTRY[name]
     except KeyError:
         raise UnknownIndicatorError(
-            f"unknown indicator {name!r}; known indicators: {', '.join(sorted(_REGISTRY))}", field="indicators"
+            f"unknown indicator {name!r}; known indicators: {', '.join(sorted(_REGISTRY))}",
+            field="indicators",
         ) from None
 
 
