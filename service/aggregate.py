@@ -105,6 +105,12 @@ def chunk_sums(
     raw = store.read_raw(var, chunk.y, chunk.x, t)
     block = raw.reshape(-1, raw.shape[-1])  # (cells, days), days contiguous: no transpose
     matrix = chunk.matrix
+    used_cells = np.unique(matrix.indices)
+    if used_cells.size * 2 < block.shape[0]:
+        # A few small communities use a few cells of the tile: convert and multiply only those rows
+        # (columns keep their order, so every sum adds the same terms in the same order).
+        block = block[used_cells]
+        matrix = matrix[:, used_cells]
     total = np.asarray(matrix.sum(axis=1)).ravel()
     used = np.zeros(block.shape[0], dtype=bool)
     used[matrix.indices] = True
