@@ -136,6 +136,13 @@ def feature_total(features: Any) -> int:
     return len(getattr(features, "features", None) or [features])
 
 
+def check_on_demand_size(features: Any, settings: Settings) -> None:
+    """Refuse an on-demand request with more features than max_features_on_demand (413, naming /v1/jobs)."""
+    check_feature_count(
+        feature_total(features), settings.max_features_on_demand, "max_features_on_demand", on_demand=True
+    )
+
+
 def table_responses(json_description: str) -> dict[int | str, dict[str, Any]]:
     """The OpenAPI 200 entry of a route answering JSON, CSV or Parquet by Accept or ?format=."""
     return {

@@ -9,9 +9,8 @@ from fastapi import APIRouter, Depends, Query, Request, Response
 from service.routes.deps import (
     AppSettings,
     Registry,
-    check_feature_count,
+    check_on_demand_size,
     ensure_encodable,
-    feature_total,
     require_token,
     table_responses,
 )
@@ -44,12 +43,7 @@ def compute_series(
 
     fmt = encode.format_from(request.headers.get("accept"), format, default="parquet")
     ensure_encodable(body)
-    check_feature_count(
-        feature_total(body.features),
-        settings.max_features_on_demand,
-        "max_features_on_demand",
-        on_demand=True,
-    )
+    check_on_demand_size(body.features, settings)
     store = registry.get_dataset(body.dataset)
     content, media_type, headers = encode.encode(pipeline.run_series(body, store, settings), fmt)
     return Response(content, media_type=media_type, headers=headers)
