@@ -136,10 +136,14 @@ def feature_total(features: Any) -> int:
     return len(getattr(features, "features", None) or [features])
 
 
-def check_on_demand_size(features: Any, settings: Settings) -> None:
-    """Refuse an on-demand request with more features than max_features_on_demand (413, naming /v1/jobs)."""
+def check_on_demand(body: Any, settings: Settings) -> None:
+    """Refuse an on-demand body that holds unencodable text (422) or more than max_features_on_demand (413)."""
+    ensure_encodable(body)
     check_feature_count(
-        feature_total(features), settings.max_features_on_demand, "max_features_on_demand", on_demand=True
+        feature_total(body.features),
+        settings.max_features_on_demand,
+        "max_features_on_demand",
+        on_demand=True,
     )
 
 

@@ -10,8 +10,7 @@ from fastapi import APIRouter, Depends, Query, Request, Response
 from service.routes.deps import (
     AppSettings,
     Registry,
-    check_on_demand_size,
-    ensure_encodable,
+    check_on_demand,
     require_token,
     table_responses,
 )
@@ -83,8 +82,7 @@ def compute_indicators(
     from service import encode, pipeline
 
     fmt = encode.format_from(request.headers.get("accept"), format)
-    ensure_encodable(body)
-    check_on_demand_size(body.features, settings)
+    check_on_demand(body, settings)
     store = registry.get_dataset(body.dataset)
     content, media_type, headers = encode.encode(pipeline.run(body, store, settings), fmt)
     return Response(content, media_type=media_type, headers=headers)

@@ -7,7 +7,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Query, Response
 
 from service.errors import RequestError
-from service.routes.deps import AppSettings, Registry, check_on_demand_size, require_token
+from service.routes.deps import AppSettings, Registry, check_on_demand, require_token
 from service.routes.models import problem_responses
 from service.schemas import IndicatorRequest
 
@@ -92,7 +92,7 @@ def plot_series(
     from service.encode import provenance_headers
     from service.plots import series_plot
 
-    check_on_demand_size(body.features, settings)
+    check_on_demand(body, settings)
     one, wanted = _one_feature(body, feature_id)
     store = registry.get_dataset(one.dataset)
     result = pipeline.run(_with_plotted(one, precipitation, temperature), store, settings)
@@ -143,7 +143,7 @@ def plot_map(
     from service.maps import anomaly_field, mappable, to_grid_crs
     from service.plots import map_plot
 
-    check_on_demand_size(body.features, settings)
+    check_on_demand(body, settings)
     mappable(indicator)
     store = registry.get_dataset(body.dataset)
     # The same feature checks as the table's (outside the grid, no data, limits), so a map never

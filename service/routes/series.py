@@ -9,8 +9,7 @@ from fastapi import APIRouter, Depends, Query, Request, Response
 from service.routes.deps import (
     AppSettings,
     Registry,
-    check_on_demand_size,
-    ensure_encodable,
+    check_on_demand,
     require_token,
     table_responses,
 )
@@ -42,8 +41,7 @@ def compute_series(
     from service import encode, pipeline
 
     fmt = encode.format_from(request.headers.get("accept"), format, default="parquet")
-    ensure_encodable(body)
-    check_on_demand_size(body.features, settings)
+    check_on_demand(body, settings)
     store = registry.get_dataset(body.dataset)
     content, media_type, headers = encode.encode(pipeline.run_series(body, store, settings), fmt)
     return Response(content, media_type=media_type, headers=headers)

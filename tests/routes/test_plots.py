@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import json
 import shutil
 import subprocess
 from pathlib import Path
@@ -221,3 +222,14 @@ def test_schemathesis_finds_no_server_error_on_the_picture_routes(live_server, t
     output = result.stdout + result.stderr
     assert result.returncode == 0, output[-6000:]
     assert "Tested: 2" in output, output[-3000:]
+
+
+@pytest.mark.parametrize("route", ["/v1/plots/series", "/v1/plots/map"])
+def test_unencodable_text_is_a_422_with_its_pointer(live_server, tiny_communities: dict, route: str) -> None:  # noqa: F811
+    # A lone surrogate escape is valid JSON but not valid Unicode: a user's mistake, never a 500.
+    feature = dict(tiny_communities["features"][0]) | {"id": "\udcff"}
+    body = json.dumps(BODY | {"features": {"type": "FeatureCollection", "features": [feature]}}).encode()
+    with live_server.client() as http:
+        response = http.post(route, content=body, headers={"Content-Type": "application/json"})
+    assert response.status_code == 422, response.text
+    assert response.json()["pointer"] == "/features/features/0/id"
