@@ -171,3 +171,38 @@ def live_server(tiny_demo: Path, tmp_path_factory: pytest.TempPathFactory) -> It
     data_dir = tmp_path_factory.mktemp("live-server-data")
     with thread_server(Settings(stores=[str(tiny_demo)], data_dir=data_dir)) as server:
         yield server
+
+
+def run_schemathesis(
+    base_url: str, cwd: Path, *, path_option: tuple[str, str], seed: int, request_timeout_s: int
+) -> str:
+    """Fuzz a live server's OpenAPI with schemathesis (no 5xx, status, content type, response schema).
+
+    ``path_option`` is ("--include-path-regex" or "--exclude-path-regex", REGEX). Fails the test when
+    schemathesis is missing or finds a problem; returns its output for further checks.
+    """
+    import shutil
+
+    executable = shutil.which("schemathesis") or shutil.which("st")
+    if executable is None:
+        pytest.fail("schemathesis is not installed; install the test extra (pip install -e '.[test]')")
+    checks = "not_a_server_error,status_code_conformance,content_type_conformance,response_schema_conformance"
+    result = subprocess.run(
+        [
+            executable, "run", f"{base_url}/openapi.json",
+            "--checks", checks,
+            "--max-examples", "5",
+            *path_option,
+            "--seed", str(seed),
+            "--phases", "examples,coverage,fuzzing",
+            "--workers", "1",
+            "--request-timeout", str(request_timeout_s),
+            "--generation-database", "none",
+            "--suppress-health-check", "all",
+            "--no-color",
+        ],
+        capture_output=True, text=True, timeout=240, cwd=cwd,
+    )  # fmt: skip
+    output = result.stdout + result.stderr
+    assert result.returncode == 0, output[-6000:]
+    return output

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import io
 import json
-import shutil
-import subprocess
 from pathlib import Path
 
 import numpy as np
@@ -15,7 +13,7 @@ from PIL import Image
 
 from service.plots import OUTLINE, SPELL, class_colour
 from service.settings import Settings
-from tests._support_server import live_server, thread_server  # noqa: F401 - fixture
+from tests._support_server import live_server, run_schemathesis, thread_server  # noqa: F401 - fixture
 
 SPELLS = [
     {
@@ -199,28 +197,13 @@ def test_map_plot_takes_a_full_indicator_request(live_server, tiny_communities: 
 @pytest.mark.slow
 def test_schemathesis_finds_no_server_error_on_the_picture_routes(live_server, tmp_path: Path) -> None:  # noqa: F811
     # The app-wide schemathesis run leaves the picture routes out (PNGs are slow); they are fuzzed here.
-    executable = shutil.which("schemathesis") or shutil.which("st")
-    if executable is None:
-        pytest.fail("schemathesis is not installed; install the test extra (pip install -e '.[test]')")
-    checks = "not_a_server_error,status_code_conformance,content_type_conformance,response_schema_conformance"
-    result = subprocess.run(
-        [
-            executable, "run", f"{live_server.base_url}/openapi.json",
-            "--checks", checks,
-            "--max-examples", "5",
-            "--include-path-regex", "^/v1/plots",
-            "--seed", "20261202",
-            "--phases", "examples,coverage,fuzzing",
-            "--workers", "1",
-            "--request-timeout", "60",
-            "--generation-database", "none",
-            "--suppress-health-check", "all",
-            "--no-color",
-        ],
-        capture_output=True, text=True, timeout=240, cwd=tmp_path,
-    )  # fmt: skip
-    output = result.stdout + result.stderr
-    assert result.returncode == 0, output[-6000:]
+    output = run_schemathesis(
+        live_server.base_url,
+        tmp_path,
+        path_option=("--include-path-regex", "^/v1/plots"),
+        seed=20261202,
+        request_timeout_s=60,
+    )
     assert "Tested: 2" in output, output[-3000:]
 
 
