@@ -557,7 +557,7 @@ def submit_files(
     ``.provenance.json`` beside it.
     """
     from service.encode import format_from_suffix
-    from service.pipeline import write_atomically
+    from service.encode.files import write_atomically
 
     fmt = format_from_suffix(out_path.suffix)
     try:

@@ -8,8 +8,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import tempfile
 from collections.abc import Callable, Mapping
 from dataclasses import fields, replace
 from pathlib import Path
@@ -21,6 +19,7 @@ import pandas as pd
 from service import __version__, cluster
 from service.aggregate import aggregate
 from service.encode import RunResult
+from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import LimitExceededError, OutOfRangeError, RunCancelledError, UnknownDatasetError
 from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
 from service.indicators.base import DailySeries
@@ -342,21 +341,6 @@ def load_request(request_path: Path, features_path: Path | None) -> IndicatorReq
                 f"cannot read the features {str(features_path)!r}: {exc}", field="features"
             ) from None
     return validate_request(IndicatorRequest, data)
-
-
-def write_atomically(path: Path, data: bytes) -> None:
-    """Write ``data`` to a temporary file beside ``path`` and rename it, so no partial file is ever seen."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 def compute_to_file(

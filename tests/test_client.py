@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import json
+import os
 import socket
+import stat
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -316,6 +318,10 @@ def test_wxshock_submit_writes_the_same_bytes_as_wxshock_compute(
     computed = tmp_path / "computed.parquet"
     assert wxshock(["compute", "--store", str(tiny_demo), *args, "--out", str(computed), "--quiet"]) == 0
     assert submitted.read_bytes() == computed.read_bytes()
+    umask = os.umask(0)
+    os.umask(umask)
+    for written in (submitted, computed):  # result files follow the umask (not mkstemp's 0600)
+        assert stat.S_IMODE(written.stat().st_mode) == 0o666 & ~umask
 
     as_csv = tmp_path / "submitted.csv"
     assert wxshock(["submit", "--server", live_server.base_url, *args, "--out", str(as_csv), "--quiet"]) == 0

@@ -5,12 +5,13 @@ a fixed number of decimals (far below the store's 0.1 precision, far above summa
 time-dependent is written.
 
 Modules: ``result`` (RunResult and the byte-stable frame), ``formats`` (which format a request asks for,
-and ``encode``, the one entry point), ``tables`` (JSON, CSV, Parquet). The public names below are the ones
+and ``encode``, the one entry point), ``tables`` (JSON, CSV, Parquet), ``files`` (result files on disk). The public names below are the ones
 to import; the modules behind them may move.
 """
 
 from __future__ import annotations
 
+from service.encode.files import write_atomically
 from service.encode.formats import FORMATS, encode, format_from, format_from_suffix
 from service.encode.result import FLOAT_DECIMALS, RunResult, json_value, provenance_headers, stable_frame
 from service.encode.tables import (
@@ -36,4 +37,5 @@ __all__ = [
     "to_csv",
     "to_json",
     "to_parquet",
+    "write_atomically",
 ]
