@@ -1,0 +1,90 @@
+"""The daily-grid store: one zarr v3 store per dataset, written, opened, described, read and fingerprinted here.
+
+Layout of a store (plain CF, opened as is by ``xarray.open_zarr``):
+
+- ``tmax``, ``tmin`` (degC) and ``prcp`` (mm/day) on dims ``(y, x, time)``: int16 at 0.1 units
+  (``scale_factor`` 0.1, ``add_offset`` 0, ``_FillValue`` -32768 = missing), blosc-compressed;
+- 1-D coordinates ``y``, ``x`` (cell centres, degrees or metres) and ``time`` (int32 days since 1970-01-01 in the
+  store's calendar: ``standard``, ``noleap``/``365_day``, ``360_day``, ...);
+- ``crs``: the CF grid_mapping variable (``crs_wkt`` and pyproj's CF attributes), named by every data variable;
+- static 2-D layers on ``(y, x)`` as float32 with NaN missing: ``elevation`` (m), weight layers (``population``,
+  ``cropland``, ...) and ``data_mask`` (int8, 1 where a cell has data on at least one day), written at write time so
+  that it is cheap to read;
+- root attributes: ``wxshock_fingerprint`` (``sha256:<hex>``), a hash over the metadata and the decoded contents of
+  every chunk, recorded at write time and checked by :func:`verify_store`.
+
+Nothing else in the project opens zarr: every other module goes through :func:`open_store` and :class:`Store`.
+
+The package, one module a concern: ``layout`` (names, int16 encoding, chunking and codecs), ``timeaxis`` (day
+numbers and calendars), ``grids`` (Grid, CRS, cell edges, longitude-latitude outline), ``location`` (local paths
+and URLs, opening the zarr group, aside locations), ``fingerprint``, ``read`` (Store, open_store) and ``write``
+(write aside then swap, append). Every public name is importable from ``service.store``.
+"""
+
+from __future__ import annotations
+
+from service.store.fingerprint import VerifyResult, compute_fingerprint, verify_store
+from service.store.grids import Grid
+from service.store.layout import (
+    ADD_OFFSET,
+    COMPRESSOR_LEVEL,
+    COMPRESSOR_NAME,
+    DEFAULT_LAYOUT,
+    ELEVATION_LAYER,
+    FILL_VALUE,
+    FINGERPRINT_ATTR,
+    GRID_MAPPING,
+    LAYOUT_VERSION,
+    MASK_LAYER,
+    SCALE_FACTOR,
+    TILE_CELLS,
+    TIME_CHUNK_DAYS,
+    TIME_COORD_CHUNK,
+    TIME_UNITS,
+    VARIABLE_ATTRS,
+    VARIABLES,
+    Layout,
+    RawEncoding,
+    decode,
+)
+from service.store.location import _exists, _normalise_location
+from service.store.read import Store, open_store
+from service.store.timeaxis import DateTable, _daily_numbers, _date_table, _iso
+from service.store.write import append_store, write_store
+
+__all__ = [
+    "ADD_OFFSET",
+    "COMPRESSOR_LEVEL",
+    "COMPRESSOR_NAME",
+    "DEFAULT_LAYOUT",
+    "ELEVATION_LAYER",
+    "FILL_VALUE",
+    "FINGERPRINT_ATTR",
+    "GRID_MAPPING",
+    "LAYOUT_VERSION",
+    "MASK_LAYER",
+    "SCALE_FACTOR",
+    "TILE_CELLS",
+    "TIME_CHUNK_DAYS",
+    "TIME_COORD_CHUNK",
+    "TIME_UNITS",
+    "VARIABLES",
+    "VARIABLE_ATTRS",
+    "DateTable",
+    "Grid",
+    "Layout",
+    "RawEncoding",
+    "Store",
+    "VerifyResult",
+    "_daily_numbers",
+    "_date_table",
+    "_exists",
+    "_iso",
+    "_normalise_location",
+    "append_store",
+    "compute_fingerprint",
+    "decode",
+    "open_store",
+    "verify_store",
+    "write_store",
+]
