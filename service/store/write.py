@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import shutil
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -168,14 +169,8 @@ def _write_appended(location: str, prepared: _Prepared, days: np.ndarray, progre
         targets.append(array)
         regions.append((slice(None), slice(None), slice(old, old + days.size)))
     # a lock: new days share the last old chunk of each tile, which zarr reads, changes and writes back
-    import dask
-
-    with dask.config.set(scheduler="threads"):
-        if progress:
-            with _TqdmCallback("appending days"):
-                da.store(sources, targets, regions=regions, lock=True)
-        else:
-            da.store(sources, targets, regions=regions, lock=True)
+    stored = da.store(sources, targets, regions=regions, lock=True, compute=False)
+    _compute_settled(stored, "appending days" if progress else None)
 
 
 @dataclass
@@ -318,11 +313,27 @@ def _write_prepared(
     delayed = prepared.dataset.to_zarr(
         store, mode="w", encoding=prepared.encoding, zarr_format=3, consolidated=False, compute=False
     )
-    if progress:
-        with _TqdmCallback("writing store"):
-            delayed.compute(scheduler="threads")
-    else:
-        delayed.compute(scheduler="threads")
+    _compute_settled(delayed, "writing store" if progress else None)
+
+
+def _compute_settled(collection: Any, desc: str | None) -> None:
+    """Compute a dask write on threads of our own pool, and wait for every task to stop before returning.
+
+    dask's threaded scheduler raises as soon as one task fails, while other tasks may still be writing
+    chunks: the caller's clean-up could then remove the aside directory before those writes land (and
+    they recreate it). Joining the pool first makes the clean-up final. ``desc`` shows a progress bar.
+    """
+    import dask
+
+    pool = ThreadPoolExecutor(max_workers=max(1, os.cpu_count() or 1))
+    try:
+        if desc is not None:
+            with _TqdmCallback(desc):
+                dask.compute(collection, scheduler="threads", pool=pool)
+        else:
+            dask.compute(collection, scheduler="threads", pool=pool)
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 class _TqdmCallback:
