@@ -12,17 +12,6 @@ from service import __version__
 from service.errors import WxshockError
 
 
-def _var_mapping(pairs: Sequence[str]) -> dict[str, str]:
-    """Parse repeated --var tmax=NAME options into {"tmax": "NAME"}."""
-    mapping: dict[str, str] = {}
-    for pair in pairs:
-        key, sep, value = pair.partition("=")
-        if not sep or key not in ("tmax", "tmin", "prcp") or not value:
-            raise SystemExit(f"wxshock: --var takes tmax=NAME, tmin=NAME or prcp=NAME, got {pair!r}")
-        mapping[key] = value
-    return mapping
-
-
 def _settings(args: argparse.Namespace):  # noqa: ANN202 - Settings, imported lazily to keep start-up quick
     """Settings from the environment, overridden by the command's own options."""
     from service.settings import Settings
@@ -62,13 +51,19 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     from service.ingest import ingest_files
 
     settings = _settings(args)
+    notes: list[str] = []
     fingerprint = ingest_files(
         [Path(f) for f in args.files],
         args.out,
-        variables=_var_mapping(args.var),
+        variables=list(args.var),
+        utc_offset=args.utc_offset,
+        period_stamp=args.period_stamp,
         storage_options=settings.storage_options() if str(args.out).startswith("s3://") else None,
         progress=not args.quiet,
+        notes=notes,
     )
+    for note in notes:
+        print(f"note: {note}", file=sys.stderr)
     print(f"{args.out}: fingerprint {fingerprint}")
     return 0
 
@@ -165,7 +160,25 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("files", nargs="+", help="NetCDF files (one per year and variable, or any split)")
     p.add_argument("--out", required=True, help="store directory or s3:// URL; appended to when it exists")
     p.add_argument(
-        "--var", action="append", default=[], help="explicit variable, e.g. tmax=tasmax (repeatable)"
+        "--var",
+        action="append",
+        default=[],
+        metavar="VARIABLE=NAME[@FILES]",
+        help="which file variable is tmax, tmin or prcp, e.g. tmax=tasmax; with @FILES only in the files whose "
+        "name matches the pattern, e.g. 'tmax=t@tx_*.nc' (repeatable; tmax=t2m and tmin=t2m on sub-daily data "
+        "give the daily maximum and minimum of one field)",
+    )
+    p.add_argument(
+        "--utc-offset",
+        metavar="+HH:MM",
+        help="sub-daily data: days run midnight to midnight at this offset from UTC (default UTC)",
+    )
+    p.add_argument(
+        "--period-stamp",
+        choices=["end", "start", "middle"],
+        default="end",
+        help="sub-daily sums, means and extremes without time bounds: where the stamp sits in its time step "
+        "(default end, as hourly reanalysis accumulations are stamped)",
     )
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_ingest)

@@ -157,16 +157,16 @@ def test_360_day_files_open_and_index(tmp_path: Path) -> None:
 
 def test_explicit_names_without_standard_names(tmp_path: Path) -> None:
     spelling = {
-        "tmax": ("TX", "", "", "degC", lambda v: v),
-        "tmin": ("TN", "", "", "degC", lambda v: v),
-        "prcp": ("RR", "", "", "mm", lambda v: v),
+        "tmax": ("HOT", "", "", "degC", lambda v: v),
+        "tmin": ("COLD", "", "", "degC", lambda v: v),
+        "prcp": ("WET", "", "", "mm", lambda v: v),
     }
     ds = make_dataset(ny=2, nx=2, years=(2000, 2000))
     files = write_cf(ds, tmp_path / "in", spelling=spelling, split="one")
-    with pytest.raises(IngestError, match=r"holds none of tmax, tmin, prcp.*\['RR', 'TN', 'TX'\]"):
+    with pytest.raises(IngestError, match=r"holds none of tmax, tmin, prcp.*\['COLD', 'HOT', 'WET'\]"):
         ingest_files(files, tmp_path / "x.zarr", progress=False)
     ingest_files(
-        files, tmp_path / "x.zarr", variables={"tmax": "TX", "tmin": "TN", "prcp": "RR"}, progress=False
+        files, tmp_path / "x.zarr", variables={"tmax": "HOT", "tmin": "COLD", "prcp": "WET"}, progress=False
     )
     assert_same_values(tmp_path / "x.zarr", ds)
 
@@ -182,14 +182,25 @@ def test_appending_years_equals_ingesting_them_at_once(tmp_path: Path) -> None:
     assert_same_values(tmp_path / "grown.zarr", ds)
 
 
-def test_longitudes_0_to_360_become_minus_180_to_180(tmp_path: Path) -> None:
+def test_a_regional_grid_across_the_antimeridian_keeps_its_0_to_360_longitudes(tmp_path: Path) -> None:
+    # Moved to -180..180 these columns would be -179.75, -179.25, 179.25, 179.75: cells with a 358-degree hole
+    # between them, whose edges (midpoints) would span half the globe. Kept as written they run on unbroken.
     ds = make_dataset(ny=2, nx=4, years=(2000, 2000), origin=(179.0, 10.0))  # centres 179.25 .. 180.75
     files = write_cf(ds, tmp_path / "in", split="one")
     ingest_files(files, tmp_path / "dateline.zarr", progress=False)
     store = open_store(tmp_path / "dateline.zarr")
-    np.testing.assert_allclose(store.grid.x, [-179.75, -179.25, 179.25, 179.75])
+    np.testing.assert_allclose(store.grid.x, [179.25, 179.75, 180.25, 180.75])
+    assert_same_values(tmp_path / "dateline.zarr", ds)
+
+
+def test_a_global_0_to_360_grid_becomes_minus_180_to_180(tmp_path: Path) -> None:
+    ds = make_dataset(ny=2, nx=8, years=(2000, 2000), origin=(0.0, 10.0), cell_size=45.0)  # 22.5 .. 337.5
+    files = write_cf(ds, tmp_path / "in", split="one")
+    ingest_files(files, tmp_path / "global.zarr", progress=False)
+    store = open_store(tmp_path / "global.zarr")
+    np.testing.assert_allclose(store.grid.x, [-157.5, -112.5, -67.5, -22.5, 22.5, 67.5, 112.5, 157.5])
     got = store.read("tmax", slice(None), slice(None), slice(None))
-    want = ds["tmax"].transpose("y", "x", "time").values[:, [2, 3, 0, 1]]
+    want = ds["tmax"].transpose("y", "x", "time").values[:, [4, 5, 6, 7, 0, 1, 2, 3]]
     assert np.nanmax(np.abs(got - want)) <= HALF_STEP
 
 
@@ -236,7 +247,8 @@ def test_files_on_different_grids(tmp_path: Path) -> None:
     _, files = _files(tmp_path)
     _rewrite(files[2], lambda ds: ds.assign_coords(lon=ds.lon + 0.01))
     with pytest.raises(
-        IngestError, match=r"'.*cf_2002\.nc' is not on the grid of '.*cf_2000\.nc': cell centres differ"
+        IngestError,
+        match=r"'.*cf_2002\.nc' is not on the grid of '.*cf_2000\.nc' \(tmax\): cell centres differ",
     ):
         ingest_files(files, tmp_path / "out.zarr", progress=False)
     _rewrite(files[2], lambda ds: ds.isel(lon=slice(0, 2)))
@@ -250,13 +262,23 @@ def test_files_on_different_grids(tmp_path: Path) -> None:
         (
             "tasmax",
             {"units": "furlongs"},
-            r"variable 'tasmax' \(tmax\) has units 'furlongs'.*allowed: K, degC, degF",
+            r"variable 'tasmax' \(tmax\): units 'furlongs' read as 'furlong', which is not a temperature",
         ),
-        ("pr", {"units": "inch"}, r"variable 'pr' \(prcp\) has units 'inch'.*allowed: kg m-2 s-1, mm/day"),
+        (
+            "pr",
+            {"units": "K"},
+            r"variable 'pr' \(prcp\): units 'K' read as 'kelvin' \(\[temperature\]\), which is neither",
+        ),
+        (
+            "pr",
+            {"units": "mm/3hr"},
+            r"units 'mm/3hr' are not a precipitation unit that UDUNITS/CF spellings allow",
+        ),
         (
             "tasmin",
             {"cell_methods": "time: mean"},
-            r"'tasmin' is air_temperature but its cell_methods \('time: mean'\)",
+            r"cf_all.nc': variable 'tasmin' is an air temperature whose name suggests tmin but whose "
+            r"cell_methods \('time: mean'\)",
         ),
     ],
 )
@@ -284,7 +306,7 @@ def test_calendars_and_coverage_must_agree(tmp_path: Path) -> None:
         ingest_files(files, tmp_path / "out.zarr", progress=False)
     files = write_cf(a, tmp_path / "c", prefix="c")
     _rewrite(files[2], lambda ds: ds.isel(time=slice(0, 300)))  # prcp ends early
-    with pytest.raises(IngestError, match=r"prcp covers 300 days .* but tmax covers 366"):
+    with pytest.raises(IngestError, match=r"tmax covers 366 days from 2000-01-01 but prcp covers 300"):
         ingest_files(files, tmp_path / "out.zarr", progress=False)
 
 
