@@ -8,12 +8,14 @@ from typing import Any
 
 import dask
 import numpy as np
+import pyproj
 import pytest
+import shapely
 import xarray as xr
 
 from service.aggregate import aggregate, chunk_weights
 from service.errors import RequestError
-from service.geometry import Weights, compute_weights, parse_features
+from service.geometry import Weights, cell_areas_km2, compute_weights, parse_features
 from service.store import Layout, Store, open_store, write_store
 from tests._support_store import LAMBERT_CRS, make_dataset
 
@@ -21,6 +23,7 @@ VARIABLES = ("tmax", "tmin", "prcp")
 # make_dataset's lat-lon grid: 0.5-degree cells from (-150, -40), rows north first, so row j spans
 # latitudes (-40 + 0.5 (ny - 1 - j)) to that + 0.5 and column i longitudes -150 + 0.5 i to that + 0.5.
 WEST, SOUTH, SIZE = -150.0, -40.0, 0.5
+TO_LONLAT = pyproj.Transformer.from_crs(LAMBERT_CRS, "EPSG:4326", always_xy=True)
 
 
 def write(
@@ -79,9 +82,17 @@ def hand_mean(ds: xr.Dataset, var: str, cells: dict[tuple[int, int], float]) -> 
         return np.where(den > 0, num / den, np.nan)
 
 
-def assert_series(result: xr.Dataset, ds: xr.Dataset, row: int, cells: dict[tuple[int, int], float]) -> None:
+def assert_series(
+    result: xr.Dataset, ds: xr.Dataset, row: int, cells: dict[tuple[int, int], float], tol: float = 1e-12
+) -> None:
     for var in (*VARIABLES, "tmean"):
-        np.testing.assert_allclose(result[var].values[row], hand_mean(ds, var, cells), rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(result[var].values[row], hand_mean(ds, var, cells), rtol=tol, atol=tol)
+
+
+def on_ground(store: Store, cells: dict[tuple[int, int], float]) -> dict[tuple[int, int], float]:
+    """Cell shares {(j, i): share} as ground areas (km2): a projected grid's cells differ on the ground."""
+    areas = cell_areas_km2(store.grid)
+    return {(j, i): share * float(areas[j, i]) for (j, i), share in cells.items()}
 
 
 # --- hand-computed means --------------------------------------------------------------------------------------
@@ -106,7 +117,9 @@ def test_hole_on_a_projected_grid(tmp_path: Path) -> None:
     result = series(store, weights_for(store, fc(poly([shell, hole])), crs=LAMBERT_CRS.to_wkt()))
     # the bottom three rows (j = 1..3, north first) and left three columns, without the middle cell (2, 1)
     cells = {(j, i): 1.0 for j in (1, 2, 3) for i in (0, 1, 2) if (j, i) != (2, 1)}
-    assert_series(result, ds, 0, cells)
+    # weights are ground areas, which the Lambert plane shrinks by its (slowly varying) scale factor; the
+    # scale at a piece's centroid differs from the cell centre's by about 1e-7 here
+    assert_series(result, ds, 0, on_ground(store, cells), tol=1e-6)
 
 
 def test_multipolygon_across_two_cells(tmp_path: Path) -> None:
@@ -162,8 +175,13 @@ def test_projected_grid_one_and_a_half_cells(tmp_path: Path) -> None:
     square = [[x0 + 5_000, y0], [x0 + 20_000, y0], [x0 + 20_000, y0 + 10_000], [x0 + 5_000, y0 + 10_000],
               [x0 + 5_000, y0]]  # fmt: skip
     w = weights_for(store, fc(poly([square])), crs=LAMBERT_CRS.to_wkt())
-    assert w.area_km2[0] == pytest.approx(150.0)
-    assert_series(series(store, w), ds, 0, {(2, 0): 0.5, (2, 1): 1.0})
+    # 150 km2 on the Lambert plane; on the ground pyproj.Geod measures the same outline (densified) larger,
+    # since this plane's scale factor is below 1 between its standard parallels
+    outline = shapely.segmentize(shapely.Polygon(square), 100.0)
+    lonlat = shapely.transform(outline, lambda xy: np.column_stack(TO_LONLAT.transform(xy[:, 0], xy[:, 1])))
+    geodesic, _ = pyproj.Geod(ellps="WGS84").geometry_area_perimeter(lonlat)
+    assert w.area_km2[0] == pytest.approx(abs(geodesic) / 1e6, rel=1e-5)
+    assert_series(series(store, w), ds, 0, on_ground(store, {(2, 0): 0.5, (2, 1): 1.0}), tol=1e-6)
 
 
 def test_centers_weighting_gives_whole_cells_equal_weight(tmp_path: Path) -> None:

@@ -121,8 +121,29 @@ def test_authalic_northing_matches_pyproj_cylindrical_equal_area() -> None:
     np.testing.assert_allclose(authalic_y(lat, 6_378_137.0, math.sqrt(0.00669437999014)), expected, atol=1e-3)
 
 
-def test_projected_cells_use_the_grid_plane() -> None:
-    assert np.all(cell_areas_km2(lambert_grid()) == pytest.approx(100.0))
+def lambert_ground_km2(outline: shapely.Geometry) -> float:
+    """pyproj.Geod's area (km2, WGS84) of an outline drawn on the test Lambert plane, edges densified to 100 m."""
+    to_lonlat = pyproj.Transformer.from_crs(LAMBERT_CRS, WGS84, always_xy=True)
+    # Geod subtracts holes only when they wind the other way from the shell
+    dense_outline = shapely.geometry.polygon.orient(shapely.segmentize(outline, 100.0))
+    lonlat = shapely.transform(
+        dense_outline, lambda xy: np.column_stack(to_lonlat.transform(xy[:, 0], xy[:, 1]))
+    )
+    area, _ = pyproj.Geod(ellps="WGS84").geometry_area_perimeter(lonlat)
+    return abs(area) / 1e6
+
+
+def test_projected_cell_areas_are_ground_areas() -> None:
+    # The 10-km cells of the test Lambert plane (standard parallels 20 S and 30 S, cells near 25 S, where the
+    # scale factor is about 0.9962) are about 100.76 km2 on the ground; pyproj.Geod on each outline.
+    grid = lambert_grid()
+    areas = cell_areas_km2(grid)
+    xe, ye = grid.x_edges, grid.y_edges
+    for j in range(grid.shape[0]):
+        for i in range(grid.shape[1]):
+            cell = shapely.box(xe[i], ye[j + 1], xe[i + 1], ye[j])
+            assert areas[j, i] == pytest.approx(lambert_ground_km2(cell), rel=1e-6)
+    assert areas.mean() == pytest.approx(100.76, abs=0.01)
 
 
 # --- weights on hand-built grids -----------------------------------------------------------------------------
@@ -147,11 +168,11 @@ def test_hole_takes_out_its_cell() -> None:
     hole = box(10_000, 10_000, 20_000, 20_000)[0]
     fc_crs = parse_features(collection(polygon([shell, hole])), crs=LAMBERT_CRS.to_wkt())
     w = compute_weights(fc_crs, grid, cache_size=0)
-    expected = np.full((3, 3), 100.0)
+    expected = cell_areas_km2(grid)
     expected[1, 1] = 0.0
-    np.testing.assert_allclose(dense(w, grid)[0], expected, atol=1e-9)
+    np.testing.assert_allclose(dense(w, grid)[0], expected, rtol=1e-12)
     assert w.n_cells[0] == 8
-    assert w.area_km2[0] == pytest.approx(800.0)
+    assert w.area_km2[0] == pytest.approx(lambert_ground_km2(shapely.Polygon(shell, [hole])), rel=1e-6)
 
 
 def test_multipolygon_across_two_cells() -> None:
@@ -192,7 +213,9 @@ def test_community_smaller_than_one_cell_gets_its_area() -> None:
     fc = collection(polygon(box(1_000, 1_000, 2_000, 3_000)))
     w = compute_weights(parse_features(fc, crs=LAMBERT_CRS.to_wkt()), grid, cache_size=0)
     assert w.matrix.nnz == 1
-    assert dense(w, grid)[0, 1, 0] == pytest.approx(2.0)  # row 1 is the southern row (y 0-10 km)
+    ground = lambert_ground_km2(shapely.box(1_000, 1_000, 2_000, 3_000))  # 2 km2 on the plane
+    assert dense(w, grid)[0, 1, 0] == pytest.approx(ground, rel=1e-6)  # row 1 is the southern row (y 0-10 km)
+    assert w.area_km2[0] == pytest.approx(ground, rel=1e-6)
 
 
 def test_missing_cells_drop_out_and_coverage_is_the_share_with_data() -> None:
@@ -218,9 +241,13 @@ def test_centers_weighting_counts_whole_cells_whose_centre_is_inside() -> None:
     grid = lambert_grid(nx=3, ny=2)
     fc = parse_features(collection(polygon(box(4_000, 0, 16_000, 10_000))), crs=LAMBERT_CRS.to_wkt())
     w = compute_weights(fc, grid, weighting="centers", cache_size=0)
-    np.testing.assert_allclose(dense(w, grid)[0], [[0.0, 0.0, 0.0], [100.0, 100.0, 0.0]])
+    cells = cell_areas_km2(grid)
+    np.testing.assert_allclose(dense(w, grid)[0], [[0.0, 0.0, 0.0], [cells[1, 0], cells[1, 1], 0.0]])
     area = compute_weights(fc, grid, weighting="area", cache_size=0)
-    np.testing.assert_allclose(dense(area, grid)[0], [[0.0, 0.0, 0.0], [60.0, 60.0, 0.0]])
+    # 60 % of each cell's plane area; the pieces' ground areas at their own centroids (within 1e-6)
+    np.testing.assert_allclose(
+        dense(area, grid)[0], [[0.0, 0.0, 0.0], [0.6 * cells[1, 0], 0.6 * cells[1, 1], 0.0]], rtol=1e-6
+    )
     assert w.coverage[0] == pytest.approx(1.0)
 
 
@@ -236,7 +263,10 @@ def test_layer_weighting_multiplies_area_by_the_layer_and_nan_counts_zero() -> N
     layer = np.array([[1.0, 1.0, 1.0], [2.0, np.nan, 5.0]])
     fc = parse_features(collection(polygon(box(5_000, 0, 30_000, 10_000))), crs=LAMBERT_CRS.to_wkt())
     w = compute_weights(fc, grid, layer=layer, cache_size=0)
-    np.testing.assert_allclose(dense(w, grid)[0], [[0.0, 0.0, 0.0], [50.0 * 2, 0.0, 100.0 * 5]])
+    cells = cell_areas_km2(grid)
+    np.testing.assert_allclose(
+        dense(w, grid)[0], [[0.0, 0.0, 0.0], [0.5 * cells[1, 0] * 2, 0.0, cells[1, 2] * 5]], rtol=1e-6
+    )
     assert w.n_cells[0] == 2
 
 
@@ -304,10 +334,19 @@ def test_features_in_a_projected_request_crs_land_on_a_lonlat_grid() -> None:
     in_lambert = compute_weights(
         parse_features(collection(polygon([xy.tolist()])), crs=LAMBERT_CRS.to_wkt()), grid, cache_size=0
     )
-    in_lonlat = weights_of(collection(polygon([lonlat.tolist()])), grid)
-    # the Lambert edges are straight in Lambert, the lon/lat ones in lon/lat: they differ by metres only
-    np.testing.assert_allclose(in_lambert.matrix.toarray(), in_lonlat.matrix.toarray(), rtol=2e-3, atol=0.05)
-    assert in_lambert.area_km2[0] == pytest.approx(in_lonlat.area_km2[0], rel=1e-4)
+    # The Lambert edges are straight on the Lambert plane, where parallels are arcs: a 110 km edge along
+    # 25.6 S bows about 0.1 km off the parallel. The same outline drawn in lon/lat with its edges split every
+    # 100 m on the Lambert plane is (to millimetres) the same polygon, so the weights must agree closely.
+    to_lonlat = pyproj.Transformer.from_crs(LAMBERT_CRS, WGS84, always_xy=True)
+    dense_xy = shapely.get_coordinates(shapely.segmentize(shapely.Polygon(xy), 100.0))
+    traced = np.column_stack(to_lonlat.transform(dense_xy[:, 0], dense_xy[:, 1]))
+    in_lonlat = weights_of(collection(polygon([traced.tolist()])), grid)
+    np.testing.assert_allclose(in_lambert.matrix.toarray(), in_lonlat.matrix.toarray(), rtol=1e-5, atol=1e-4)
+    assert in_lambert.area_km2[0] == pytest.approx(in_lonlat.area_km2[0], rel=1e-6)
+    # Left whole (four corners only), the Lambert edges would be drawn straight in lon/lat: a different
+    # polygon by about 1 % in the edge cells, which is what densifying before reprojection prevents.
+    corners_only = weights_of(collection(polygon([lonlat.tolist()])), grid)
+    assert np.abs(corners_only.matrix.toarray() - in_lambert.matrix.toarray()).max() > 1.0
 
 
 def test_ids_from_feature_id_or_a_named_property_are_strings() -> None:

@@ -16,6 +16,7 @@ import pyproj
 import shapely
 
 from service.errors import FeatureError, LimitExceededError, RequestError
+from service.geometry.antimeridian import crossing, split, split_crossing
 from service.geometry.planes import WGS84 as _WGS84
 from service.geometry.planes import buffer_circle
 
@@ -31,8 +32,9 @@ MAX_BUFFER_M = 100_000.0
 class Feature:
     """One community: its id, geometry as sent (request CRS), properties, and buffer radius (m) for Points.
 
-    ``footprint`` is the area that weights are computed on, in the request CRS: the polygon itself, or a
-    Point's buffer circle. ``pointer`` is the JSON pointer of the feature in the request.
+    ``footprint`` is the area that weights are computed on, in the request CRS: the polygon itself (on lon/lat,
+    cut at the 180th meridian into parts within -180..180 when it crosses it), or a Point's buffer circle.
+    ``pointer`` is the JSON pointer of the feature in the request.
     """
 
     id: str
@@ -341,6 +343,24 @@ def _point_footprints(
     return {i: c for (i, _, _), c in zip(points, circles, strict=True)}
 
 
+def _cut_at_180(geometry: shapely.Geometry, feature_id: str, pointer: str) -> shapely.Geometry:
+    """A lon/lat polygon cut into parts within -180..180 if it crosses the 180th meridian as written."""
+    xmin, _, xmax, _ = geometry.bounds
+    if xmax - xmin <= 180 and -180 <= xmin and xmax <= 180:
+        return geometry  # the common case, decided without looking at every edge
+    if not crossing(np.array([geometry], dtype=object))[0]:
+        return geometry
+    try:
+        return split(geometry)
+    except ValueError as exc:
+        raise _fail(
+            feature_id,
+            pointer + "/geometry",
+            f"crosses the 180th meridian and {exc}; send it cut at 180 degrees as a MultiPolygon "
+            "(RFC 7946, section 3.1.9)",
+        ) from None
+
+
 def _checked_valid(
     geometry: shapely.Geometry, feature_id: str, pointer: str, repair: bool
 ) -> tuple[shapely.Geometry, bool]:
@@ -419,7 +439,11 @@ def parse_features(
                 buffer_m = _buffer_radius(properties, check)
                 points.append((len(parsed), geometry, buffer_m))
             else:
-                footprint, was_repaired = _checked_valid(geometry, feature_id, pointer, repair)
+                if geographic:
+                    geometry_cut = _cut_at_180(geometry, feature_id, pointer)
+                else:
+                    geometry_cut = geometry
+                footprint, was_repaired = _checked_valid(geometry_cut, feature_id, pointer, repair)
                 if was_repaired:
                     repaired.append(feature_id)
             parsed.append(
@@ -436,7 +460,12 @@ def parse_features(
         except (FeatureError, LimitExceededError) as exc:
             errors.append(exc)
     _raise_collected(errors)
-    for k, circle in _point_footprints(points, crs_obj).items():
+    circles = _point_footprints(points, crs_obj)
+    if geographic and circles:
+        keys = list(circles)
+        cut = split_crossing(np.array([circles[k] for k in keys], dtype=object))
+        circles = dict(zip(keys, cut, strict=True))
+    for k, circle in circles.items():
         parsed[k]["footprint"] = circle
     crs_text = crs if crs is not None else "EPSG:4326"
     return ParsedFeatures([Feature(**p) for p in parsed], crs=crs_text, repaired=repaired)

@@ -1,14 +1,25 @@
-"""The planes that features and cells meet in: equal-area frames, cell areas, reprojection.
+"""The planes that features and cells meet in: equal-area frames, areas on the ground, reprojection.
 
-Areas on a latitude-longitude grid are true areas on the grid's ellipsoid: geometries are intersected in
-the cylindrical equal-area projection of that ellipsoid (Lambert, standard parallel at the equator), where
-every lat-lon cell is a rectangle whose plane area is exactly the ellipsoidal area of its zone segment
-(Snyder 1987, "Map projections: a working manual", USGS PP 1395, eqs 3-12 and 10-15). On a projected
-grid the grid's own plane is used.
+Every area this package reports is an area on the ground (the grid's ellipsoid), in km2.
+
+On a latitude-longitude grid, geometries are intersected in the cylindrical equal-area projection of the
+grid's ellipsoid (Lambert, standard parallel at the equator), where every lat-lon cell is a rectangle whose
+plane area is exactly the ellipsoidal area of its zone segment (Snyder 1987, "Map projections: a working
+manual", USGS PP 1395, eqs 3-12 and 10-15).
+
+On a projected grid, geometries are intersected in the grid's own plane (cells stay rectangles, so clipping
+stays fast), and each piece's plane area is turned into ground area with the projection's areal scale factor
+at the piece's centroid (pyproj ``Proj.get_factors``, PROJ's ``proj_factors``). Over a piece no larger than
+a cell the factor is nearly constant: this midpoint rule was measured against pyproj.Geod at 1.4e-6 for
+25 km cells, 5e-6 for 50 km and 2e-5 for 100 km cells (Lambert conformal, 36 N; the error grows with the
+square of the cell size), far inside the 0.1 % asked. So the weights follow the ground area of each cell
+fraction even where the scale factor varies across a large polygon. A whole feature's ground area (which may reach beyond the grid) is measured in a
+Lambert azimuthal equal-area frame on the grid's datum, centred on the grid.
 """
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -28,6 +39,10 @@ BUFFER_VERTICES = 64
 # straight lon-lat line GeoJSON means; over 0.01 degrees (about 1 km) the projected chord strays by
 # millimetres (area error below 1e-4 of a small piece, 1e-6 of a community).
 MAX_SEGMENT_DEGREES = 0.01
+# Edges of polygons sent in a projected CRS are split to this length (metres) before reprojection, so an edge
+# stays the straight line of the request's plane: a 100 km edge of a transverse Mercator polygon drawn as one
+# chord on another plane can stray by tens of metres; split at 1 km the stray is 1e4 times smaller.
+MAX_SEGMENT_METRES = 1000.0
 
 WGS84 = pyproj.CRS.from_epsg(4326)
 _WGS84 = WGS84
@@ -63,7 +78,10 @@ class _Plane:
 
     ``x_edges``/``y_edges`` ascending plane coordinates of the cell edges; ``x_flipped``/``y_flipped`` say
     whether the grid's own index runs the other way; ``to_plane`` maps (n, 2) grid-CRS coordinates to the
-    plane; ``km2_per_unit2`` converts plane areas to km2.
+    plane; ``to_lonlat`` maps plane coordinates to WGS84 degrees. ``km2_per_unit2`` converts plane areas to
+    km2 where that is one number (lat-lon grids); on projected grids ``ground_km2(x, y)`` gives the km2 of
+    one plane unit^2 at plane points. ``period`` is the plane width of 360 degrees of longitude on lat-lon
+    grids (None on projected grids).
     """
 
     x_edges: np.ndarray
@@ -75,6 +93,26 @@ class _Plane:
     to_plane: Callable[[np.ndarray], np.ndarray]
     to_lonlat: Callable[[np.ndarray], np.ndarray]
     km2_per_unit2: float
+    period: float | None = None
+    ground_km2: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None
+    areas_km2: Callable[[np.ndarray], np.ndarray] | None = None
+
+    @property
+    def geographic(self) -> bool:
+        """Whether this is the equal-area image of a lat-lon grid (plane areas are ground areas)."""
+        return self.period is not None
+
+    def feature_areas_km2(self, geometries: np.ndarray) -> np.ndarray:
+        """Ground area (km2) of plane geometries, whole (also where they reach beyond the grid)."""
+        if self.areas_km2 is None:
+            return shapely.area(geometries) * self.km2_per_unit2
+        return self.areas_km2(geometries)
+
+    def piece_areas_km2(self, area: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """Ground area (km2) of pieces of plane area ``area`` whose centroids are at plane (x, y)."""
+        if self.ground_km2 is None:
+            return area * self.km2_per_unit2
+        return area * self.ground_km2(x, y)
 
 
 def authalic_y(latitude_deg: np.ndarray, semi_major: float, eccentricity: float) -> np.ndarray:
@@ -93,52 +131,125 @@ def authalic_y(latitude_deg: np.ndarray, semi_major: float, eccentricity: float)
 
 def _plane(grid: Grid) -> _Plane:
     """The intersection plane of a grid: its cylindrical equal-area image if lat-lon, else its own plane."""
-    grid_crs = grid.crs()
-    x_edges = np.asarray(grid.x_edges, dtype=np.float64)
-    y_edges = np.asarray(grid.y_edges, dtype=np.float64)
-    x_centres = np.asarray(grid.x, dtype=np.float64)
-    y_centres = np.asarray(grid.y, dtype=np.float64)
+    arrays = (grid.x, grid.y, grid.x_edges, grid.y_edges)
+    keys = tuple(np.ascontiguousarray(a, dtype=np.float64).tobytes() for a in arrays)
+    return _plane_of(grid.crs_wkt, *keys, bool(grid.is_geographic))
+
+
+@functools.lru_cache(maxsize=32)
+def _plane_of(
+    crs_wkt: str, x_bytes: bytes, y_bytes: bytes, x_edge_bytes: bytes, y_edge_bytes: bytes, geographic: bool
+) -> _Plane:
+    """The plane of a grid given by its CRS, centres and edges (cached: transformers take ms to build)."""
+    x_centres, y_centres, x_edges, y_edges = (
+        np.frombuffer(b, dtype=np.float64) for b in (x_bytes, y_bytes, x_edge_bytes, y_edge_bytes)
+    )
+    grid_crs = pyproj.CRS.from_wkt(crs_wkt)
     x_flipped = bool(x_edges[-1] < x_edges[0])
     y_flipped = bool(y_edges[-1] < y_edges[0])
     if x_flipped:
         x_edges, x_centres = x_edges[::-1], x_centres[::-1]
     if y_flipped:
         y_edges, y_centres = y_edges[::-1], y_centres[::-1]
-    if grid.is_geographic:
-        ellipsoid = grid_crs.ellipsoid
-        a = float(ellipsoid.semi_major_metre) if ellipsoid is not None else 6_378_137.0
-        b = float(ellipsoid.semi_minor_metre) if ellipsoid is not None else 6_356_752.314245
-        e = math.sqrt(max(0.0, 1 - (b / a) ** 2))
-        lon0 = float((x_edges[0] + x_edges[-1]) / 2)
+    if geographic:
+        return _lonlat_plane(grid_crs, x_edges, y_edges, x_centres, y_centres, x_flipped, y_flipped)
+    return _projected_plane(grid_crs, x_edges, y_edges, x_centres, y_centres, x_flipped, y_flipped)
 
-        def to_plane(xy: np.ndarray) -> np.ndarray:
-            # Easting is linear in longitude (no wrap-around at lon0 +- 180, on purpose).
-            return np.column_stack([a * np.radians(xy[:, 0] - lon0), authalic_y(xy[:, 1], a, e)])
 
-        inverse = pyproj.Transformer.from_pipeline(
-            f"+proj=pipeline +step +inv +proj=cea +lat_ts=0 +lon_0={lon0!r} +a={a!r} +b={b!r} "
-            "+step +proj=unitconvert +xy_in=rad +xy_out=deg"
-        )
+def _semi_axes(crs: pyproj.CRS) -> tuple[float, float]:
+    """(a, b) in metres of a CRS's ellipsoid (WGS84's when it names none)."""
+    ellipsoid = crs.ellipsoid
+    a = float(ellipsoid.semi_major_metre) if ellipsoid is not None else 6_378_137.0
+    b = float(ellipsoid.semi_minor_metre) if ellipsoid is not None else 6_356_752.314245
+    return a, b
 
-        def to_lonlat(xy: np.ndarray) -> np.ndarray:
-            return np.column_stack(inverse.transform(xy[:, 0], xy[:, 1]))
 
-        return _Plane(
-            x_edges=a * np.radians(x_edges - lon0),
-            y_edges=authalic_y(y_edges, a, e),
-            x_centres=a * np.radians(x_centres - lon0),
-            y_centres=authalic_y(y_centres, a, e),
-            x_flipped=x_flipped,
-            y_flipped=y_flipped,
-            to_plane=to_plane,
-            to_lonlat=to_lonlat,
-            km2_per_unit2=1e-6,
-        )
-    unit = grid_crs.axis_info[0].unit_conversion_factor if grid_crs.axis_info else 1.0
+def _lonlat_plane(
+    grid_crs: pyproj.CRS,
+    x_edges: np.ndarray,
+    y_edges: np.ndarray,
+    x_centres: np.ndarray,
+    y_centres: np.ndarray,
+    x_flipped: bool,
+    y_flipped: bool,
+) -> _Plane:
+    """The cylindrical equal-area image of a lat-lon grid, centred on the grid's middle longitude."""
+    a, b = _semi_axes(grid_crs)
+    e = math.sqrt(max(0.0, 1 - (b / a) ** 2))
+    lon0 = float((x_edges[0] + x_edges[-1]) / 2)
+
+    def to_plane(xy: np.ndarray) -> np.ndarray:
+        # Easting is linear in longitude (no wrap-around at lon0 +- 180, on purpose: antimeridian.py copies
+        # pieces by whole turns of longitude onto the grid instead).
+        return np.column_stack([a * np.radians(xy[:, 0] - lon0), authalic_y(xy[:, 1], a, e)])
+
+    inverse = pyproj.Transformer.from_pipeline(
+        f"+proj=pipeline +step +inv +proj=cea +lat_ts=0 +lon_0={lon0!r} +a={a!r} +b={b!r} "
+        "+step +proj=unitconvert +xy_in=rad +xy_out=deg"
+    )
+
+    def to_lonlat(xy: np.ndarray) -> np.ndarray:
+        return np.column_stack(inverse.transform(xy[:, 0], xy[:, 1]))
+
+    return _Plane(
+        x_edges=a * np.radians(x_edges - lon0),
+        y_edges=authalic_y(y_edges, a, e),
+        x_centres=a * np.radians(x_centres - lon0),
+        y_centres=authalic_y(y_centres, a, e),
+        x_flipped=x_flipped,
+        y_flipped=y_flipped,
+        to_plane=to_plane,
+        to_lonlat=to_lonlat,
+        km2_per_unit2=1e-6,
+        period=2 * math.pi * a,
+    )
+
+
+def _projected_plane(
+    grid_crs: pyproj.CRS,
+    x_edges: np.ndarray,
+    y_edges: np.ndarray,
+    x_centres: np.ndarray,
+    y_centres: np.ndarray,
+    x_flipped: bool,
+    y_flipped: bool,
+) -> _Plane:
+    """A projected grid's own plane, with the areal scale factor that turns plane areas into ground areas."""
+    unit = float(grid_crs.axis_info[0].unit_conversion_factor) if grid_crs.axis_info else 1.0
     to_wgs84 = pyproj.Transformer.from_crs(grid_crs, _WGS84, always_xy=True)
+    geodetic = grid_crs.geodetic_crs if grid_crs.geodetic_crs is not None else _WGS84
+    to_geodetic = pyproj.Transformer.from_crs(grid_crs, geodetic, always_xy=True)
+    projection = pyproj.Proj(grid_crs)
+    km2_per_unit2 = unit**2 * 1e-6
 
-    def to_lonlat_projected(xy: np.ndarray) -> np.ndarray:
+    def to_lonlat(xy: np.ndarray) -> np.ndarray:
         return np.column_stack(to_wgs84.transform(xy[:, 0], xy[:, 1]))
+
+    def ground_km2(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        # areal_scale is plane area over ground area at a point (PROJ proj_factors); it is the same whatever
+        # the axis unit, which km2_per_unit2 accounts for.
+        lon, lat = to_geodetic.transform(np.asarray(x, np.float64), np.asarray(y, np.float64))
+        scale = np.asarray(projection.get_factors(lon, lat, errcheck=False).areal_scale, dtype=np.float64)
+        return km2_per_unit2 / scale
+
+    # Whole features: a Lambert azimuthal equal-area frame on the grid's own datum, centred on the grid.
+    centre_lon, centre_lat = to_geodetic.transform(
+        float((x_edges[0] + x_edges[-1]) / 2), float((y_edges[0] + y_edges[-1]) / 2)
+    )
+    equal_area = pyproj.crs.ProjectedCRS(
+        conversion=pyproj.crs.coordinate_operation.LambertAzimuthalEqualAreaConversion(
+            latitude_natural_origin=float(centre_lat), longitude_natural_origin=float(centre_lon)
+        ),
+        geodetic_crs=geodetic,
+    )
+    to_equal_area = pyproj.Transformer.from_crs(grid_crs, equal_area, always_xy=True)
+
+    def areas_km2(geometries: np.ndarray) -> np.ndarray:
+        dense = shapely.segmentize(geometries, MAX_SEGMENT_METRES / unit)
+        moved = shapely.transform(
+            dense, lambda xy: np.column_stack(to_equal_area.transform(xy[:, 0], xy[:, 1]))
+        )
+        return shapely.area(moved) * 1e-6
 
     return _Plane(
         x_edges=x_edges,
@@ -148,17 +259,27 @@ def _plane(grid: Grid) -> _Plane:
         x_flipped=x_flipped,
         y_flipped=y_flipped,
         to_plane=lambda xy: xy,
-        to_lonlat=to_lonlat_projected,
-        km2_per_unit2=float(unit) ** 2 * 1e-6,
+        to_lonlat=to_lonlat,
+        km2_per_unit2=km2_per_unit2,
+        ground_km2=ground_km2,
+        areas_km2=areas_km2,
     )
 
 
 def _to_grid(geometries: np.ndarray, source: pyproj.CRS, grid_crs: pyproj.CRS) -> np.ndarray:
-    """Geometries reprojected from the request CRS to the grid CRS (long lon/lat edges split first)."""
+    """Geometries reprojected from the request CRS to the grid CRS, long edges split first.
+
+    Edges are straight lines in the request's CRS (lon/lat lines for geographic coordinates, as GeoJSON
+    means them); they are split to MAX_SEGMENT_DEGREES or MAX_SEGMENT_METRES before the vertices move, so
+    they stay (nearly) those lines on the grid's plane.
+    """
     if source.is_geographic:
         geometries = shapely.segmentize(geometries, MAX_SEGMENT_DEGREES)
     if source.equals(grid_crs, ignore_axis_order=True):
         return geometries
+    if not source.is_geographic:
+        unit = float(source.axis_info[0].unit_conversion_factor) if source.axis_info else 1.0
+        geometries = shapely.segmentize(geometries, MAX_SEGMENT_METRES / unit)
     transformer = pyproj.Transformer.from_crs(source, grid_crs, always_xy=True)
 
     def move(xy: np.ndarray) -> np.ndarray:
@@ -168,9 +289,18 @@ def _to_grid(geometries: np.ndarray, source: pyproj.CRS, grid_crs: pyproj.CRS) -
 
 
 def cell_areas_km2(grid: Grid) -> np.ndarray:
-    """Area (km2) of every cell, (ny, nx) in the grid's own order: ellipsoidal on lat-lon grids."""
+    """Ground area (km2) of every cell, (ny, nx) in the grid's own order, on the grid's ellipsoid.
+
+    Exact on lat-lon grids; on projected grids the plane area times the areal scale factor at the cell
+    centre (midpoint rule, see the module's docstring).
+    """
     plane = _plane(grid)
-    areas = np.outer(np.diff(plane.y_edges), np.diff(plane.x_edges)) * plane.km2_per_unit2
+    areas = np.outer(np.diff(plane.y_edges), np.diff(plane.x_edges))
+    if plane.ground_km2 is None:
+        areas = areas * plane.km2_per_unit2
+    else:
+        cx, cy = np.meshgrid(plane.x_centres, plane.y_centres)
+        areas = areas * plane.ground_km2(cx.ravel(), cy.ravel()).reshape(areas.shape)
     if plane.y_flipped:
         areas = areas[::-1]
     if plane.x_flipped:

@@ -1,7 +1,10 @@
 """Exact cell-overlap weights: features on a grid as one sparse (feature x cell) matrix, cached.
 
-:func:`compute_weights` puts checked features on a store's grid: the weight of a cell is the area (km2) of
-feature intersected with cell, times a weight layer when one is given, on cells with data only.
+:func:`compute_weights` puts checked features on a store's grid: the weight of a cell is the ground area
+(km2) of feature intersected with cell, times a weight layer when one is given, on cells with data only.
+Features are taken apart into their polygons (parts), each part is intersected with the cells under its
+own bounding box (an archipelago's sea between islands costs nothing), and on lat-lon grids each part is
+copied by whole turns of longitude onto the grid (antimeridian.py); pieces of one feature in one cell add up.
 """
 
 from __future__ import annotations
@@ -18,7 +21,7 @@ import shapely
 from scipy import sparse
 
 from service.errors import FeatureError, FeatureWithoutDataError, LimitExceededError, RequestError
-from service.geometry.antimeridian import _wrap_longitudes
+from service.geometry.antimeridian import crossing, split, wrap_parts
 from service.geometry.checks import Feature, ParsedFeatures, _fail, _raise_collected, request_crs
 from service.geometry.planes import _Plane, _plane, _to_grid
 
@@ -106,7 +109,7 @@ def weights_key(
 ) -> str:
     """SHA-256 over the feature ids and footprints, their CRS, the grid, the weighting, layer and mask."""
     h = hashlib.sha256()
-    h.update(f"wxshock-weights-1|{parsed.crs}|{weighting}|{max_cells}|".encode())
+    h.update(f"wxshock-weights-2|{parsed.crs}|{weighting}|{max_cells}|".encode())
     for f in parsed.features:
         h.update(f.id.encode("utf-8") + b"\0")
         h.update(shapely.to_wkb(f.footprint, output_dimension=2))
@@ -174,12 +177,19 @@ def compute_weights(
 
 @dataclass
 class _Pieces:
-    """Per (feature, cell) overlaps found so far, cells in the grid's own index."""
+    """Per (part, cell) overlaps found so far, cells in the grid's own index."""
 
-    feature: list[np.ndarray] = field(default_factory=list)
+    part: list[np.ndarray] = field(default_factory=list)
     cell: list[np.ndarray] = field(default_factory=list)
-    area: list[np.ndarray] = field(default_factory=list)  # plane units^2, feature within cell
-    weight: list[np.ndarray] = field(default_factory=list)  # km2 (x layer)
+    plane: list[np.ndarray] = field(default_factory=list)  # plane units^2, part within cell
+    ground: list[np.ndarray] = field(default_factory=list)  # km2 on the ground, part within cell
+    counted: list[np.ndarray] = field(default_factory=list)  # the weighting's choice of cells
+
+    def joined(self) -> tuple[np.ndarray, ...]:
+        """(part, cell, plane, ground, counted) as flat arrays."""
+        if not self.part:
+            return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros(0), np.zeros(0, bool))
+        return tuple(np.concatenate(x) for x in (self.part, self.cell, self.plane, self.ground, self.counted))
 
 
 def _index_ranges(bounds: np.ndarray, plane: _Plane) -> tuple[np.ndarray, ...]:
@@ -202,37 +212,51 @@ def _overlaps(
     plane: _Plane,
     weighting: str,
 ) -> tuple[np.ndarray, ...]:
-    """For the features ``rows``: (feature, ix, iy, area, counted) of every cell they overlap.
+    """For the parts ``rows``: (part, ix, iy, plane area, ground km2, counted) of every cell they overlap.
 
-    Cells wholly inside a feature take the cell's area without an intersection; the others are clipped
-    with GEOS's rectangle clipping. ``counted`` is the weighting's choice of cells (all overlapping cells,
-    or those whose centre lies in the feature); indices are ascending-plane indices.
+    Cells wholly inside a part take the cell's area without an intersection; the others are clipped with
+    GEOS's rectangle clipping. Plane areas become ground areas at each piece's centroid (the cell centre
+    for whole cells). ``counted`` is the weighting's choice of cells (all overlapping cells, or those whose
+    centre lies in the part); indices are ascending-plane indices.
     """
     x0, x1, y0, y1 = (r[rows] for r in ranges)
     width = x1 - x0
     counts = width * (y1 - y0)
     total = int(counts.sum())
-    feature = np.repeat(rows, counts)
+    part = np.repeat(rows, counts)
     offset = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
     width_each = np.repeat(width, counts)
     ix = np.repeat(x0, counts) + offset % np.maximum(width_each, 1)
     iy = np.repeat(y0, counts) + offset // np.maximum(width_each, 1)
     xmin, xmax = plane.x_edges[ix], plane.x_edges[ix + 1]
     ymin, ymax = plane.y_edges[iy], plane.y_edges[iy + 1]
-    g = geoms[feature]
+    g = geoms[part]
     boxes = shapely.box(xmin, ymin, xmax, ymax)
     inside = shapely.contains_properly(g, boxes)
     area = np.where(inside, (xmax - xmin) * (ymax - ymin), 0.0)
     edge = np.flatnonzero(~inside)
     edge = edge[shapely.intersects(g[edge], boxes[edge])]
-    area[edge] = shapely.area(_clip(g[edge], xmin[edge], ymin[edge], xmax[edge], ymax[edge], boxes[edge]))
+    clipped = _clip(g[edge], xmin[edge], ymin[edge], xmax[edge], ymax[edge], boxes[edge])
+    area[edge] = shapely.area(clipped)
     keep = area > 0
     if weighting == "centers":
         counted = shapely.intersects_xy(g, plane.x_centres[ix], plane.y_centres[iy])
         keep |= counted
     else:
         counted = keep
-    return feature[keep], ix[keep], iy[keep], area[keep], counted[keep]
+    if plane.ground_km2 is None:
+        ground = area * plane.km2_per_unit2
+    else:
+        # The areal scale at each piece's centroid; whole cells (and empty pieces) use the cell centre.
+        px, py = plane.x_centres[ix], plane.y_centres[iy]
+        if edge.size:
+            centre = shapely.centroid(clipped)
+            ok = area[edge] > 0
+            px, py = px.copy(), py.copy()
+            px[edge[ok]], py[edge[ok]] = shapely.get_x(centre[ok]), shapely.get_y(centre[ok])
+        ground = np.zeros_like(area)
+        ground[keep] = plane.piece_areas_km2(area[keep], px[keep], py[keep])
+    return part[keep], ix[keep], iy[keep], area[keep], ground[keep], counted[keep]
 
 
 def _clip(
@@ -296,13 +320,20 @@ def _compute_weights(
     source = request_crs(parsed.crs)
     footprints = np.array([f.footprint for f in parsed.features], dtype=object)
     on_grid = _to_grid(footprints, source, grid.crs())
-    if grid.is_geographic:
-        on_grid = _wrap_longitudes(on_grid, grid)
+    if plane.geographic:
+        # Shapes that the reprojection carried across the grid's 180th meridian (lon/lat requests were cut
+        # at parse time; this catches projected requests and datum shifts at the meridian).
+        on_grid = _split_on_grid(on_grid, parsed)
     geoms = shapely.transform(on_grid, plane.to_plane)
-    shapely.prepare(geoms)
-    feature_area = shapely.area(geoms)
-    ranges = _index_ranges(shapely.bounds(geoms), plane)
-    candidates = (ranges[1] - ranges[0]) * (ranges[3] - ranges[2])
+    feature_area = plane.feature_areas_km2(geoms)
+    parts, owner = shapely.get_parts(geoms, return_index=True)
+    latitude, longitude = _centroids(parts, owner, n, plane)
+    if plane.period is not None:
+        parts, owner = wrap_parts(parts, owner, plane.x_edges[0], plane.x_edges[-1], plane.period)
+    shapely.prepare(parts)
+    ranges = _index_ranges(shapely.bounds(parts), plane)
+    part_candidates = (ranges[1] - ranges[0]) * (ranges[3] - ranges[2])
+    candidates = np.bincount(owner, weights=part_candidates, minlength=n).astype(np.int64)
     errors: list[RequestError] = []
     too_big = candidates > BBOX_CELLS_FACTOR * max_cells
     for r in np.flatnonzero(too_big):
@@ -311,30 +342,36 @@ def _compute_weights(
         )
     mask_flat = None if data_mask is None else data_mask.ravel()
     layer_flat = None if layer is None else np.nan_to_num(layer.ravel(), nan=0.0)
-    cell_area = np.outer(np.diff(plane.y_edges), np.diff(plane.x_edges))  # ascending plane order
     pieces = _Pieces()
-    for rows in _passes(np.flatnonzero(~too_big & (candidates > 0)), candidates):
-        feature, ix, iy, area, counted = _overlaps(geoms, rows, ranges, plane, weighting)
+    for rows in _passes(np.flatnonzero(~too_big[owner] & (part_candidates > 0)), part_candidates):
+        part, ix, iy, area, ground, counted = _overlaps(parts, rows, ranges, plane, weighting)
         gx = nx - 1 - ix if plane.x_flipped else ix
         gy = ny - 1 - iy if plane.y_flipped else iy
-        cell = gy * nx + gx
-        base = cell_area[iy, ix] if weighting == "centers" else area
-        weight = np.where(counted, base, 0.0) * plane.km2_per_unit2
-        if mask_flat is not None:
-            weight = np.where(mask_flat[cell], weight, 0.0)
-        if layer_flat is not None:
-            weight = weight * layer_flat[cell]
-        pieces.feature.append(feature)
-        pieces.cell.append(cell)
-        pieces.area.append(area)
-        pieces.weight.append(weight)
-    feature = np.concatenate(pieces.feature) if pieces.feature else np.zeros(0, np.int64)
-    cell = np.concatenate(pieces.cell) if pieces.cell else np.zeros(0, np.int64)
-    area = np.concatenate(pieces.area) if pieces.area else np.zeros(0)
-    weight = np.concatenate(pieces.weight) if pieces.weight else np.zeros(0)
-    touched = np.bincount(feature[area > 0], minlength=n)
+        pieces.part.append(part)
+        pieces.cell.append(gy * nx + gx)
+        pieces.plane.append(area)
+        pieces.ground.append(ground)
+        pieces.counted.append(counted)
+    part, cell, area, ground, counted = pieces.joined()
+    feature = owner[part]
+    if len(parts) != n:
+        # Several parts (or copies a turn apart) of one feature may share a cell: one entry per pair.
+        feature, cell, area, ground, counted = _per_feature_cell(
+            feature, cell, area, ground, counted, ny * nx
+        )
+    if weighting == "centers":
+        base = _cell_ground_km2(cell, grid, plane)
+    else:
+        base = ground
+    weight = np.where(counted, base, 0.0)
+    if mask_flat is not None:
+        weight = np.where(mask_flat[cell], weight, 0.0)
+    if layer_flat is not None:
+        weight = weight * layer_flat[cell]
+    touched = np.bincount(feature[ground > 0], minlength=n)
     has_data = mask_flat[cell] if mask_flat is not None else np.ones(len(cell), bool)
-    data_area = np.bincount(feature, weights=np.where(has_data, area, 0.0), minlength=n)
+    data_area = np.bincount(feature, weights=np.where(has_data, ground, 0.0), minlength=n)
+    data_plane = np.bincount(feature, weights=np.where(has_data, area, 0.0), minlength=n)
     n_cells = np.bincount(feature[weight > 0], minlength=n)
     for r in np.flatnonzero(~too_big):
         f = parsed.features[r]
@@ -350,18 +387,98 @@ def _compute_weights(
     matrix.sum_duplicates()
     matrix.sort_indices()
     coverage = np.clip(data_area / np.where(feature_area > 0, feature_area, 1.0), 0.0, 1.0)
-    centroid = plane.to_lonlat(shapely.get_coordinates(shapely.centroid(geoms)))
+    # A feature wholly on cells with data has coverage 1 exactly, not 1 less the midpoint rule's 1e-6 on
+    # projected grids (plane areas of the pieces add up to the feature's to rounding).
+    plane_area = shapely.area(geoms)
+    coverage[data_plane >= plane_area * (1 - 1e-9)] = 1.0
     return Weights(
         matrix=matrix,
         feature_ids=parsed.ids,
-        area_km2=feature_area * plane.km2_per_unit2,
+        area_km2=feature_area,
         n_cells=n_cells.astype(np.int64),
         coverage=coverage,
-        latitude=centroid[:, 1].copy(),
-        longitude=centroid[:, 0].copy(),
+        latitude=latitude,
+        longitude=longitude,
         key=key,
         weighting=weighting,
     )
+
+
+def _split_on_grid(on_grid: np.ndarray, parsed: ParsedFeatures) -> np.ndarray:
+    """Features on a lat-lon grid's CRS with those crossing its 180th meridian cut there, or FeatureError."""
+    pick = np.flatnonzero(crossing(on_grid))
+    if pick.size == 0:
+        return on_grid
+    out = on_grid.copy()
+    errors: list[RequestError] = []
+    for i in pick:
+        try:
+            out[i] = split(on_grid[i])
+        except ValueError as exc:
+            f = parsed.features[i]
+            errors.append(
+                _fail(
+                    f.id,
+                    f.pointer + "/geometry",
+                    f"crosses the grid's 180th meridian and {exc}; send it cut at 180 degrees as a "
+                    "MultiPolygon (RFC 7946, section 3.1.9)",
+                )
+            )
+    _raise_collected(errors)
+    return out
+
+
+def _centroids(parts: np.ndarray, owner: np.ndarray, n: int, plane: _Plane) -> tuple[np.ndarray, np.ndarray]:
+    """(latitude, longitude) in WGS84 degrees of each feature's area centroid on the plane.
+
+    On a lat-lon plane each part's centroid first moves by whole turns next to the feature's largest part,
+    so that a feature cut at the 180th meridian has its centroid at the meridian, not half a world away.
+    """
+    area = shapely.area(parts)
+    centre = shapely.centroid(parts)
+    cx, cy = shapely.get_x(centre), shapely.get_y(centre)
+    if plane.period is not None and len(parts) > n:
+        order = np.lexsort((area, owner))  # by feature, then by area: each feature's largest part last
+        last = order[np.r_[owner[order][1:] != owner[order][:-1], True]]
+        ref = np.zeros(n)
+        ref[owner[last]] = np.nan_to_num(cx[last])
+        cx = cx - plane.period * np.round((cx - ref[owner]) / plane.period)
+    weight = np.where(np.isfinite(cx) & np.isfinite(cy), area, 0.0)
+    total = np.bincount(owner, weights=weight, minlength=n)
+    safe = np.where(total > 0, total, 1.0)
+    mx = np.bincount(owner, weights=np.nan_to_num(cx) * weight, minlength=n) / safe
+    my = np.bincount(owner, weights=np.nan_to_num(cy) * weight, minlength=n) / safe
+    lonlat = plane.to_lonlat(np.column_stack([mx, my]))
+    lon = np.where(total > 0, lonlat[:, 0], np.nan)
+    lat = np.where(total > 0, lonlat[:, 1], np.nan)
+    return lat.copy(), lon.copy()
+
+
+def _per_feature_cell(
+    feature: np.ndarray,
+    cell: np.ndarray,
+    area: np.ndarray,
+    ground: np.ndarray,
+    counted: np.ndarray,
+    n_cells: int,
+) -> tuple[np.ndarray, ...]:
+    """Pieces summed per (feature, cell): areas added, a cell counted when any piece counts it."""
+    key = feature.astype(np.int64) * n_cells + cell
+    unique, inverse = np.unique(key, return_inverse=True)
+    area = np.bincount(inverse, weights=area, minlength=len(unique))
+    ground = np.bincount(inverse, weights=ground, minlength=len(unique))
+    counted = np.bincount(inverse, weights=counted.astype(np.float64), minlength=len(unique)) > 0
+    return unique // n_cells, unique % n_cells, area, ground, counted
+
+
+def _cell_ground_km2(cell: np.ndarray, grid: Grid, plane: _Plane) -> np.ndarray:
+    """Ground area (km2) of the given cells (grid-order flat index), as :func:`cell_areas_km2` has it."""
+    ny, nx = grid.shape
+    gy, gx = np.divmod(cell, nx)
+    ix = nx - 1 - gx if plane.x_flipped else gx
+    iy = ny - 1 - gy if plane.y_flipped else gy
+    area = np.diff(plane.x_edges)[ix] * np.diff(plane.y_edges)[iy]
+    return plane.piece_areas_km2(area, plane.x_centres[ix], plane.y_centres[iy])
 
 
 def _passes(rows: np.ndarray, candidates: np.ndarray) -> list[np.ndarray]:

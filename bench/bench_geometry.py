@@ -1,0 +1,223 @@
+"""Benchmark of parse + exact weights on lat-lon, projected and antimeridian grids, and of large point sets.
+
+    python bench/bench_geometry.py                  # everything; replaces its section in bench/RESULTS.md
+    python bench/bench_geometry.py --quick          # fewer features, nothing written
+
+No store is needed: the grids are built in memory with the large demo's shape (256 x 256 cells of 1/256
+degree, about 430 m, over the invented region 40-39 W, 14-15 N) and every cell has data.
+
+  latlon      N invented polygons (a seeded Voronoi tessellation of the region, edges split every ~100 m,
+              as bench_aggregate.py draws them) on the lat-lon grid
+  projected   the same polygons (sent in lon/lat) on a Lambert conformal grid of 430 m cells over the region:
+              reprojection, ground areas by the projection's scale factor, the equal-area feature areas
+  antimeridian the same polygons moved to straddle the 180th meridian (every one crossing it) on a grid
+              written in 0..360
+  points      P buffered points (2 km radius) on the lat-lon grid, the shape of a survey's cluster file
+
+Each phase is timed in CPU seconds (one core: geometry is single-threaded), best of three rounds.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyproj
+import shapely
+
+ROOT = Path(__file__).resolve().parent.parent
+RESULTS = ROOT / "bench" / "RESULTS.md"
+START, END = "<!-- bench_geometry: start -->", "<!-- bench_geometry: end -->"
+WEST, SOUTH, CELLS, SIZE = -40.0, 14.0, 256, 1.0 / 256
+LCC = pyproj.CRS.from_proj4(
+    "+proj=lcc +lat_1=10 +lat_2=20 +lat_0=14.5 +lon_0=-39.5 +ellps=WGS84 +units=m +no_defs"
+)
+
+
+def lonlat_grid(west: float = WEST) -> Any:
+    """The large demo's grid shape: 256 x 256 cells of 1/256 degree from (west, 14 N), rows north first."""
+    from service.store import Grid
+
+    x = west + SIZE * (np.arange(CELLS) + 0.5)
+    y = (SOUTH + SIZE * (np.arange(CELLS) + 0.5))[::-1]
+    return Grid(crs_wkt=pyproj.CRS.from_epsg(4326).to_wkt(), x=x, y=y, is_geographic=True)
+
+
+def lambert_grid() -> Any:
+    """A Lambert conformal grid of 430 m cells over the same region, 260 x 260, rows north first."""
+    from service.store import Grid
+
+    size, n = 430.0, 260
+    x = -n / 2 * size + size * (np.arange(n) + 0.5)
+    y = (-n / 2 * size + size * (np.arange(n) + 0.5))[::-1]
+    return Grid(crs_wkt=LCC.to_wkt(), x=x, y=y, is_geographic=False)
+
+
+def polygons(n: int, seed: int = 2026, shift: float = 0.0) -> dict[str, Any]:
+    """n invented communities tiling the region (Voronoi cells of seeded points), lon shifted by ``shift``."""
+    rng = np.random.default_rng(seed)
+    px = WEST + rng.uniform(0.002, 0.998, n)
+    py = SOUTH + rng.uniform(0.002, 0.998, n)
+    frame = shapely.box(WEST, SOUTH, WEST + 1, SOUTH + 1)
+    cells = shapely.get_parts(
+        shapely.voronoi_polygons(shapely.multipoints(np.column_stack([px, py])), extend_to=frame)
+    )
+    cells = shapely.segmentize(shapely.intersection(cells, frame), 0.001)
+    features = []
+    for k, polygon in enumerate(cells):
+        ring = np.round(np.asarray(polygon.exterior.coords), 7)
+        ring[:, 0] += shift
+        if shift:
+            ring[:, 0] = (ring[:, 0] + 180.0) % 360.0 - 180.0  # written in -180..180: rings jump across 180
+            ring[-1] = ring[0]
+        features.append(
+            {
+                "type": "Feature",
+                "id": f"b{k:06d}",
+                "geometry": {"type": "Polygon", "coordinates": [ring.tolist()]},
+            }
+        )
+    return {"type": "FeatureCollection", "features": features}
+
+
+def points(n: int, seed: int = 7) -> dict[str, Any]:
+    """n survey clusters: Points with a 2 km buffer, spread over the region."""
+    rng = np.random.default_rng(seed)
+    lon = WEST + rng.uniform(0.03, 0.97, n)
+    lat = SOUTH + rng.uniform(0.03, 0.97, n)
+    return {
+        "type": "FeatureCollection",
+        "features": [
+            {
+                "type": "Feature",
+                "id": f"p{k:06d}",
+                "geometry": {"type": "Point", "coordinates": [round(float(a), 6), round(float(b), 6)]},
+                "properties": {"buffer_m": 2000},
+            }
+            for k, (a, b) in enumerate(zip(lon, lat, strict=True))
+        ],
+    }
+
+
+def timed(features: dict[str, Any], grid: Any, rounds: int = 3) -> dict[str, Any]:
+    """Best-of-``rounds`` CPU and wall seconds of parse_features and compute_weights."""
+    from service.geometry import compute_weights, parse_features
+
+    best: dict[str, float] = {}
+    weights = None
+    for _ in range(rounds):
+        t0, c0 = time.perf_counter(), time.process_time()
+        parsed = parse_features(features, max_vertices=1_000_000)
+        t1, c1 = time.perf_counter(), time.process_time()
+        weights = compute_weights(parsed, grid, cache_size=0, max_cells=1_000_000)
+        t2, c2 = time.perf_counter(), time.process_time()
+        for key, value in (
+            ("parse_cpu", c1 - c0),
+            ("weights_cpu", c2 - c1),
+            ("parse_s", t1 - t0),
+            ("weights_s", t2 - t1),
+        ):
+            best[key] = min(best.get(key, np.inf), value)
+    n = len(features["features"])
+    assert weights is not None
+    return {
+        **best,
+        "n": n,
+        "per_cpu_s": n / (best["parse_cpu"] + best["weights_cpu"]),
+        "weights_per_cpu_s": n / best["weights_cpu"],
+        "cells_mean": float(weights.n_cells.mean()),
+        "area_km2_mean": float(weights.area_km2.mean()),
+        "coverage_min": float(weights.coverage.min()),
+    }
+
+
+def run(n_polygons: int, n_points: int) -> dict[str, dict[str, Any]]:
+    """Every phase's figures."""
+    results = {}
+    base = polygons(n_polygons)
+    results["latlon"] = timed(base, lonlat_grid())
+    results["projected"] = timed(base, lambert_grid())
+    # the region moved to 179.5 E .. 179.5 W, written in -180..180 (each ring jumps), on a 0..360 grid
+    results["antimeridian"] = timed(polygons(n_polygons, shift=219.5), lonlat_grid(west=179.5))
+    results["points"] = timed(points(n_points), lonlat_grid(), rounds=1)
+    return results
+
+
+def report(results: dict[str, dict[str, Any]]) -> str:
+    """The RESULTS.md section."""
+    rows = {
+        "latlon": "polygons on the lat-lon grid",
+        "projected": "the same polygons on a Lambert conformal grid (ground areas)",
+        "antimeridian": "the same polygons across the 180th meridian, 0..360 grid",
+        "points": "buffered points (2 km) on the lat-lon grid",
+    }
+    lines = [
+        START,
+        "## Geometry: parse + exact weights (issue 11, `bench/bench_geometry.py`)",
+        "",
+        f"Measured {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())} on {platform.machine()}, Python "
+        f"{platform.python_version()}, one core (geometry is single-threaded); 1-minute load average "
+        f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores, so CPU time is the measure. Grids of the large "
+        "demo's shape (256 x 256 cells of about 430 m), every cell with data; best of three rounds (points: one).",
+        "",
+        "| what | features | parse CPU s | weights CPU s | features per CPU-second | cells per feature |",
+        "|---|---|---|---|---|---|",
+    ]
+    for key, label in rows.items():
+        r = results[key]
+        lines.append(
+            f"| {label} | {r['n']:,} | {r['parse_cpu']:.2f} | {r['weights_cpu']:.2f} | {r['per_cpu_s']:,.0f} "
+            f"({r['weights_per_cpu_s']:,.0f} weights alone) | {r['cells_mean']:.1f} |"
+        )
+    lines += ["", END]
+    return "\n".join(lines) + "\n"
+
+
+def write_section(text: str) -> None:
+    """Replace this benchmark's section of bench/RESULTS.md (or append it)."""
+    old = RESULTS.read_text(encoding="utf-8") if RESULTS.is_file() else "# Benchmark results\n\n"
+    if START in old and END in old:
+        head, rest = old.split(START, 1)
+        _, tail = rest.split(END, 1)
+        new = head + text.rstrip("\n") + tail
+    else:
+        new = old.rstrip("\n") + "\n\n" + text
+    RESULTS.write_text(new, encoding="utf-8")
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="500 polygons and 5,000 points; write nothing")
+    parser.add_argument("--polygons", type=int, default=5000)
+    parser.add_argument("--points", type=int, default=100_000)
+    parser.add_argument(
+        "--phase", choices=["latlon", "projected", "antimeridian", "points"], help="one phase only"
+    )
+    args = parser.parse_args()
+    n_polygons, n_points = (500, 5000) if args.quick else (args.polygons, args.points)
+    if args.phase:
+        grids = {"latlon": lonlat_grid, "projected": lambert_grid, "points": lonlat_grid}
+        if args.phase == "antimeridian":
+            r = timed(polygons(n_polygons, shift=219.5), lonlat_grid(west=179.5))
+        elif args.phase == "points":
+            r = timed(points(n_points), grids["points"](), rounds=1)
+        else:
+            r = timed(polygons(n_polygons), grids[args.phase]())
+        print({k: round(v, 3) if isinstance(v, float) else v for k, v in r.items()})
+        return 0
+    results = run(n_polygons, n_points)
+    text = report(results)
+    print(text)
+    if not args.quick:
+        write_section(text)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
