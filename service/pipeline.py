@@ -22,11 +22,12 @@ from service.encode import RunResult
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import LimitExceededError, OutOfRangeError, RunCancelledError, UnknownDatasetError
 from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
-from service.indicators.base import DailySeries
-from service.indicators.table import compute_table, resolve_request
+from service.indicators.base import VARIABLES, DailySeries, snap_daily, snap_decimals
+from service.indicators.table import add_warning_notes, compute_table, plan_indicators, resolve_request
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
 from service.store import Store, open_store
+from service.warning_codes import warning
 
 Progress = Callable[[int, int], None]
 Cancelled = Callable[[], bool]
@@ -183,13 +184,33 @@ def time_span(store: Store, last_year: int) -> slice:
     return slice(0, stop)
 
 
+def daily_values(ds: Any, store: Store, var: str) -> np.ndarray | None:
+    """One variable of a computed aggregation as float64 (feature, time), snapped; None when not aggregated.
+
+    Snapped to the store's storage step plus three decimals (service.indicators.base.snap_daily), so a
+    weighted mean that is exact in storage units (25.0 degC, 1.0 mm) is exact here and thresholds compare
+    it as stored.
+    """
+    if var not in ds:
+        return None
+    values = np.array(ds[var].values, dtype=np.float64)  # a copy: snapping works in place
+    enc = store.encoding(var)
+    return snap_daily(values, snap_decimals(enc.scale_factor, enc.add_offset))
+
+
+def needed_variables(request: IndicatorRequest) -> tuple[str, ...]:
+    """The daily variables a resolved request's indicators read, in the order of VARIABLES."""
+    used = {v for p in plan_indicators(request.indicators or []) for v in p.indicator.variables}
+    return tuple(v for v in VARIABLES if v in used)
+
+
 def _daily_series(ds: Any, store: Store, span: slice, latitude: np.ndarray) -> DailySeries:
-    """The computed aggregation as the indicators' DailySeries."""
+    """The computed aggregation as the indicators' DailySeries (variables not aggregated are None)."""
     dates = store.dates
     return DailySeries(
-        tmax=np.asarray(ds["tmax"].values, dtype=np.float64),
-        tmin=np.asarray(ds["tmin"].values, dtype=np.float64),
-        prcp=np.asarray(ds["prcp"].values, dtype=np.float64),
+        tmax=daily_values(ds, store, "tmax"),
+        tmin=daily_values(ds, store, "tmin"),
+        prcp=daily_values(ds, store, "prcp"),
         year=np.asarray(dates.year[span]),
         month=np.asarray(dates.month[span]),
         day=np.asarray(dates.day[span]),
@@ -226,8 +247,9 @@ def run(
     batch_size: int = DEFAULT_BATCH_FEATURES,
 ) -> RunResult:
     """Season indicators for every feature of the request, one row per (feature_id, year)."""
-    resolved = resolve_request(request, store.dates, store.calendar)
+    resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
+    variables = needed_variables(resolved)
     parsed, weights = features_and_weights(resolved, store, settings)
     # a fixed baseline may lie after the requested years: read up to whichever ends later
     span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
@@ -244,7 +266,9 @@ def run(
         batch = take_weights(weights, rows)
         # The indicators take tmean from tmax and tmin themselves; not computing the Dataset's tmean saves a
         # quarter of the series moved back from a dask cluster (and the work of making it).
-        daily_lazy = aggregate(store, batch, time=span).drop_vars("tmean", errors="ignore")
+        daily_lazy = aggregate(store, batch, variables=variables, time=span).drop_vars(
+            "tmean", errors="ignore"
+        )
         (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
         daily = _daily_series(daily_ds, store, span, np.asarray(batch.latitude))
         table = compute_table(daily, list(batch.feature_ids), [properties[i] for i in rows], resolved)
@@ -255,8 +279,12 @@ def run(
             progress(done, total)
     frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
     warnings = _warnings_in_order(warnings, weights.feature_ids)
-    for feature_id in parsed.repaired:
-        warnings.append({"feature_id": feature_id, "reason": "invalid geometry was repaired (make_valid)"})
+    later = [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in parsed.repaired
+    ]
+    warnings.extend(later)
+    frame = add_warning_notes(frame, later)  # notes last, with the codes of the warnings made here
     return RunResult(frame=frame, provenance=provenance(resolved, store, parsed), warnings=warnings)
 
 
@@ -269,18 +297,23 @@ def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFra
 
 
 def _warnings_in_order(warnings: list[dict[str, Any]], feature_ids: list[str]) -> list[dict[str, Any]]:
-    """Warnings sorted by feature in request order, then year and indicator, for stable bytes."""
+    """Warnings sorted by feature in request order, then year, indicator and code, for stable bytes.
+
+    A warning about the whole request (no feature) comes once, however many batches made it.
+    """
     position = {fid: i for i, fid in enumerate(feature_ids)}
 
-    def key(w: dict[str, Any]) -> tuple[int, int, str, str]:
+    def key(w: dict[str, Any]) -> tuple[int, int, str, str, str]:
         return (
             position.get(w.get("feature_id"), -1),
             int(w.get("year") or 0),
             str(w.get("indicator") or ""),
+            str(w.get("code") or ""),
             str(w.get("reason") or ""),
         )
 
-    return sorted(warnings, key=key)
+    unique = {tuple(sorted((k, str(v)) for k, v in w.items())): w for w in warnings}
+    return sorted(unique.values(), key=key)
 
 
 def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunResult:
@@ -309,12 +342,10 @@ def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunR
         "feature_id": np.repeat(np.asarray(weights.feature_ids, dtype=object), n_time),
         "date": np.tile(np.asarray(labels, dtype=object), n_feature),
     }
+    # the same snapped daily means the indicators use (daily_values), so sums of the series match the table
+    snapped = {v: daily_values(daily_ds, store, v) for v in ("tmax", "tmin", "prcp") if v in daily_ds}
     for variable in request.variables:
-        values = (
-            (daily_ds["tmax"].values + daily_ds["tmin"].values) / 2
-            if variable == "tmean"
-            else daily_ds[variable].values
-        )
+        values = (snapped["tmax"] + snapped["tmin"]) / 2 if variable == "tmean" else snapped[variable]
         columns[variable] = np.asarray(values, dtype=np.float64).reshape(-1)
     frame = pd.DataFrame(columns)
     return RunResult(frame=frame, provenance=provenance(request, store, parsed), warnings=[])

@@ -296,7 +296,11 @@ class IndicatorRequest(_FeatureRequest):
             ),
         ]
         | None
-    ) = Field(default=None, description="Default: the first ten season-years of data.")
+    ) = Field(
+        default=None,
+        description="Default: the first 30 season-years of data (all of them when the data hold fewer, at "
+        "least 3): the 30 years WMO-No. 1090 asks for to fit SPI, and the length of a WMO climate normal.",
+    )
     indicators: (
         list[
             Annotated[
@@ -321,6 +325,13 @@ class IndicatorRequest(_FeatureRequest):
         ge=0.0,
         le=1.0,
         description="Share of missing days above which a season is not reported.",
+    )
+    partial_seasons: Literal["scale", "null", "as_is"] = Field(
+        default="scale",
+        description="Sums and counts of a season that misses some days (within max_missing_share): "
+        "'scale' multiplies them by expected days / days present, 'null' leaves them null, 'as_is' keeps "
+        "the sum over the days present. Means, extremes and run lengths always use the days present; "
+        "the row's notes say partial_season.",
     )
 
     @field_validator("lags")
@@ -376,8 +387,9 @@ class Provenance(BaseModel):
 
 
 class ResultWarning(BaseModel):
-    """A value left null for a stated reason (baseline without spread, short season, ...)."""
+    """A value left null or flagged for a stated reason; ``code`` is listed in service/warning_codes.py."""
 
+    code: str = Field(description="Stable lower_snake_case code, e.g. partial_season, no_spread, at_clip.")
     feature_id: str | None = None
     indicator: str | None = None
     year: int | None = None

@@ -371,7 +371,7 @@ def test_the_python_examples_run(live_server, tiny_demo: Path, tmp_path: Path) -
         timeout=120,
     )
     assert quick.returncode == 0, quick.stderr
-    assert quick.stdout.startswith("(1860, 27) sha256:")
+    assert quick.stdout.startswith("(1860, 28) sha256:")  # 28 with the notes column (issue 10)
     assert "qu-007  2005" in quick.stdout
     batch = subprocess.run(
         [

@@ -1,11 +1,13 @@
 """Baselines (each season-year's normal), anomalies against them and percent of normal.
 
 A fixed baseline is one span of season-years for every season-year; a trailing baseline of N is the N
-season-years just before each season-year (a moving normal). For each (feature, season-year) the baseline
-mean and sample standard deviation (ddof = 1) are taken over the baseline seasons that have a value; the
-anomaly is z = (value - mean) / sd. Where fewer than :data:`MIN_BASELINE_SEASONS` baseline seasons have a
-value, or their spread is zero (a count that is 0 in every baseline season), z is null and a warning names
-the indicator, the community and the reason: never an infinite z, never a failed request for the others.
+season-years just before each season-year (a moving normal), and a season-year without N season-years of
+record before it has none. For each (feature, season-year) the baseline mean and sample standard deviation
+(ddof = 1) are taken over the baseline seasons that have a value; the anomaly is z = (value - mean) / sd,
+rounded to 9 decimals. Where fewer than :data:`MIN_BASELINE_SEASONS` baseline seasons have a value, or
+their spread is zero (a count that is 0 in every baseline season: every value equal, detected exactly), z
+is null and a warning names the indicator, the community and the reason: never an infinite z, never a
+failed request for the others.
 """
 
 from __future__ import annotations
@@ -18,8 +20,16 @@ import numpy as np
 
 from service.indicators.base import Baseline
 from service.schemas import FixedBaseline, TrailingBaseline
+from service.warning_codes import warning
 
 MIN_BASELINE_SEASONS = 3
+# z is rounded to this many decimals before classing: far below any meaningful precision, far above the
+# 1e-16 noise of a division, so a z that lies on a class edge in exact arithmetic (-1 from values 0, 2, 4
+# against a value of 0) is classed by the edge rule and never by the sign of a rounding error.
+Z_DECIMALS = 9
+# A spread below this share of the values' scale (|mean| + 1) is rounding, not spread: summing the same
+# daily values in another order differs by ~1e-15 of the total.
+SPREAD_TOLERANCE = 1e-9
 
 # reason codes of :class:`Anomaly`
 OK = 0
@@ -29,66 +39,96 @@ NO_SPREAD = 3
 
 
 def make_baseline(years: np.ndarray, spec: FixedBaseline | TrailingBaseline) -> Baseline:
-    """The (year, year) membership matrix of ``spec`` over the season-years ``years`` (ascending ints)."""
+    """The (year, year) membership matrix of ``spec`` over the season-years ``years`` (ascending ints).
+
+    A trailing baseline of N gives season-year t the N season-years t - N .. t - 1, and only when all of
+    them lie in ``years`` (the record): a season-year closer than N to the first one has no baseline (an
+    empty row), so every value, z and spell rests on exactly the requested N seasons or is null.
+    """
     years = np.asarray(years)
     if isinstance(spec, FixedBaseline):
         row = (years >= spec.start) & (years <= spec.end)
         members = np.broadcast_to(row, (years.size, years.size)).copy()
-        return Baseline(members=members, fixed=True, label=f"{spec.start}-{spec.end}")
+        return Baseline(
+            members=members, fixed=True, label=f"{spec.start}-{spec.end}", seasons=spec.end - spec.start + 1
+        )
     n = spec.trailing
     members = (years[None, :] < years[:, None]) & (years[None, :] >= years[:, None] - n)
-    return Baseline(members=members, fixed=False, label=f"trailing {n}")
+    if years.size:
+        members &= years[:, None] - n >= years[0]
+    return Baseline(members=members, fixed=False, label=f"trailing {n}", seasons=n)
+
+
+def first_full_year(years: np.ndarray, spec: FixedBaseline | TrailingBaseline) -> int | None:
+    """The first season-year of ``years`` whose baseline is the whole requested one (None if none is)."""
+    if not len(years):
+        return None
+    if isinstance(spec, FixedBaseline):
+        return int(years[0])
+    first = int(years[0]) + spec.trailing
+    return first if first <= int(years[-1]) else None
 
 
 @dataclass(frozen=True)
 class BaselineStatistics:
-    """Baseline mean, sample sd (ddof = 1) and number of seasons with a value, each (feature, year)."""
+    """Baseline mean, sample sd (ddof = 1), number of seasons with a value, and exact flatness, (feature, year).
+
+    ``flat`` is True where every baseline value is the same number (max == min): no spread, detected
+    exactly, whatever the rounding of the sd.
+    """
 
     mean: np.ndarray
     sd: np.ndarray
     count: np.ndarray  # int
+    flat: np.ndarray  # bool
+
+
+def _distinct_rows(members: np.ndarray, fixed: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct membership rows and, for each season-year, the row it uses."""
+    if fixed or (members.shape[0] and (members == members[:1]).all()):
+        return members[:1], np.zeros(members.shape[0], dtype=np.int64)
+    rows, inverse = np.unique(members, axis=0, return_inverse=True)
+    return rows, inverse.reshape(-1)
 
 
 def baseline_statistics(values: np.ndarray, baseline: Baseline) -> BaselineStatistics:
-    """Mean, sd (ddof = 1) and count of ``values`` (feature, year) over each season-year's baseline seasons.
+    """Mean, sd (ddof = 1), count and flatness of ``values`` (feature, year) over each baseline.
 
-    NaN values drop out. A fixed baseline is computed once (two-pass mean and squared deviations); a moving
-    one as sums over the membership matrix of values centred by each feature's mean, to keep precision.
+    NaN values drop out. Each distinct baseline (one for a fixed baseline, one per season-year for a
+    trailing one) is computed directly from its own seasons: mean, then squared deviations from it (two
+    passes). So a season-year's statistics depend only on its baseline seasons' values, never on which
+    other years the record or the request holds, and a trailing window equals the same seasons as a fixed
+    baseline to the last bit.
     """
     values = np.asarray(values, dtype=np.float64)
-    members = np.asarray(baseline.members, dtype=bool)
-    has = ~np.isnan(values)
     n_feature, n_year = values.shape
-    if n_year and (members == members[:1]).all():
-        # one normal for every season-year: compute it once, directly
-        row = members[0]
-        sample = values[:, row]
-        count = np.count_nonzero(~np.isnan(sample), axis=1).astype(np.float64)
+    members = np.asarray(baseline.members, dtype=bool)
+    rows, row_of_year = _distinct_rows(members, baseline.fixed)
+    n_row = rows.shape[0]
+    mean = np.full((n_feature, n_row), np.nan)
+    sd = np.full((n_feature, n_row), np.nan)
+    count = np.zeros((n_feature, n_row), dtype=np.int64)
+    flat = np.zeros((n_feature, n_row), dtype=bool)
+    for r in range(n_row):
+        sample = values[:, rows[r]]
+        has = ~np.isnan(sample)
+        n = np.count_nonzero(has, axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
-            mean = np.nansum(sample, axis=1) / count
-            squares = np.nansum((sample - mean[:, None]) ** 2, axis=1)
-            variance = squares / (count - 1.0)
-        shape = (n_feature, n_year)
-        return BaselineStatistics(
-            mean=np.broadcast_to(np.where(count >= 1, mean, np.nan)[:, None], shape).copy(),
-            sd=np.broadcast_to(np.where(count >= 2, np.sqrt(variance), np.nan)[:, None], shape).copy(),
-            count=np.broadcast_to(count.astype(np.int64)[:, None], shape).copy(),
-        )
-    # a moving normal: sums over each row's members (einsum loops in C, no BLAS threads), on values centred
-    # by each feature's own mean so that the sums of squares keep their precision
-    weights = members.astype(np.float64)  # (year, season)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        centre = np.nansum(values, axis=1, keepdims=True) / np.maximum(has.sum(axis=1, keepdims=True), 1)
-    shifted = np.where(has, values - centre, 0.0)
-    count = np.einsum("fs,ts->ft", has.astype(np.float64), weights)
-    total = np.einsum("fs,ts->ft", shifted, weights)
-    squares = np.einsum("fs,ts->ft", shifted * shifted, weights)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean_shifted = total / count
-        variance = (squares - count * mean_shifted * mean_shifted) / (count - 1.0)
-    variance = np.where(count >= 2, np.maximum(variance, 0.0), np.nan)
-    mean = np.where(count >= 1, mean_shifted + centre, np.nan)
-    return BaselineStatistics(mean=mean, sd=np.sqrt(variance), count=np.rint(count).astype(np.int64))
+            m = np.where(has, sample, 0.0).sum(axis=1) / n
+            deviation = np.where(has, sample - m[:, None], 0.0)
+            variance = (deviation * deviation).sum(axis=1) / (n - 1.0)
+        high = np.where(has, sample, -np.inf).max(axis=1, initial=-np.inf)
+        low = np.where(has, sample, np.inf).min(axis=1, initial=np.inf)
+        count[:, r] = n
+        mean[:, r] = np.where(n >= 1, m, np.nan)
+        sd[:, r] = np.where(n >= 2, np.sqrt(np.maximum(variance, 0.0)), np.nan)
+        flat[:, r] = (n >= 1) & (high == low)
+    return BaselineStatistics(
+        mean=mean[:, row_of_year],
+        sd=sd[:, row_of_year],
+        count=count[:, row_of_year],
+        flat=flat[:, row_of_year],
+    )
 
 
 @dataclass(frozen=True)
@@ -99,29 +139,36 @@ class Anomaly:
     reason: np.ndarray  # int8
 
 
+def round_z(z: np.ndarray) -> np.ndarray:
+    """z rounded to Z_DECIMALS places (see there); NaN stays NaN."""
+    return np.round(z, Z_DECIMALS)
+
+
 def anomaly(
     values: np.ndarray, stats: BaselineStatistics, *, min_seasons: int = MIN_BASELINE_SEASONS
 ) -> Anomaly:
-    """z = (value - baseline mean) / baseline sd, null without enough baseline seasons or spread."""
+    """z = (value - baseline mean) / baseline sd, rounded to Z_DECIMALS; null without enough seasons or spread.
+
+    No spread: every baseline value equal (exact), or an sd below SPREAD_TOLERANCE x (|mean| + 1).
+    """
     values = np.asarray(values, dtype=np.float64)
-    # a spread below 1e-9 of the values' scale is rounding, not spread (a constant series, summed by products)
     scale = np.abs(stats.mean) + 1.0
     few = stats.count < min_seasons
-    flat = ~few & ~(stats.sd > 1e-9 * scale)
+    flat = ~few & (stats.flat | ~(stats.sd > SPREAD_TOLERANCE * scale))
     reason = np.full(values.shape, OK, dtype=np.int8)
     reason[np.isnan(values)] = NO_VALUE
     reason[few] = FEW_SEASONS
     reason[flat] = NO_SPREAD
     with np.errstate(invalid="ignore", divide="ignore"):
         z = (values - stats.mean) / stats.sd
-    z = np.where(reason == OK, z, np.nan)
+    z = np.where(reason == OK, round_z(z), np.nan)
     return Anomaly(z=z, reason=reason)
 
 
 def standardized_anomaly(values: np.ndarray) -> Anomaly:
-    """For SPI/SPEI the value is already a standard-normal deviate: z is the value itself."""
+    """For SPI/SPEI the value is already a standard-normal deviate: z is the value (rounded as every z)."""
     values = np.asarray(values, dtype=np.float64)
-    z = np.where(np.isfinite(values), values, np.nan)
+    z = round_z(np.where(np.isfinite(values), values, np.nan))
     reason = np.where(np.isnan(z), NO_VALUE, OK).astype(np.int8)
     return Anomaly(z=z, reason=reason)
 
@@ -157,7 +204,10 @@ def anomaly_warnings(
     baseline_label: str,
     min_seasons: int = MIN_BASELINE_SEASONS,
 ) -> list[dict[str, Any]]:
-    """Warnings for the null z of ``reason`` (feature, year over ``years``): one per feature and reason."""
+    """Warnings for the null z of ``reason`` (feature, year over ``years``): one per feature and reason.
+
+    Codes few_baseline_seasons and no_spread; ``year`` is set when the warning concerns one season-year.
+    """
     warnings: list[dict[str, Any]] = []
     for code, why in ((FEW_SEASONS, "few"), (NO_SPREAD, "flat")):
         hit = reason == code
@@ -177,12 +227,13 @@ def anomaly_warnings(
                     f"so it has no spread to scale an anomaly"
                 )
             warnings.append(
-                {
-                    "feature_id": feature_ids[int(f)],
-                    "indicator": indicator,
-                    "year": when[0] if len(when) == 1 else None,
-                    "reason": f"{text}; z and class left null for {_year_ranges(when)}",
-                }
+                warning(
+                    "few_baseline_seasons" if why == "few" else "no_spread",
+                    f"{text}; z and class left null for {_year_ranges(when)}",
+                    feature_id=feature_ids[int(f)],
+                    indicator=indicator,
+                    year=when[0] if len(when) == 1 else None,
+                )
             )
     return warnings
 

@@ -152,6 +152,8 @@ register(
         source="Season sum of daily precipitation (PRCPTOT-like, but over all days; " + ETCCDI + ")",
         family="precipitation",
         compute=prcp_total,
+        variables=("prcp",),
+        reduction="sum",
         percent_of_normal=True,
     )
 )
@@ -163,6 +165,8 @@ register(
         source="Wet-day definition RR >= 1 mm of the " + ETCCDI,
         family="count",
         compute=wet_days,
+        variables=("prcp",),
+        reduction="count",
     )
 )
 register(
@@ -173,6 +177,8 @@ register(
         source="Daily mean as (TX + TN) / 2, common practice (" + ETCCDI + ")",
         family="temperature",
         compute=tmean,
+        variables=("tmax", "tmin"),
+        reduction="mean",
     )
 )
 register(
@@ -183,6 +189,8 @@ register(
         source="Season mean of TX (" + ETCCDI + ")",
         family="temperature",
         compute=tmax_mean,
+        variables=("tmax",),
+        reduction="mean",
     )
 )
 register(
@@ -193,6 +201,8 @@ register(
         source="Season mean of TN (" + ETCCDI + ")",
         family="temperature",
         compute=tmin_mean,
+        variables=("tmin",),
+        reduction="mean",
     )
 )
 register(
@@ -203,5 +213,7 @@ register(
         source="DTR, mean of TX - TN (" + ETCCDI + ")",
         family="temperature",
         compute=dtr,
+        variables=("tmax", "tmin"),
+        reduction="mean",
     )
 )

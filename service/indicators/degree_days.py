@@ -115,6 +115,8 @@ register(
         "band as in Schlenker & Roberts 2009, PNAS 106:15594",
         family="temperature",
         compute=gdd,
+        variables=("tmax", "tmin"),
+        reduction="sum",
         parameters={
             "base": Parameter(10.0, "degC", "lower threshold: degrees below it do not count", -30.0, 50.0),
             "cap": Parameter(30.0, "degC", "upper threshold: hours above it count as the cap", -20.0, 60.0),
@@ -131,6 +133,8 @@ register(
         "Roberts 2009, PNAS 106:15594",
         family="temperature",
         compute=edd,
+        variables=("tmax", "tmin"),
+        reduction="sum",
         parameters={
             "threshold": Parameter(29.0, "degC", "degrees above this threshold count", -20.0, 60.0),
         },

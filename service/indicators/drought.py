@@ -316,9 +316,20 @@ def generalized_logistic_probability(x: np.ndarray, fit: GeneralizedLogisticFit)
 
 
 def standard_normal_index(probability: np.ndarray) -> np.ndarray:
-    """Phi^-1 of a probability, bounded to +-INDEX_LIMIT (scipy.stats.norm.ppf); NaN stays NaN."""
-    p = np.clip(probability, _PROBABILITY_FLOOR, 1.0 - _PROBABILITY_FLOOR)
-    return stats.norm.ppf(p)
+    """Phi^-1 of a probability (scipy.stats.norm.ppf), clipped to exactly +-INDEX_LIMIT; NaN stays NaN.
+
+    A probability at or beyond Phi(+-5) gives exactly -5 or +5, so a clipped value is recognisable (the
+    table flags it at_clip).
+    """
+    p = np.asarray(probability, dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        inside = stats.norm.ppf(np.clip(p, _PROBABILITY_FLOOR, 1.0 - _PROBABILITY_FLOOR))
+        out = np.where(
+            p <= _PROBABILITY_FLOOR,
+            -INDEX_LIMIT,
+            np.where(p >= 1.0 - _PROBABILITY_FLOOR, INDEX_LIMIT, inside),
+        )
+    return np.where(np.isnan(p), np.nan, out)
 
 
 def _baseline_rows(baseline: Baseline) -> tuple[np.ndarray, np.ndarray]:
@@ -374,8 +385,11 @@ register(
         "likelihood from Thom's approximation (Edwards & McKee 1997)",
         family="drought",
         compute=spi,
+        variables=("prcp",),
+        reduction="standardized",
         standardized=True,
         uses_baseline=True,
+        bounds=(-INDEX_LIMIT, INDEX_LIMIT),
     )
 )
 register(
@@ -390,7 +404,10 @@ register(
         "PET by Hargreaves, FAO-56 (Allen et al. 1998) eq. 52 with Ra from eq. 21",
         family="drought",
         compute=spei,
+        variables=("prcp", "tmax", "tmin"),
+        reduction="standardized",
         standardized=True,
         uses_baseline=True,
+        bounds=(-INDEX_LIMIT, INDEX_LIMIT),
     )
 )

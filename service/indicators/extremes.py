@@ -41,7 +41,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.indicators.base import Baseline, Family, Indicator, SeasonCube, register
+from service.indicators.base import Baseline, Family, Indicator, Reduction, SeasonCube, register
 from service.indicators.basic import WET_DAY_MM, count_days, longest_run, null_where_empty, reduce_in_blocks
 
 WINDOW_HALF_WIDTH = 2  # days either side of the calendar day in a percentile pool (5-day window)
@@ -472,8 +472,9 @@ def hotdry_spell(cube: SeasonCube, baseline: Baseline, params: Mapping[str, floa
 
 _ZHANG = "Zhang et al. 2011, WIREs Climate Change 2:851; Klein Tank et al. 2009, WMO WCDMP-No. 72"
 
-_ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
-    # name, ETCCDI spelling, unit, definition, family, compute, percent_of_normal, uses_baseline
+_ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool, tuple[str, ...], Reduction]] = [
+    # name, ETCCDI spelling, unit, definition, family, compute, percent_of_normal, uses_baseline, variables,
+    # reduction
     (
         "cdd",
         "CDD",
@@ -483,6 +484,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         cdd,
         False,
         False,
+        ("prcp",),
+        "run",
     ),
     (
         "cwd",
@@ -493,6 +496,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         cwd,
         False,
         False,
+        ("prcp",),
+        "run",
     ),
     (
         "r10mm",
@@ -503,6 +508,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         r10mm,
         False,
         False,
+        ("prcp",),
+        "count",
     ),
     (
         "r20mm",
@@ -513,6 +520,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         r20mm,
         False,
         False,
+        ("prcp",),
+        "count",
     ),
     (
         "rx1day",
@@ -523,6 +532,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         rx1day,
         True,
         False,
+        ("prcp",),
+        "extreme",
     ),
     (
         "rx5day",
@@ -533,6 +544,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         rx5day,
         True,
         False,
+        ("prcp",),
+        "extreme",
     ),
     (
         "sdii",
@@ -543,6 +556,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         sdii,
         False,
         False,
+        ("prcp",),
+        "mean",
     ),
     (
         "r95ptot",
@@ -554,6 +569,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         r95ptot,
         True,
         True,
+        ("prcp",),
+        "sum",
     ),
     (
         "su",
@@ -564,6 +581,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         su,
         False,
         False,
+        ("tmax",),
+        "count",
     ),
     (
         "tr",
@@ -574,6 +593,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         tr,
         False,
         False,
+        ("tmin",),
+        "count",
     ),
     (
         "fd",
@@ -584,6 +605,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         fd,
         False,
         False,
+        ("tmin",),
+        "count",
     ),
     (
         "id",
@@ -594,6 +617,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         icing_days,
         False,
         False,
+        ("tmax",),
+        "count",
     ),
     (
         "txx",
@@ -604,6 +629,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         txx,
         False,
         False,
+        ("tmax",),
+        "extreme",
     ),
     (
         "tnn",
@@ -614,6 +641,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         tnn,
         False,
         False,
+        ("tmin",),
+        "extreme",
     ),
     (
         "tx90p",
@@ -625,6 +654,8 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         tx90p,
         False,
         True,
+        ("tmax",),
+        "share",
     ),
     (
         "tn10p",
@@ -636,10 +667,23 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool]] = [
         tn10p,
         False,
         True,
+        ("tmin",),
+        "share",
     ),
 ]
 
-for _name, _etccdi, _unit, _definition, _family, _compute, _percent, _uses_baseline in _ENTRIES:
+for (
+    _name,
+    _etccdi,
+    _unit,
+    _definition,
+    _family,
+    _compute,
+    _percent,
+    _uses_baseline,
+    _variables,
+    _reduction,
+) in _ENTRIES:
     register(
         Indicator(
             name=_name,
@@ -648,6 +692,8 @@ for _name, _etccdi, _unit, _definition, _family, _compute, _percent, _uses_basel
             source=f"ETCCDI index {_etccdi} ({_ZHANG}), computed over the season's days",
             family=_family,
             compute=_compute,  # type: ignore[arg-type]
+            variables=_variables,
+            reduction=_reduction,
             percent_of_normal=_percent,
             uses_baseline=_uses_baseline,
         )
@@ -664,6 +710,8 @@ register(
         + ") combined with the ETCCDI dry day RR < 1 mm",
         family="count",
         compute=hotdry_days,
+        variables=("tmax", "prcp"),
+        reduction="count",
         uses_baseline=True,
     )
 )
@@ -675,6 +723,8 @@ register(
         source="Longest run (as in ETCCDI CDD) of hot-dry days; TX90p threshold of " + _ZHANG,
         family="count",
         compute=hotdry_spell,
+        variables=("tmax", "prcp"),
+        reduction="run",
         uses_baseline=True,
     )
 )

@@ -15,23 +15,30 @@ A window holds the days whose month-day lies between its start and its end, comp
   season on the next day that does; an end that does not exist ends it on the last day before.
 
 Only season-years whose whole span of calendar days lies inside the data's first and last date are cut
-(a November-April season on data starting 1 January begins with the season-year of the next year). Days of
-a season-year absent from the data, or with any of tmax, tmin, prcp missing, count as missing; when the
-missing share of a (feature, season-year) exceeds ``max_missing_share`` (0.10 by default, common practice)
-that season-year is blanked (all its days NaN in the cube) so no indicator reports a short total.
+(a November-April season on data starting 1 January begins with the season-year of the next year).
+
+Completeness counts only the variables an indicator reads: for an indicator of tmax and tmin, a day absent
+from the data or missing either of them is missing; a gap in precipitation does not count against it. When
+the missing share of a (feature, season-year) exceeds ``max_missing_share`` (0.10 by default, common
+practice) that season-year is blank for the indicator (all its days NaN), so no indicator reports a short
+total. A season-year that misses fewer days is a *partial season*: the request's ``partial_seasons`` policy
+decides its sums and counts (indicators of reduction "sum" or "count", and the totals that SPI and SPEI
+standardize): "scale" (the default) multiplies them by expected days / days present, "null" leaves them
+null, "as_is" keeps the sum over the days present. Means, extremes, run lengths and shares of days always
+use the days present. Either way the row's notes say ``partial_season``.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 from pydantic import ValidationError
 
 from service.errors import FeatureError, RequestError, StoreFormatError
-from service.indicators.base import DailySeries, SeasonCube
+from service.indicators.base import VARIABLES, DailySeries, SeasonCube
 from service.schemas import MonthsSeason, PropertySeason, Season, WindowSeason
 
 DEFAULT_MAX_MISSING_SHARE = (
@@ -85,13 +92,87 @@ class SeasonGroup:
 
 @dataclass(frozen=True)
 class SeasonCut:
-    """A season cut from a daily series: the cube and each (feature, season-year)'s completeness."""
+    """A season cut from a daily series: the cube and what each (feature, season-year) has of its days.
 
-    cube: SeasonCube
+    Completeness counts only the variables asked about: :meth:`present_days` of ("prcp",) ignores gaps in
+    tmax. :meth:`cube_for` gives the cube an indicator sees: only its variables, with the seasons that are
+    incomplete for them blank.
+    """
+
+    cube: SeasonCube  # every variable cut, nothing blanked
     season: SeasonDefinition
     expected_days: np.ndarray  # (year,) int days of each season-year in the calendar
-    present_share: np.ndarray  # (feature, year) float64 share of those days with tmax, tmin and prcp present
-    complete: np.ndarray  # (feature, year) bool: missing share within the allowed share
+    max_missing_share: float
+    _cache: dict[Any, Any] = field(default_factory=dict, repr=False, compare=False)
+
+    def present_days(self, variables: Sequence[str]) -> np.ndarray:
+        """Days with every one of ``variables`` present, per (feature, season-year) (int64)."""
+        key = ("present", variable_set(variables))
+        if key not in self._cache:
+            missing = None
+            for name in key[1]:
+                values = getattr(self.cube, name)
+                if values is None:
+                    raise RuntimeError(f"variable {name!r} was not cut for season {self.season.label}")
+                missing = np.isnan(values) if missing is None else missing | np.isnan(values)
+            if missing is None:
+                raise RuntimeError("present_days needs at least one variable")
+            self._cache[key] = np.count_nonzero(~missing, axis=-1).astype(np.int64)
+        return self._cache[key]
+
+    def present_share(self, variables: Sequence[str]) -> np.ndarray:
+        """Share of each season-year's calendar days with every one of ``variables`` present (float64)."""
+        expected = self.expected_days[None, :]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(expected > 0, self.present_days(variables) / np.maximum(expected, 1), 0.0)
+
+    def complete(self, variables: Sequence[str]) -> np.ndarray:
+        """(feature, season-year) whose missing share for ``variables`` is within max_missing_share."""
+        return (1.0 - self.present_share(variables)) <= self.max_missing_share + 1e-12
+
+    def partial(self, variables: Sequence[str]) -> np.ndarray:
+        """(feature, season-year) that are complete for ``variables`` but miss some of their days."""
+        return self.complete(variables) & (self.present_days(variables) < self.expected_days[None, :])
+
+    def total_factor(self, variables: Sequence[str], policy: str) -> np.ndarray | None:
+        """Factor for season totals under a partial_seasons policy (None when it is 1 everywhere).
+
+        "scale": expected days / days present; "null": NaN on partial seasons; "as_is": 1.
+        """
+        partial = self.partial(variables)
+        if policy == "as_is" or not partial.any():
+            return None
+        if policy == "null":
+            return np.where(partial, np.nan, 1.0)
+        if policy == "scale":
+            present = self.present_days(variables)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                return np.where(partial, self.expected_days[None, :] / np.maximum(present, 1), 1.0)
+        raise RequestError(
+            f"partial_seasons {policy!r} is not one of 'scale', 'null', 'as_is'", field="partial_seasons"
+        )
+
+    def cube_for(self, variables: Sequence[str], policy: str = "scale") -> SeasonCube:
+        """The cube an indicator reading ``variables`` sees (see the class docstring), cached per set."""
+        names = variable_set(variables)
+        key = ("cube", names, policy)
+        if key not in self._cache:
+            complete = self.complete(names)
+            blank = None if complete.all() else ~complete
+            arrays: dict[str, np.ndarray | None] = {}
+            for name in VARIABLES:
+                values = getattr(self.cube, name) if name in names else None
+                if values is not None and blank is not None:
+                    values = values.copy()
+                    values[blank] = np.nan
+                arrays[name] = values
+            self._cache[key] = replace(self.cube, **arrays, total_factor=self.total_factor(names, policy))
+        return self._cache[key]
+
+
+def variable_set(variables: Sequence[str]) -> tuple[str, ...]:
+    """Distinct variables in the order of VARIABLES (a stable key for a set of variables)."""
+    return tuple(v for v in VARIABLES if v in variables)
 
 
 # --- season specifications ----------------------------------------------------------------------------------
@@ -288,20 +369,28 @@ def cut_season(
     *,
     max_missing_share: float = DEFAULT_MAX_MISSING_SHARE,
     buffers: dict[str, np.ndarray] | None = None,
+    variables: Sequence[str] | None = None,
 ) -> SeasonCut:
     """Cut the rows ``feature_index`` of ``daily`` into season-years (feature, season_year, day).
 
     Vectorised over features and days: one slice copy per variable and season-year. The cube holds every
-    season-year the record serves whole, in the series' dtype (float32 stays float32); a (feature,
-    season-year) whose share of missing days (absent from the record, or any variable NaN) exceeds
-    ``max_missing_share`` is NaN throughout and ``complete`` is False there.
+    season-year the record serves whole, in the series' dtype (float32 stays float32), for ``variables``
+    (default: every variable the series holds; the others are None). Nothing is blanked here: a day absent
+    from the record or NaN counts as missing in :meth:`SeasonCut.present_days`, and :meth:`SeasonCut.cube_for`
+    blanks the seasons whose missing share for an indicator's variables exceeds ``max_missing_share``.
 
     ``buffers`` (a dict the caller keeps between calls) lets a loop over feature blocks reuse the cube's
     arrays instead of allocating fresh ones (measured about twice as fast); the cube of the previous call
     with the same dict is then overwritten, so use it only when that cube is no longer needed.
     """
     if feature_index is None:
-        feature_index = np.arange(daily.tmax.shape[0], dtype=np.int64)
+        feature_index = np.arange(daily.n_features, dtype=np.int64)
+    wanted = variable_set(daily.variables if variables is None else variables)
+    absent = [v for v in wanted if getattr(daily, v) is None]
+    if absent:
+        raise RuntimeError(
+            f"the daily series holds no {absent[0]!r}; resolve the request against its variables"
+        )
     feature_index = np.asarray(feature_index, dtype=np.int64)
     keys = _date_keys(daily.year, daily.month, daily.day)
     if keys.size > 1 and np.any(np.diff(keys) <= 0):
@@ -346,24 +435,10 @@ def cut_season(
             out[:, y, n:] = np.nan
         return out
 
-    tmax, tmin, prcp = gather("tmax", daily.tmax), gather("tmin", daily.tmin), gather("prcp", daily.prcp)
-    missing = np.isnan(tmax)
-    missing |= np.isnan(tmin)
-    missing |= np.isnan(prcp)
-    present = np.count_nonzero(~missing, axis=-1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        present_share = np.where(served.expected_days > 0, present / np.maximum(served.expected_days, 1), 0.0)
-    complete = (1.0 - present_share) <= max_missing_share + 1e-12
-    if not complete.all():
-        blank = ~complete
-        tmax[blank] = np.nan
-        tmin[blank] = np.nan
-        prcp[blank] = np.nan
+    arrays = {name: gather(name, getattr(daily, name)) if name in wanted else None for name in VARIABLES}
     cube = SeasonCube(
         years=served.years,
-        tmax=tmax,
-        tmin=tmin,
-        prcp=prcp,
+        **arrays,
         in_season=in_season,
         dayofyear=np.where(in_season, daily.dayofyear[safe], 0),
         time_index=time_index,
@@ -374,30 +449,5 @@ def cut_season(
         cube=cube,
         season=season,
         expected_days=served.expected_days,
-        present_share=present_share.astype(np.float64),
-        complete=complete,
+        max_missing_share=float(max_missing_share),
     )
-
-
-def incomplete_season_warnings(
-    cut: SeasonCut, feature_ids: Sequence[str], years: np.ndarray, max_missing_share: float
-) -> list[dict[str, Any]]:
-    """One warning per (feature, season-year) of ``years`` left null because too many days are missing."""
-    rows = np.searchsorted(cut.cube.years, years)
-    complete = cut.complete[:, rows]
-    warnings: list[dict[str, Any]] = []
-    for f, y in zip(*np.nonzero(~complete), strict=True):
-        missing = 1.0 - cut.present_share[f, rows[y]]
-        warnings.append(
-            {
-                "feature_id": feature_ids[int(cut.cube.feature_index[f])],
-                "indicator": None,
-                "year": int(years[y]),
-                "reason": (
-                    f"season {cut.season.label} of {int(years[y])}: {missing:.1%} of its "
-                    f"{int(cut.expected_days[rows[y]])} days are missing (allowed {max_missing_share:.0%}); "
-                    f"its values are left null"
-                ),
-            }
-        )
-    return warnings

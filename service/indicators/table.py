@@ -32,10 +32,20 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy import sparse
 
 from service.errors import OutOfRangeError, RequestError
 from service.indicators import baselines, classes, seasons, sequences
-from service.indicators.base import Baseline, DailySeries, Indicator, get_indicator
+from service.indicators.base import (
+    SCALED_REDUCTIONS,
+    VARIABLES,
+    Baseline,
+    DailySeries,
+    Indicator,
+    IndicatorValues,
+    ParameterValue,
+    get_indicator,
+)
 from service.schemas import (
     FixedBaseline,
     IndicatorRequest,
@@ -44,10 +54,16 @@ from service.schemas import (
     SpellCondition,
     YearSpan,
 )
+from service.warning_codes import WARNING_CODES, notes_text, warning
 
 DEFAULT_INDICATORS = ("prcp_total", "wet_days", "tmean", "tmax_mean", "tmin_mean", "cdd", "gdd", "edd", "spi")
 DEFAULT_PAIR = ("prcp_total", "tmean")
-DEFAULT_BASELINE_SEASONS = 10  # common practice: a normal of about a decade
+# The default baseline: the first 30 season-years the data serve whole (all of them when fewer). WMO-No. 1090
+# (2012) asks for at least 30 years of record to fit SPI, and WMO climate normals span 30 years; with the
+# 10 seasons used before, a stationary Monte Carlo gave SPI <= -2 in 5.3 % of seasons instead of 2.3 %.
+DEFAULT_BASELINE_SEASONS = 30
+# Distribution-fitted and percentile indices on fewer baseline seasons get the warning short_baseline_fit.
+MIN_FIT_SEASONS = 30
 # Features are cut and computed in blocks of about this many daily values per variable (8 M, 64 MB of
 # float64): every feature's row is independent, and blocks keep the cubes and the indicators' temporaries
 # small enough to stay fast (measured: 3x faster than one cube of 5,000 features x 48 years).
@@ -68,18 +84,20 @@ class PlannedIndicator:
 
     column: str
     indicator: Indicator
-    params: dict[str, float]
+    params: dict[str, ParameterValue]
 
 
 # --- names --------------------------------------------------------------------------------------------------
 
 
-def _number_text(value: float) -> str:
-    """8.0 -> '8', 29.5 -> '29p5', -1.5 -> 'm1p5' (safe in a column name)."""
+def _number_text(value: ParameterValue) -> str:
+    """8.0 -> '8', 29.5 -> '29p5', -1.5 -> 'm1p5' (safe in a column name); a method word stays as it is."""
+    if isinstance(value, str):
+        return value
     return f"{value:g}".replace("-", "m").replace(".", "p").replace("+", "")
 
 
-def column_name(indicator: Indicator, params: Mapping[str, float]) -> str:
+def column_name(indicator: Indicator, params: Mapping[str, ParameterValue]) -> str:
     """The plain name with default parameters, else the name with every parameter and its value."""
     if all(params[p] == spec.default for p, spec in indicator.parameters.items()):
         return indicator.name
@@ -185,22 +203,61 @@ def _date_text(year: np.ndarray, month: np.ndarray, day: np.ndarray) -> str:
     return f"{year[0]:04d}-{month[0]:02d}-{day[0]:02d} to {year[-1]:04d}-{month[-1]:02d}-{day[-1]:02d}"
 
 
-def resolve_request(request: IndicatorRequest, dates: Any, calendar: str | None = None) -> IndicatorRequest:
+def resolve_request(
+    request: IndicatorRequest,
+    dates: Any,
+    calendar: str | None = None,
+    variables: Sequence[str] | None = None,
+) -> IndicatorRequest:
     """The request with every default filled from the data and every name checked against the catalog.
 
     ``dates`` has int arrays ``year``, ``month``, ``day`` (and ``dayofyear``) for every time step; the
     calendar is ``calendar``, else ``dates.calendar``, else inferred from the dates (pass the store's).
-    Fills: indicators (the default set), every indicator's parameters, the baseline (the first ten
-    season-years served whole, fewer if the data are shorter but at least 3), years (every season-year that
-    the baseline and the lags allow), the default pair (prcp_total with tmean when both are requested and
-    ``pairs`` was not given) and max_missing_share (0.10).
+    ``variables`` are the daily variables the dataset holds (default: tmax, tmin and prcp).
+    Fills: indicators (those of the default set that the variables allow), every indicator's parameters,
+    the baseline (the first 30 season-years served whole, all of them if the data are shorter, at least 3),
+    years (every season-year that the baseline and the lags allow), the default pair (prcp_total with
+    tmean when both are requested and ``pairs`` was not given) and max_missing_share (0.10).
     Raises OutOfRangeError for a baseline or years outside the data, UnknownIndicatorError and RequestError
-    for unknown names or parameters. Resolving a resolved request changes nothing.
+    for unknown names or parameters, RequestError for an indicator whose variable the dataset lacks.
+    Resolving a resolved request changes nothing.
     """
     year, month, day, calendar = _date_arrays(dates, calendar)
     ids, props = _request_features(request)
     groups = seasons.season_groups(request.season, ids, props)
-    return _resolve(request, groups, year, month, day, calendar)
+    return _resolve(request, groups, year, month, day, calendar, variables)
+
+
+def _indicator_specs(request: IndicatorRequest, variables: Sequence[str] | None) -> list[str | IndicatorSpec]:
+    """The requested indicators, or the defaults the variables allow; each checked against the variables."""
+    held = tuple(VARIABLES if variables is None else variables)
+    if request.indicators is None:
+        specs: list[str | IndicatorSpec] = [
+            n for n in DEFAULT_INDICATORS if set(get_indicator(n).variables) <= set(held)
+        ]
+        if not specs:
+            raise RequestError(
+                f"the dataset holds {', '.join(held) or 'no daily variable'}, and no default indicator can be "
+                f"computed from it; name indicators that use only these variables (GET /v1/indicators)",
+                field="indicators",
+            )
+        return specs
+    specs = list(request.indicators)
+    for i, spec in enumerate(specs):
+        name = spec if isinstance(spec, str) else spec.name
+        indicator = get_indicator(name)
+        lacking = [v for v in indicator.variables if v not in held]
+        if lacking:
+            raise RequestError(
+                f"indicators[{i}]: {name!r} needs daily {' and '.join(lacking)}, which the dataset does not hold "
+                f"(it holds {', '.join(held) or 'no daily variable'}); drop {name!r} or choose a dataset with "
+                f"{' and '.join(lacking)}",
+                field=f"indicators[{i}]",
+                pointer=f"/indicators/{i}",
+                indicator=name,
+                variable=lacking[0],
+            )
+    return specs
 
 
 def _resolve(
@@ -210,9 +267,10 @@ def _resolve(
     month: np.ndarray,
     day: np.ndarray,
     calendar: str,
+    variables: Sequence[str] | None = None,
 ) -> IndicatorRequest:
     """resolve_request once the season groups are known."""
-    specs = list(request.indicators) if request.indicators is not None else list(DEFAULT_INDICATORS)
+    specs = _indicator_specs(request, variables)
     if not specs:
         raise RequestError(
             "'indicators' is empty; name at least one indicator or leave it out", field="indicators"
@@ -368,11 +426,239 @@ def output_columns(request: IndicatorRequest, planned: Sequence[PlannedIndicator
     cols += [_pair_column(a, b) for a, b in request.pairs]
     for s in request.spells:
         cols += [f"{s.name}_run", f"{s.name}_count"]
-    cols.append("season_complete")
+    cols += ["season_complete", "notes"]
     return cols
 
 
 # --- computing ----------------------------------------------------------------------------------------------
+
+
+@dataclass
+class RawValues:
+    """Indicator values of some rows (features, or grid cells) over a season group's season-years.
+
+    Everything a season decides: values after blanking incomplete seasons, the partial_seasons policy and
+    the finite check; the share of days present per indicator (and, under "", for the row's union of
+    variables); and per indicator the (row, year) masks of warning codes that concern a value
+    (incomplete_season, partial_season, at_clip and those an indicator raises itself).
+    """
+
+    years: np.ndarray  # (year,) season-years of the cube
+    values: dict[str, np.ndarray]  # column -> (row, year) float64
+    present: dict[str, np.ndarray]  # column (or "" for all requested variables) -> (row, year) share of days
+    flags: dict[str, dict[str, np.ndarray]]  # column -> code -> (row, year) bool
+
+
+def _variables_of(planned: Sequence[PlannedIndicator]) -> tuple[str, ...]:
+    """The union of the planned indicators' variables, in the order of VARIABLES."""
+    return seasons.variable_set({v for p in planned for v in p.indicator.variables})
+
+
+def raw_values(
+    daily: DailySeries,
+    rows: np.ndarray,
+    season: seasons.SeasonDefinition,
+    planned: Sequence[PlannedIndicator],
+    request: IndicatorRequest,
+    buffers: dict[str, np.ndarray] | None = None,
+) -> RawValues:
+    """Each planned indicator's values for the rows ``rows`` of ``daily`` over the season's season-years.
+
+    Each indicator sees only its own variables; a season incomplete for them is null (incomplete_season);
+    a partial one follows request.partial_seasons for sums and counts (partial_season); a value on the
+    indicator's bounds is flagged at_clip.
+    """
+    if request.baseline is None or request.max_missing_share is None:
+        raise RequestError("the request is not resolved; call resolve_request first", field="baseline")
+    cut = seasons.cut_season(
+        daily,
+        season,
+        rows,
+        max_missing_share=request.max_missing_share,
+        buffers=buffers,
+        variables=_variables_of(planned),
+    )
+    baseline = baselines.make_baseline(cut.cube.years, request.baseline)
+    policy = request.partial_seasons
+    values: dict[str, np.ndarray] = {}
+    present: dict[str, np.ndarray] = {"": cut.present_share(_variables_of(planned))}
+    flags: dict[str, dict[str, np.ndarray]] = {}
+    expected = (cut.cube.feature_index.size, cut.cube.years.size)
+    for p in planned:
+        names = p.indicator.variables
+        result = p.indicator.compute(cut.cube_for(names, policy), baseline, p.params)
+        own = dict(result.flags) if isinstance(result, IndicatorValues) else {}
+        value = np.array(result.values if isinstance(result, IndicatorValues) else result, dtype=np.float64)
+        if value.shape != expected:
+            raise RuntimeError(
+                f"indicator {p.indicator.name!r} returned shape {value.shape}, expected {expected}"
+            )
+        complete = cut.complete(names)
+        value[~np.isfinite(value) | ~complete] = np.nan
+        if p.indicator.reduction in SCALED_REDUCTIONS:
+            factor = cut.total_factor(names, policy)
+            if factor is not None:
+                value *= factor
+        marks = {code: np.asarray(mask, dtype=bool) & complete for code, mask in own.items()}
+        marks["incomplete_season"] = ~complete
+        marks["partial_season"] = cut.partial(names)
+        if p.indicator.bounds is not None:
+            low, high = p.indicator.bounds
+            with np.errstate(invalid="ignore"):
+                marks["at_clip"] = (value <= low) | (value >= high)
+        values[p.column] = value
+        present[p.column] = cut.present_share(names)
+        flags[p.column] = marks
+    return RawValues(years=cut.cube.years, values=values, present=present, flags=flags)
+
+
+def concat_raw(parts: Sequence[RawValues]) -> RawValues:
+    """Raw values of consecutive row blocks of one season group, joined along the rows."""
+    if len(parts) == 1:
+        return parts[0]
+    first = parts[0]
+    return RawValues(
+        years=first.years,
+        values={c: np.concatenate([p.values[c] for p in parts]) for c in first.values},
+        present={c: np.concatenate([p.present[c] for p in parts]) for c in first.present},
+        flags={
+            c: {code: np.concatenate([p.flags[c][code] for p in parts]) for code in first.flags[c]}
+            for c in first.flags
+        },
+    )
+
+
+class _Notes:
+    """Warning codes of every (feature, year) of the output, per row and per indicator column, as bit sets."""
+
+    def __init__(self, n_feature: int, n_year: int, columns: Sequence[str]) -> None:
+        self.bit = {code: np.int64(1) << i for i, code in enumerate(WARNING_CODES)}
+        self.row = np.zeros((n_feature, n_year), dtype=np.int64)
+        self.column = {c: np.zeros((n_feature, n_year), dtype=np.int64) for c in columns}
+
+    def mark(self, code: str, rows: np.ndarray | slice, mask: np.ndarray, column: str | None = None) -> None:
+        """Add ``code`` where ``mask`` (rows, year) holds, to the row or to one indicator column."""
+        target = self.row if column is None else self.column[column]
+        target[rows] |= np.where(mask, self.bit[code], np.int64(0))
+
+    def texts(self, bits: np.ndarray) -> np.ndarray:
+        """The notes text (codes sorted, space-joined) of each bit set, as an object array."""
+        unique, inverse = np.unique(bits.ravel(), return_inverse=True)
+        words = []
+        for value in unique.tolist():
+            words.append(notes_text([code for code, b in self.bit.items() if value & int(b)]))
+        return np.asarray(words, dtype=object)[inverse].reshape(bits.shape)
+
+
+def _per_feature_warnings(
+    code: str,
+    mask: np.ndarray,
+    feature_ids: Sequence[str],
+    years: np.ndarray,
+    column: str | None,
+    text: str,
+    missing: np.ndarray | None = None,
+) -> list[dict[str, Any]]:
+    """One warning per feature with some True in ``mask`` (feature, year): ``text`` and the years it concerns.
+
+    ``text`` names the years where it says ``{years}`` (else they follow it); with ``missing`` (the share of
+    days missing, (feature, year)) each year carries its share.
+    """
+    out = []
+    for f in np.flatnonzero(mask.any(axis=1)):
+        cols = np.flatnonzero(mask[f])
+        when = [int(y) for y in years[cols]]
+        if missing is None:
+            listed = baselines._year_ranges(when)
+        else:
+            listed = ", ".join(f"{y} ({missing[f, c]:.1%} missing)" for y, c in zip(when, cols, strict=True))
+        reason = text.format(years=listed) if "{years}" in text else f"{text}: {listed}"
+        out.append(
+            warning(
+                code,
+                reason,
+                feature_id=feature_ids[int(f)],
+                year=when[0] if len(when) == 1 else None,
+                indicator=column,
+            )
+        )
+    return out
+
+
+_FLAG_TEXT = {
+    "incomplete_season": "more than {share:.0%} of the season's days are missing; values left null",
+    "partial_season": "some of the season's days are missing (at most {share:.0%}); {policy}",
+    "at_clip": "the value lies at the index's bound {bounds}; the true value is beyond it",
+}
+_POLICY_TEXT = {
+    "scale": "sums and counts are scaled to the whole season (x expected days / days present)",
+    "null": "sums and counts are left null",
+    "as_is": "sums and counts are over the days present only, not scaled",
+}
+
+
+def _flag_warnings(
+    raw: RawValues,
+    out_cols: np.ndarray,
+    planned: Sequence[PlannedIndicator],
+    request: IndicatorRequest,
+    season_label: str,
+    feature_ids: Sequence[str],
+    rows: np.ndarray,
+    notes: _Notes,
+    suffix: str = "",
+) -> list[dict[str, Any]]:
+    """Warnings and notes of the raw values' flags at the output years ``out_cols``.
+
+    A season flag (incomplete_season, partial_season) that holds for every requested indicator of a row is
+    one warning naming no indicator; otherwise one per indicator. ``suffix`` qualifies the text (cells).
+    """
+    years = raw.years[out_cols]
+    warnings: list[dict[str, Any]] = []
+    ids = [feature_ids[int(r)] for r in rows]
+    codes = sorted({code for marks in raw.flags.values() for code in marks}, key=list(WARNING_CODES).index)
+    for code in codes:
+        masks = {c: raw.flags[c][code][:, out_cols] for c in raw.flags if code in raw.flags[c]}
+        shared = None
+        if code in ("incomplete_season", "partial_season") and len(masks) == len(planned):
+            shared = np.logical_and.reduce(list(masks.values()))
+        template = _FLAG_TEXT.get(code, WARNING_CODES[code])
+        text = template.format(
+            share=request.max_missing_share,
+            policy=_POLICY_TEXT[request.partial_seasons],
+            bounds="",
+        )
+        shares = code in ("incomplete_season", "partial_season")
+        if shared is not None and shared.any():
+            notes.mark(code, rows, shared)
+            missing = 1.0 - raw.present[""][:, out_cols] if shares else None
+            warnings += _per_feature_warnings(
+                code, shared, ids, years, None, f"season {season_label}: {text}{suffix}", missing
+            )
+        for p in planned:
+            if p.column not in masks:
+                continue
+            own = masks[p.column] if shared is None else masks[p.column] & ~shared
+            if not own.any():
+                continue
+            notes.mark(code, rows, own, p.column)
+            bounds = p.indicator.bounds
+            detail = template.format(
+                share=request.max_missing_share,
+                policy=_POLICY_TEXT[request.partial_seasons],
+                bounds=f"({bounds[0]:g} or {bounds[1]:g})" if bounds else "",
+            )
+            missing = 1.0 - raw.present[p.column][:, out_cols] if shares else None
+            warnings += _per_feature_warnings(
+                code,
+                own,
+                ids,
+                years,
+                p.column,
+                f"{p.column}, season {season_label}: {detail}{suffix}",
+                missing,
+            )
+    return warnings
 
 
 @dataclass
@@ -387,38 +673,35 @@ class _Block:
     category: np.ndarray | None
 
 
-def _compute_block(
+def _derive_block(
     p: PlannedIndicator,
-    cut: seasons.SeasonCut,
+    value: np.ndarray,
     baseline: Baseline,
     request: IndicatorRequest,
-    feature_ids: Sequence[str],
+    ids: Sequence[str],
+    rows: np.ndarray,
     out_cols: np.ndarray,
+    years: np.ndarray,
+    notes: _Notes,
     warnings: list[dict[str, Any]],
 ) -> _Block:
-    """Value, z, class and the rest of one indicator on one season group."""
-    cube = cut.cube
-    raw = p.indicator.compute(cube, baseline, p.params)
-    value = np.array(raw, dtype=np.float64)
-    expected = (cube.feature_index.size, cube.years.size)
-    if value.shape != expected:
-        raise RuntimeError(
-            f"indicator {p.indicator.name!r} returned shape {value.shape}, expected {expected}"
-        )
-    value[~np.isfinite(value) | ~cut.complete] = np.nan
+    """z, class and the rest of one indicator from its values (feature, cube year)."""
     edges = request.classes.edges
     pct = None
     if p.indicator.standardized:
+        value = baselines.round_z(value)  # the value is its own z: both rounded alike, so spi_z == spi
         anomaly = baselines.standardized_anomaly(value)
     else:
         stats = baselines.baseline_statistics(value, baseline)
         anomaly = baselines.anomaly(value, stats)
-        group_ids = [feature_ids[int(i)] for i in cube.feature_index]
+        reason = anomaly.reason[:, out_cols]
+        notes.mark("few_baseline_seasons", rows, reason == baselines.FEW_SEASONS, p.column)
+        notes.mark("no_spread", rows, reason == baselines.NO_SPREAD, p.column)
         warnings += baselines.anomaly_warnings(
-            anomaly.reason[:, out_cols],
+            reason,
             _select(stats, out_cols),
-            feature_ids=group_ids,
-            years=cube.years[out_cols],
+            feature_ids=ids,
+            years=years[out_cols],
             indicator=p.column,
             baseline_label=baseline.label,
         )
@@ -426,13 +709,15 @@ def _compute_block(
             pct = baselines.percent_of_normal(value, stats)
     cls = classes.classify(anomaly.z, edges)
     lowest, _ = classes.class_range(edges)
-    category = classes.wmo_spi_category(value) if p.indicator.standardized else None
+    category = classes.wmo_spi_category(anomaly.z) if p.indicator.standardized else None
     return _Block(value, anomaly.z, cls, classes.category_codes(cls, lowest), pct, category)
 
 
 def _select(stats: baselines.BaselineStatistics, cols: np.ndarray) -> baselines.BaselineStatistics:
     """Baseline statistics at the season-year columns ``cols``."""
-    return baselines.BaselineStatistics(stats.mean[:, cols], stats.sd[:, cols], stats.count[:, cols])
+    return baselines.BaselineStatistics(
+        stats.mean[:, cols], stats.sd[:, cols], stats.count[:, cols], stats.flat[:, cols]
+    )
 
 
 _FLOAT, _INT, _CATEGORY = "float", "int", "category"
@@ -448,7 +733,7 @@ class _ColumnKind:
 
 
 def _column_kinds(planned: Sequence[PlannedIndicator], request: IndicatorRequest) -> dict[str, _ColumnKind]:
-    """The storage kind of every computed wide column (all but feature_id and year), in output order."""
+    """The storage kind of every computed wide column (all but feature_id, year and notes), in output order."""
     edges = request.classes.edges
     labels = {p.column: list(classes.class_labels(p.indicator.family, edges).values()) for p in planned}
     by_column = {p.column: p for p in planned}
@@ -486,25 +771,34 @@ def _column_kinds(planned: Sequence[PlannedIndicator], request: IndicatorRequest
     return kinds
 
 
-def _group_columns(
-    cut: seasons.SeasonCut,
+def derive_columns(
+    raw: RawValues,
     planned: Sequence[PlannedIndicator],
     request: IndicatorRequest,
     feature_ids: Sequence[str],
+    rows: np.ndarray,
     out_cols: np.ndarray,
+    notes: _Notes,
     warnings: list[dict[str, Any]],
 ) -> dict[str, np.ndarray]:
-    """Every computed column of one season group at the requested season-years, (feature, year) arrays."""
+    """Every computed column of the features ``rows`` at the output season-years, (feature, year) arrays.
+
+    ``raw`` holds the features' values over the season group's cube years (rows in the order of ``rows``);
+    z, classes, percent of normal, categories, lags, sequences, pairs and spells are computed here.
+    """
     if request.baseline is None:
         raise RequestError(
             "the request is not resolved (no baseline); call resolve_request first", field="baseline"
         )
-    baseline = baselines.make_baseline(cut.cube.years, request.baseline)
+    baseline = baselines.make_baseline(raw.years, request.baseline)
+    ids = [feature_ids[int(r)] for r in rows]
     n_class = len(classes.class_labels("count", request.classes.edges))
     out: dict[str, np.ndarray] = {}
     blocks: dict[str, _Block] = {}
     for p in planned:
-        block = _compute_block(p, cut, baseline, request, feature_ids, out_cols, warnings)
+        block = _derive_block(
+            p, raw.values[p.column], baseline, request, ids, rows, out_cols, raw.years, notes, warnings
+        )
         blocks[p.column] = block
         c = p.column
         out[c] = block.value[:, out_cols]
@@ -527,14 +821,27 @@ def _group_columns(
     for left, right in request.pairs:
         joint = classes.joint_codes(blocks[left].codes, blocks[right].codes, n_class)
         out[_pair_column(left, right)] = joint[:, out_cols]
+    first_full = baselines.first_full_year(raw.years, request.baseline)
     for spell in request.spells:
         condition = _spell_condition(spell.when, blocks)
         out[f"{spell.name}_run"] = sequences.spell_run(condition)[:, out_cols]
         count = sequences.spell_count(condition, spell.window)[:, out_cols]
         out[f"{spell.name}_count"] = count
-        warnings += _unknown_spell_warnings(spell, count, out_cols, cut, feature_ids)
-    out["season_complete"] = cut.present_share[:, out_cols]
+        known = _spell_window_known(raw.years, out_cols, spell.window, first_full)
+        unknown = np.isnan(count) & known[None, :]
+        notes.mark("spell_unknown", rows, unknown)
+        warnings += _unknown_spell_warnings(spell, unknown, raw.years[out_cols], ids)
+    out["season_complete"] = raw.present[""][:, out_cols]
     return out
+
+
+def _spell_window_known(
+    years: np.ndarray, out_cols: np.ndarray, window: int, first_full: int | None
+) -> np.ndarray:
+    """Per output year: whether the spell's window lies within the season-years with the whole baseline."""
+    if first_full is None:
+        return np.zeros(out_cols.size, dtype=bool)
+    return years[out_cols] - window + 1 >= first_full
 
 
 def _spell_condition(when: Sequence[SpellCondition], blocks: Mapping[str, _Block]) -> np.ndarray:
@@ -547,69 +854,111 @@ def _spell_condition(when: Sequence[SpellCondition], blocks: Mapping[str, _Block
 
 
 def _unknown_spell_warnings(
-    spell: Spell, count: np.ndarray, out_cols: np.ndarray, cut: seasons.SeasonCut, feature_ids: Sequence[str]
+    spell: Spell, unknown: np.ndarray, years: np.ndarray, ids: Sequence[str]
 ) -> list[dict[str, Any]]:
     """Per feature, the requested years whose spell count is null because a season in its window is unknown.
 
-    Years whose window reaches before the data are left to :func:`_spell_warnings` (one warning for all).
+    Years whose window reaches before the first season-year with the whole baseline are left to
+    :func:`_spell_warnings` (one warning for all communities).
     """
-    full_window = out_cols - spell.window + 1 >= 0
-    unknown = np.isnan(count) & full_window[None, :]
+    return _per_feature_warnings(
+        "spell_unknown",
+        unknown,
+        ids,
+        years,
+        None,
+        f"spell {spell.name!r}: {spell.name}_count left null for {{years}}: among the last {spell.window} "
+        f"seasons is one whose class or z is null (see the other warnings of this community)",
+    )
+
+
+def _spell_warnings(
+    request: IndicatorRequest, first_full: int | None, years: np.ndarray, notes: _Notes
+) -> list[dict[str, Any]]:
+    """A warning per spell whose count window reaches before the first season-year with the whole baseline.
+
+    With a fixed baseline that is the first season-year of the data; with a trailing baseline of N, the
+    N-th after it (the seasons before have no baseline of N seasons, so their z is null).
+    """
     warnings = []
-    for f in np.flatnonzero(unknown.any(axis=1)):
-        when = [int(y) for y in cut.cube.years[out_cols[unknown[f]]]]
+    for spell in request.spells:
+        if first_full is None:
+            short = np.ones(years.size, dtype=bool)
+            where = "any season-year with the whole baseline (the data hold none)"
+        else:
+            short = years - spell.window + 1 < first_full
+            where = f"the first season-year with the whole baseline ({first_full})"
+        if not short.any():
+            continue
+        notes.mark("spell_before_baseline", slice(None), np.broadcast_to(short, notes.row.shape))
+        when = [int(y) for y in years[short]]
         warnings.append(
-            {
-                "feature_id": feature_ids[int(cut.cube.feature_index[f])],
-                "indicator": None,
-                "year": when[0] if len(when) == 1 else None,
-                "reason": (
-                    f"spell {spell.name!r}: {spell.name}_count left null for {baselines._year_ranges(when)}: "
-                    f"among the last {spell.window} seasons is one whose class or z is null (see the other "
-                    f"warnings of this community)"
-                ),
-            }
+            warning(
+                "spell_before_baseline",
+                f"spell {spell.name!r}: {spell.name}_count needs the {spell.window} seasons up to each "
+                f"season-year, each with its whole baseline; left null for {baselines._year_ranges(when)}, "
+                f"whose window reaches before {where}",
+                year=when[0] if len(when) == 1 else None,
+            )
         )
     return warnings
 
 
-def _spell_warnings(request: IndicatorRequest, first_year: int, years: np.ndarray) -> list[dict[str, Any]]:
-    """A warning per spell whose count window reaches before the data for some requested years."""
+def _fit_warnings(
+    planned: Sequence[PlannedIndicator], request: IndicatorRequest, notes: _Notes
+) -> list[dict[str, Any]]:
+    """short_baseline_fit: one warning per distribution-fitted or percentile indicator on < 30 baseline seasons."""
+    spec = request.baseline
+    length = spec.end - spec.start + 1 if isinstance(spec, FixedBaseline) else spec.trailing  # type: ignore[union-attr]
+    label = f"{spec.start}-{spec.end}" if isinstance(spec, FixedBaseline) else f"trailing {length}"  # type: ignore[union-attr]
     warnings = []
-    for spell in request.spells:
-        short = years[years - spell.window + 1 < first_year]
-        if short.size:
-            warnings.append(
-                {
-                    "feature_id": None,
-                    "indicator": None,
-                    "year": int(short[0]) if short.size == 1 else None,
-                    "reason": (
-                        f"spell {spell.name!r}: {spell.name}_count needs the {spell.window} seasons up to each "
-                        f"season-year; left null for {baselines._year_ranges([int(y) for y in short])}, whose "
-                        f"window reaches before the first season-year of the data ({first_year})"
-                    ),
-                }
+    for p in planned:
+        if not p.indicator.uses_baseline or length >= MIN_FIT_SEASONS:
+            continue
+        notes.mark("short_baseline_fit", slice(None), np.ones(notes.row.shape, dtype=bool), p.column)
+        warnings.append(
+            warning(
+                "short_baseline_fit",
+                f"{p.column}: fitted on baseline {label}, {length} seasons, fewer than the {MIN_FIT_SEASONS} that "
+                f"WMO-No. 1090 asks for; its tails (values beyond about +-1.5, percentile thresholds) are less "
+                f"reliable. Give a baseline of at least {MIN_FIT_SEASONS} seasons where the data allow it",
+                indicator=p.column,
             )
+        )
     return warnings
 
 
 def compute_table(
-    daily: DailySeries, feature_ids: list[str], properties: list[dict], request: IndicatorRequest
+    daily: DailySeries,
+    feature_ids: list[str],
+    properties: list[dict],
+    request: IndicatorRequest,
+    *,
+    cells: CellAggregation | None = None,
 ) -> IndicatorTable:
-    """One row per (feature_id, year) of the request's years: values, z, classes, lags, pairs, spells.
+    """One row per (feature_id, year) of the request's years: values, z, classes, lags, pairs, spells, notes.
 
     ``daily`` is (feature, time) with rows in the order of ``feature_ids``; ``properties`` are the features'
-    properties (read only for a property season). The request is resolved against ``daily``'s dates first
-    (a resolved request stays as it is). Vectorised over features: loops run over indicators, season groups
-    and season-years only. Null values carry a reason in ``warnings`` (list of dicts with feature_id,
-    indicator, year, reason). ``layout="long"`` gives one row per (feature_id, year, indicator).
+    properties (read only for a property season). The request is resolved against ``daily``'s dates and
+    variables first (a resolved request stays as it is). Vectorised over features: loops run over
+    indicators, season groups and season-years only. Warnings (dicts with code, feature_id, year,
+    indicator, reason; see service/warning_codes.py) say why a value is null or flagged, and the ``notes``
+    column carries each row's codes. ``layout="long"`` gives one row per (feature_id, year, indicator).
+
+    With ``cells`` (aggregation "cells"), the rows of ``daily`` are grid cells, not features: each
+    indicator is computed per cell, then each feature's value is the weighted mean of its cells' values
+    (:func:`combine_cells`); z, classes, lags and spells are computed on that mean.
     """
-    n_feature = daily.tmax.shape[0]
-    if len(feature_ids) != n_feature:
-        raise RequestError(f"{len(feature_ids)} feature ids for a daily series of {n_feature} features")
+    n_rows = daily.n_features
+    n_feature = len(feature_ids)
+    if cells is None and n_feature != n_rows:
+        raise RequestError(f"{n_feature} feature ids for a daily series of {n_rows} features")
+    if cells is not None and cells.weights.shape != (n_feature, n_rows):
+        raise RequestError(
+            f"cell weights of shape {cells.weights.shape} for {n_feature} features and {n_rows} cells"
+        )
     groups = seasons.season_groups(request.season, feature_ids, properties)
-    request = _resolve(request, groups, daily.year, daily.month, daily.day, daily.calendar)
+    request = _resolve(request, groups, daily.year, daily.month, daily.day, daily.calendar, daily.variables)
     if request.years is None or request.indicators is None or request.max_missing_share is None:
         raise RuntimeError("resolve_request left a default unfilled")
     planned = plan_indicators(request.indicators)
@@ -621,35 +970,125 @@ def compute_table(
             full[name] = np.full((n_feature, years.size), -1, dtype=np.int64)
         else:
             full[name] = np.full((n_feature, years.size), np.nan)
+    presence = {p.column: np.full((n_feature, years.size), np.nan) for p in planned}
+    notes = _Notes(n_feature, years.size, [p.column for p in planned])
     warnings: list[dict[str, Any]] = []
-    first_year = None
+    first_full: int | None = None
     block_size = max(1, FEATURE_BLOCK_ELEMENTS // max(1, daily.year.size))
     buffers: dict[str, np.ndarray] = {}  # the cube arrays, reused block after block
     for group in groups:
-        for start in range(0, group.feature_index.size, block_size):
-            rows = group.feature_index[start : start + block_size]
-            cut = seasons.cut_season(
-                daily, group.season, rows, max_missing_share=request.max_missing_share, buffers=buffers
+        feature_rows = group.feature_index
+        source_rows = feature_rows if cells is None else cells.cells_of(feature_rows)
+        parts = [
+            raw_values(
+                daily, source_rows[start : start + block_size], group.season, planned, request, buffers
             )
-            out_cols = np.searchsorted(cut.cube.years, years)
-            if np.any(out_cols >= cut.cube.years.size) or np.any(cut.cube.years[out_cols] != years):
-                raise RuntimeError(
-                    "a requested season-year is not in the cube although the request was resolved"
-                )
-            first_year = (
-                int(cut.cube.years[0]) if first_year is None else max(first_year, int(cut.cube.years[0]))
-            )
-            warnings += seasons.incomplete_season_warnings(cut, feature_ids, years, request.max_missing_share)
-            columns = _group_columns(cut, planned, request, feature_ids, out_cols, warnings)
-            for name, values in columns.items():
-                full[name][rows] = values
-    if first_year is not None:
-        warnings += _spell_warnings(request, first_year, years)
+            for start in range(0, source_rows.size, block_size)
+        ]
+        if not parts:
+            continue
+        raw = concat_raw(parts)
+        out_cols = np.searchsorted(raw.years, years)
+        if np.any(out_cols >= raw.years.size) or np.any(raw.years[out_cols] != years):
+            raise RuntimeError("a requested season-year is not in the cube although the request was resolved")
+        if cells is not None:
+            raw = combine_cells(raw, cells, feature_rows, source_rows, request)
+            suffix = " (in at least one of its cells)"
+        else:
+            suffix = ""
+        warnings += _flag_warnings(
+            raw, out_cols, planned, request, group.season.label, feature_ids, feature_rows, notes, suffix
+        )
+        group_full = baselines.first_full_year(raw.years, request.baseline)
+        if group_full is not None:
+            first_full = group_full if first_full is None else max(first_full, group_full)
+        columns = derive_columns(raw, planned, request, feature_ids, feature_rows, out_cols, notes, warnings)
+        for name, values in columns.items():
+            full[name][feature_rows] = values
+        for p in planned:
+            presence[p.column][feature_rows] = raw.present[p.column][:, out_cols]
+    warnings += _spell_warnings(request, first_full, years, notes)
+    warnings += _fit_warnings(planned, request, notes)
     if request.layout == "long":
-        frame = _long_frame(full, kinds, planned, request, feature_ids, years)
+        frame = _long_frame(full, kinds, planned, request, feature_ids, years, presence, notes)
     else:
-        frame = _wide_frame(full, kinds, feature_ids, years)
+        frame = _wide_frame(full, kinds, feature_ids, years, notes)
     return IndicatorTable(frame=frame, warnings=warnings)
+
+
+# --- aggregation "cells" ------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CellAggregation:
+    """Aggregation "cells": each feature's weights over the rows (grid cells) of the daily series.
+
+    ``weights`` is a (feature, cell) sparse matrix of non-negative weights (area overlap, or area times a
+    weight layer); a feature's value is the weighted mean of its cells' values.
+    """
+
+    weights: sparse.csr_matrix
+
+    def cells_of(self, feature_rows: np.ndarray) -> np.ndarray:
+        """The cells (rows of the daily series) that some of ``feature_rows`` weighs, ascending."""
+        sub = self.weights[feature_rows]
+        return np.unique(sub.indices[sub.data > 0]).astype(np.int64)
+
+
+# codes whose flag a feature takes when all of its cells have it; the other codes when any cell has it
+_ALL_CELLS_CODES = ("incomplete_season",)
+
+
+def combine_cells(
+    raw: RawValues,
+    cells: CellAggregation,
+    feature_rows: np.ndarray,
+    cell_rows: np.ndarray,
+    request: IndicatorRequest,
+) -> RawValues:
+    """Features' raw values as the weighted mean of their cells' raw values (rows of ``raw`` are ``cell_rows``).
+
+    Per (feature, season-year) the mean is over the cells that have a value, their weights renormalised.
+    When those cells carry less than 1 - max_missing_share of the feature's weight the value is null
+    (too_few_cells); when they carry less than all of it the value is flagged partial_cells. The share of
+    days present is the weighted mean of the cells'. Cell flags pass to the feature: incomplete_season when
+    every cell has it, the others when any cell has it.
+    """
+    if request.max_missing_share is None:
+        raise RuntimeError("the request is not resolved")
+    matrix = cells.weights[feature_rows][:, cell_rows].tocsr().astype(np.float64)
+    total = np.asarray(matrix.sum(axis=1)).ravel()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inverse_total = np.where(total > 0, 1.0 / np.where(total > 0, total, 1.0), np.nan)
+    touches = matrix.copy()
+    touches.data = (touches.data > 0).astype(np.float64)
+    n_cells = np.asarray(touches.sum(axis=1)).ravel()
+    values: dict[str, np.ndarray] = {}
+    flags: dict[str, dict[str, np.ndarray]] = {}
+    present = {c: (matrix @ share) * inverse_total[:, None] for c, share in raw.present.items()}
+    for column, cell_values in raw.values.items():
+        has = ~np.isnan(cell_values)
+        weight_with_value = matrix @ has.astype(np.float64)
+        weighted = matrix @ np.where(has, cell_values, 0.0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = weighted / weight_with_value
+            covered = weight_with_value * inverse_total[:, None]
+        enough = covered >= 1.0 - request.max_missing_share - 1e-12
+        some_missing = covered < 1.0 - 1e-12
+        # only where a cell lacks a value that the feature's other cells have: a season null everywhere is
+        # flagged by its own code (incomplete_season, no_fit, ...)
+        anywhere = weight_with_value > 0
+        values[column] = np.where(enough & anywhere, mean, np.nan)
+        marks: dict[str, np.ndarray] = {}
+        for code, mask in raw.flags[column].items():
+            hits = touches @ mask.astype(np.float64)
+            marks[code] = hits >= n_cells[:, None] - 0.5 if code in _ALL_CELLS_CODES else hits > 0.5
+            if code in _ALL_CELLS_CODES:
+                marks[code] &= n_cells[:, None] > 0
+        marks["partial_cells"] = some_missing & enough & anywhere
+        marks["too_few_cells"] = ~enough & anywhere
+        flags[column] = marks
+    return RawValues(years=raw.years, values=values, present=present, flags=flags)
 
 
 def _pandas_column(values: np.ndarray, kind: _ColumnKind) -> Any:
@@ -678,11 +1117,16 @@ def _wide_frame(
     kinds: Mapping[str, _ColumnKind],
     feature_ids: Sequence[str],
     years: np.ndarray,
+    notes: _Notes,
 ) -> pd.DataFrame:
-    """The wide table: one row per (feature_id, year)."""
+    """The wide table: one row per (feature_id, year); its notes hold the codes of all its indicators."""
     data = _id_columns(feature_ids, years)
     for name, kind in kinds.items():
         data[name] = _pandas_column(full[name], kind)
+    bits = notes.row.copy()
+    for column_bits in notes.column.values():
+        bits |= column_bits
+    data["notes"] = pd.array(notes.texts(bits).ravel(), dtype="string")
     return pd.DataFrame(data)
 
 
@@ -693,8 +1137,14 @@ def _long_frame(
     request: IndicatorRequest,
     feature_ids: Sequence[str],
     years: np.ndarray,
+    presence: Mapping[str, np.ndarray],
+    notes: _Notes,
 ) -> pd.DataFrame:
-    """The long table: one row per (feature_id, year, indicator), shared columns repeated."""
+    """The long table: one row per (feature_id, year, indicator), shared columns repeated.
+
+    season_complete is the share of days with the row's indicator's variables present, and notes the codes
+    of the warnings of that indicator and of those naming none.
+    """
     n_ind = len(planned)
     shape = (len(feature_ids), years.size, n_ind)
 
@@ -750,8 +1200,59 @@ def _long_frame(
         data[_sequence_suffix(a, b)] = stack_category(f"_{_sequence_suffix(a, b)}")
     shared = [_pair_column(a, b) for a, b in request.pairs]
     shared += [f"{s.name}_{part}" for s in request.spells for part in ("run", "count")]
-    shared.append("season_complete")
     for name in shared:
         values = np.repeat(full[name][:, :, None], n_ind, axis=2)
         data[name] = _pandas_column(values, kinds[name])
+    complete = np.full(shape, np.nan)
+    bits = np.repeat(notes.row[:, :, None], n_ind, axis=2)
+    for i, p in enumerate(planned):
+        complete[:, :, i] = presence[p.column]
+        bits[:, :, i] |= notes.column[p.column]
+    data["season_complete"] = complete.ravel()
+    data["notes"] = pd.array(notes.texts(bits).ravel(), dtype="string")
     return pd.DataFrame(data)
+
+
+def add_warning_notes(frame: pd.DataFrame, warnings: Sequence[Mapping[str, Any]]) -> pd.DataFrame:
+    """The table with the codes of ``warnings`` added to the notes of the rows they concern, notes last.
+
+    For warnings made after the table (geometry repairs, skipped features): a warning concerns the rows of
+    its feature_id (all when None), of its year (all when None) and, in the long layout, of its indicator
+    (all when None). A frame without a notes column gets one.
+    """
+    frame = frame.copy()
+    notes = (
+        frame.pop("notes") if "notes" in frame.columns else pd.Series([""] * len(frame), index=frame.index)
+    )
+    extra: dict[int, set[str]] = {}
+    whole_feature: dict[str, set[str]] = {}
+    everywhere: set[str] = set()
+    for w in warnings:
+        code = w.get("code")
+        if not code:
+            continue
+        if w.get("year") is None and w.get("indicator") is None:
+            if w.get("feature_id") is None:
+                everywhere.add(code)
+            else:
+                whole_feature.setdefault(str(w["feature_id"]), set()).add(code)
+            continue
+        mask = np.ones(len(frame), dtype=bool)
+        if w.get("feature_id") is not None:
+            mask &= (frame["feature_id"] == w["feature_id"]).to_numpy(dtype=bool, na_value=False)
+        if w.get("year") is not None:
+            mask &= (frame["year"] == w["year"]).to_numpy(dtype=bool, na_value=False)
+        if w.get("indicator") is not None and "indicator" in frame.columns:
+            mask &= (frame["indicator"].astype(str) == w["indicator"]).to_numpy(dtype=bool)
+        for i in np.flatnonzero(mask):
+            extra.setdefault(int(i), set()).add(code)
+    if not (extra or whole_feature or everywhere):
+        frame["notes"] = notes.astype("string")
+        return frame
+    texts = notes.astype(object).fillna("").tolist()
+    ids = frame["feature_id"].astype(object).tolist()
+    for i, text in enumerate(texts):
+        codes = set(text.split()) | everywhere | whole_feature.get(str(ids[i]), set()) | extra.get(i, set())
+        texts[i] = notes_text(codes)
+    frame["notes"] = pd.array(texts, dtype="string")
+    return frame

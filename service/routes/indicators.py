@@ -42,12 +42,17 @@ def indicator_catalog() -> IndicatorCatalog:
                         description=p.description,
                         minimum=p.minimum,
                         maximum=p.maximum,
+                        choices=list(p.choices) or None,
                     )
                     for name, p in i.parameters.items()
                 },
                 standardized=i.standardized,
                 percent_of_normal=i.percent_of_normal,
                 uses_baseline=i.uses_baseline,
+                variables=list(i.variables),
+                reduction=i.reduction,
+                bounds=list(i.bounds) if i.bounds is not None else None,
+                details=i.details,
             )
             for i in catalog()
         ]

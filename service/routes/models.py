@@ -79,13 +79,14 @@ class DatasetList(BaseModel):
 
 
 class ParameterInfo(BaseModel):
-    """One indicator parameter: its default, unit, meaning and bounds."""
+    """One indicator parameter: its default, unit, meaning and bounds, or for a method choice its choices."""
 
-    default: float
+    default: float | str = Field(description="A number, or for a method choice one of `choices`.")
     unit: str
     description: str
     minimum: float | None = None
     maximum: float | None = None
+    choices: list[str] | None = Field(default=None, description="The allowed words of a method choice.")
 
 
 class IndicatorInfo(BaseModel):
@@ -102,6 +103,17 @@ class IndicatorInfo(BaseModel):
     )
     percent_of_normal: bool = Field(description="A percent of normal column is given too.")
     uses_baseline: bool = Field(description="The value itself depends on the baseline period.")
+    variables: list[str] = Field(description="The daily variables it reads (tmax, tmin, prcp).")
+    reduction: str = Field(
+        description="How it reduces the season's days: sum, count, mean, extreme, run, share or standardized. "
+        "Sums and counts (and the totals SPI and SPEI standardize) follow partial_seasons."
+    )
+    bounds: list[float] | None = Field(
+        default=None, description="The value is clipped to [low, high]; a value on a bound carries at_clip."
+    )
+    details: str = Field(
+        default="", description="Exactly what is computed: method choices, conventions, biases."
+    )
 
 
 class IndicatorCatalog(BaseModel):

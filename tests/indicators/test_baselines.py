@@ -20,11 +20,13 @@ def test_fixed_baseline_members():
 
 def test_trailing_baseline_members():
     b = baselines.make_baseline(YEARS, TrailingBaseline(trailing=3))
-    assert not b.fixed and b.label == "trailing 3"
-    # season 2004's normal is 2001-2003; season 2001's has only 2000 (the data start)
+    assert not b.fixed and b.label == "trailing 3" and b.seasons == 3
+    # season 2004's normal is 2001-2003; 2003 is the first with three seasons of record before it: those
+    # before have no baseline at all (never a shorter one than asked for)
     assert np.flatnonzero(b.members[4]).tolist() == [1, 2, 3]
-    assert np.flatnonzero(b.members[1]).tolist() == [0]
-    assert not b.members[0].any()
+    assert np.flatnonzero(b.members[3]).tolist() == [0, 1, 2]
+    assert not b.members[:3].any()
+    assert baselines.first_full_year(YEARS, TrailingBaseline(trailing=3)) == YEARS[3]
 
 
 def test_z_worked_by_hand():

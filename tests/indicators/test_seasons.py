@@ -31,7 +31,7 @@ def test_calendar_year_keeps_feb29_and_counts_days():
     assert cut.cube.prcp.shape == (1, 3, 366)
     assert cut.cube.in_season.sum(axis=1).tolist() == [366, 365, 365]
     assert np.isnan(cut.cube.prcp[0, 1, 365])  # padding of a 365-day year
-    assert cut.present_share.tolist() == [[1.0, 1.0, 1.0]]
+    assert cut.present_share(("tmax", "tmin", "prcp")).tolist() == [[1.0, 1.0, 1.0]]
     # the day index points back into the daily series, and dayofyear follows it
     assert cut.cube.time_index[1, 0] == 366 and cut.cube.dayofyear[1, 0] == 1
 
@@ -102,15 +102,19 @@ def test_missing_share_at_the_threshold_is_kept_and_above_it_blanked():
     prcp[0, 0:3] = np.nan
     prcp[1, 0:4] = np.nan
     cut = _cut(with_values(daily, prcp=prcp), MonthsSeason(months=[1]))
-    np.testing.assert_allclose(cut.present_share[:, 0], [28 / 31, 27 / 31])
-    assert cut.complete.tolist() == [[True, True], [False, True]]
-    assert np.nansum(cut.cube.prcp[0, 0]) == 28.0
-    assert np.isnan(cut.cube.prcp[1, 0]).all() and np.isnan(cut.cube.tmax[1, 0]).all()
-    assert np.nansum(cut.cube.prcp[1, 1]) == 31.0
-    warnings = seasons.incomplete_season_warnings(cut, ["a", "b"], np.array([2000, 2001]), 0.10)
-    assert len(warnings) == 1
-    assert warnings[0]["feature_id"] == "b" and warnings[0]["year"] == 2000
-    assert "12.9%" in warnings[0]["reason"] and "31 days" in warnings[0]["reason"]
+    np.testing.assert_allclose(cut.present_share(["prcp"])[:, 0], [28 / 31, 27 / 31])
+    assert cut.complete(["prcp"]).tolist() == [[True, True], [False, True]]
+    assert cut.partial(["prcp"]).tolist() == [[True, False], [False, False]]
+    # a temperature indicator does not see the precipitation gaps
+    assert cut.complete(["tmax"]).all() and not cut.partial(["tmax"]).any()
+    cube = cut.cube_for(["prcp"])
+    assert np.nansum(cube.prcp[0, 0]) == 28.0
+    assert np.isnan(cube.prcp[1, 0]).all() and cube.tmax is None  # blank for prcp; tmax not handed over
+    assert np.nansum(cube.prcp[1, 1]) == 31.0
+    assert not np.isnan(cut.cube_for(["tmax"]).tmax[1, 0, :31]).any()
+    # partial seasons: scaled by 31 / 28, or null, or as they are
+    np.testing.assert_allclose(cut.total_factor(["prcp"], "scale"), [[31 / 28, 1.0], [1.0, 1.0]])
+    assert np.isnan(cut.total_factor(["prcp"], "null")[0, 0]) and cut.total_factor(["prcp"], "as_is") is None
 
 
 def test_missing_temperature_counts_as_missing_day():
@@ -118,8 +122,9 @@ def test_missing_temperature_counts_as_missing_day():
     tmax = daily.tmax.copy()
     tmax[0, :40] = np.nan
     cut = _cut(with_values(daily, tmax=tmax), "year", max_missing_share=0.5)
-    np.testing.assert_allclose(cut.present_share, [[(366 - 40) / 366]])
-    assert cut.complete.all()
+    np.testing.assert_allclose(cut.present_share(["tmax", "tmin"]), [[(366 - 40) / 366]])
+    np.testing.assert_allclose(cut.present_share(["prcp"]), [[1.0]])  # only the variables asked about count
+    assert cut.complete(["tmax"]).all()
 
 
 def test_gap_in_the_record_counts_as_missing_days():
@@ -135,8 +140,8 @@ def test_gap_in_the_record_counts_as_missing_days():
         prcp=daily.prcp[:, keep],
     )
     cut = _cut(gapped, "year")
-    np.testing.assert_allclose(cut.present_share, [[316 / 366, 1.0]])
-    assert cut.complete.tolist() == [[False, True]]
+    np.testing.assert_allclose(cut.present_share(["prcp"]), [[316 / 366, 1.0]])
+    assert cut.complete(["prcp"]).tolist() == [[False, True]]
 
 
 def test_feature_subset_and_float32_input():

@@ -19,8 +19,15 @@ from hypothesis import strategies as st
 from service.errors import OutOfRangeError, RequestError, UnknownIndicatorError
 from service.indicators import base
 from service.indicators.base import Indicator, Parameter
-from service.indicators.table import DEFAULT_INDICATORS, compute_table, output_columns, resolve_request
+from service.indicators.table import (
+    DEFAULT_INDICATORS,
+    add_warning_notes,
+    compute_table,
+    output_columns,
+    resolve_request,
+)
 from service.schemas import IndicatorRequest
+from service.warning_codes import WARNING_CODES, warning
 
 sys.path.insert(0, str(Path(__file__).parent))  # the folder's own helper module (importlib import mode)
 from _support_daily import make_daily, with_values  # noqa: E402
@@ -45,7 +52,17 @@ def _standard_index(cube, baseline, params):
 
 
 TEST_INDICATORS = [
-    Indicator("t_prcp", "mm", "season total", "test", "precipitation", _season_total, percent_of_normal=True),
+    Indicator(
+        "t_prcp",
+        "mm",
+        "season total",
+        "test",
+        "precipitation",
+        _season_total,
+        ("prcp",),
+        "sum",
+        percent_of_normal=True,
+    ),
     Indicator(
         "t_hot",
         "days",
@@ -53,10 +70,22 @@ TEST_INDICATORS = [
         "test",
         "count",
         _hot_days,
+        ("tmax",),
+        "count",
         parameters={"threshold": Parameter(30.0, "degC", "threshold", minimum=-50.0, maximum=60.0)},
     ),
-    Indicator("t_tmax", "degC", "mean tmax", "test", "temperature", _mean_tmax),
-    Indicator("t_index", "1", "standardized stand-in", "test", "drought", _standard_index, standardized=True),
+    Indicator("t_tmax", "degC", "mean tmax", "test", "temperature", _mean_tmax, ("tmax",), "mean"),
+    Indicator(
+        "t_index",
+        "1",
+        "standardized stand-in",
+        "test",
+        "drought",
+        _standard_index,
+        ("prcp",),
+        "standardized",
+        standardized=True,
+    ),
 ]
 
 
@@ -141,13 +170,13 @@ def test_columns_and_dtypes_are_the_contract():
         + [f"t_tmax{s}" for s in per + lag]
         + [f"t_index{s}" for s in per + ["_category"] + lag]
         + [f"t_hot_threshold20{s}" for s in per + lag]
-        + ["t_prcp_and_t_tmax", "dry_hot_run", "dry_hot_count", "season_complete"]
+        + ["t_prcp_and_t_tmax", "dry_hot_run", "dry_hot_count", "season_complete", "notes"]
     )
     assert list(frame.columns) == expected
     resolved = resolve_request(request, daily)
     assert output_columns(resolved) == expected
     dtypes = {c: str(t) for c, t in frame.dtypes.items()}
-    assert dtypes["feature_id"] == "string" and dtypes["year"] == "int64"
+    assert dtypes["feature_id"] == dtypes["notes"] == "string" and dtypes["year"] == "int64"
     assert dtypes["t_prcp"] == dtypes["t_prcp_z"] == dtypes["t_prcp_z_lag2"] == "float64"
     assert dtypes["t_prcp_class"] == dtypes["t_prcp_class_lag2"] == dtypes["dry_hot_run"] == "Int64"
     assert dtypes["t_prcp_label"] == dtypes["t_index_category"] == dtypes["t_prcp_and_t_tmax"] == "category"
@@ -297,8 +326,11 @@ def test_defaults_filled_and_resolution_is_idempotent():
     assert resolved.pairs == []
     assert resolve_request(resolved, daily) == resolved
     fixed = resolve_request(_request(indicators=["t_prcp"]), daily)
-    assert (fixed.baseline.start, fixed.baseline.end) == (1980, 1989)  # the first ten season-years
+    assert (fixed.baseline.start, fixed.baseline.end) == (1980, 2001)  # all 22 (fewer than 30) season-years
     assert (fixed.years.start, fixed.years.end) == (1980, 2001)
+    longer = make_daily("1960-01-01", "2001-12-31")
+    fixed = resolve_request(_request(indicators=["t_prcp"]), longer)
+    assert (fixed.baseline.start, fixed.baseline.end) == (1960, 1989)  # the first 30 season-years
 
 
 def test_default_pair_only_when_both_requested_and_pairs_not_given():
@@ -525,3 +557,61 @@ def test_spell_count_null_around_an_unknown_season_is_explained():
     reasons = [w["reason"] for w in table.warnings if w["feature_id"] == "a"]
     assert any("dry_count left null for 1985-1987" in r for r in reasons)
     assert any("1980-1981" in w["reason"] and w["feature_id"] is None for w in table.warnings)
+
+
+def test_notes_carry_the_codes_of_each_rows_warnings_in_both_layouts():
+    # b is 0 every January: no spread for t_prcp; a misses 2 of 31 tmax days in 1986: partial for t_tmax only
+    daily, ids = _january_daily({"a": [1, 2, 3, 4, 5, 1, 2, 3, 4, 5], "b": [0.0] * 10})
+    tmax = np.broadcast_to(20.0 + (daily.year - 1980) % 4, daily.tmax.shape).copy()  # some spread
+    tmax[0, (daily.year == 1986) & (daily.month == 1) & (daily.day <= 2)] = np.nan
+    request = _request(
+        season={"months": [1]}, indicators=["t_prcp", "t_tmax"], baseline={"start": 1980, "end": 1984}
+    )
+    table = compute_table(with_values(daily, tmax=tmax), ids, [{}, {}], request)
+    for w in table.warnings:
+        assert set(w) == {"code", "feature_id", "year", "indicator", "reason"} and w["code"] in WARNING_CODES
+    wide = table.frame.set_index(["feature_id", "year"])
+    assert wide.loc[("a", 1986), "notes"] == "partial_season"  # t_tmax's days only
+    assert wide.loc[("a", 1987), "notes"] == ""
+    assert (wide.loc["b", "notes"] == "no_spread").all()
+    # completeness counts the row's indicators' variables: a tmax gap does not touch precipitation
+    assert wide.loc[("a", 1986), "t_prcp"] == 62.0 and wide.loc[("a", 1986), "t_tmax"] == 22.0  # 31 x 2 mm
+    [partial] = [w for w in table.warnings if w["code"] == "partial_season"]
+    assert (partial["feature_id"], partial["year"], partial["indicator"]) == ("a", 1986, "t_tmax")
+    assert "6.5% missing" in partial["reason"]  # 2 of 31 days
+    long = compute_table(
+        with_values(daily, tmax=tmax), ids, [{}, {}], request.model_copy(update={"layout": "long"})
+    )
+    rows = long.frame.set_index(["feature_id", "year", "indicator"])
+    assert rows.loc[("a", 1986, "t_tmax"), "notes"] == "partial_season"
+    assert rows.loc[("a", 1986, "t_prcp"), "notes"] == ""
+    assert rows.loc[("a", 1986, "t_tmax"), "season_complete"] == pytest.approx(29 / 31)
+    assert rows.loc[("a", 1986, "t_prcp"), "season_complete"] == 1.0
+    assert (
+        rows.loc[("b", 1986, "t_prcp"), "notes"] == "no_spread"
+        and rows.loc[("b", 1986, "t_tmax"), "notes"] == ""
+    )
+
+
+def test_warnings_made_after_the_table_reach_the_notes_of_their_rows():
+    daily, ids = _january_daily({"a": [1, 2, 3, 4, 5, 1], "b": [2, 2, 3, 1, 5, 1]})
+    frame = compute_table(daily, ids, [{}, {}], _request(season={"months": [1]}, indicators=["t_prcp"])).frame
+    frame = frame.assign(coverage=1.0)  # a column added after the table: notes move to the end again
+    later = [
+        warning("repaired_geometry", "repaired", feature_id="b"),
+        warning("feature_skipped", "skipped", feature_id="a", year=1982),
+    ]
+    noted = add_warning_notes(frame, later).set_index(["feature_id", "year"])
+    assert list(noted.columns)[-1] == "notes"
+    assert (noted.loc["b", "notes"] == "repaired_geometry").all()
+    assert noted.loc[("a", 1982), "notes"] == "feature_skipped" and noted.loc[("a", 1983), "notes"] == ""
+
+
+def test_a_named_indicator_whose_variable_is_missing_is_refused():
+    daily = make_daily("1980-01-01", "1989-12-31")
+    rain_only = with_values(daily, tmax=None, tmin=None)
+    with pytest.raises(RequestError, match=r"indicators\[1\]: 't_tmax' needs daily tmax") as caught:
+        resolve_request(_request(indicators=["t_prcp", "t_tmax"]), rain_only, variables=("prcp",))
+    assert caught.value.problem()["indicator"] == "t_tmax"
+    frame = compute_table(rain_only, ["a"], [{}], _request(indicators=["t_prcp"])).frame
+    assert frame["t_prcp"].notna().all()
