@@ -162,3 +162,54 @@ def test_centers_weighting_on_a_projected_grid_takes_whole_ground_cells() -> Non
     dense = w.matrix.toarray()[0].reshape(g.shape)
     np.testing.assert_allclose(dense[1:4, 1:4], cells[1:4, 1:4], rtol=1e-12)
     assert dense[0].sum() == 0 and dense[:, 0].sum() == 0
+
+
+# --- rotated-pole grids ---------------------------------------------------------------------------------------
+
+# A CF rotated_latitude_longitude grid with the pole of a widely used regional-climate domain over Europe
+# (grid north pole 39.25 N, 162 W; 0.44-degree cells; from memory), on the WGS84 datum pyproj gives it when
+# the file names no earth radius, and on the 6,371,229 m sphere such model output often declares.
+ROTATED = {"grid_mapping_name": "rotated_latitude_longitude", "grid_north_pole_latitude": 39.25,
+           "grid_north_pole_longitude": -162.0}  # fmt: skip
+
+
+def rotated_grid(earth_radius: float | None = None) -> tuple[Grid, pyproj.CRS]:
+    """The rotated-pole grid (106 x 103 cells of 0.44 degrees, rows north first) and its CRS."""
+    attrs = dict(ROTATED)
+    if earth_radius is not None:
+        attrs["earth_radius"] = earth_radius
+    crs = pyproj.CRS.from_cf(attrs)
+    x = -28.375 + 0.44 * np.arange(106)
+    y = (-23.375 + 0.44 * np.arange(103))[::-1]
+    return Grid(crs_wkt=crs.to_wkt(), x=x, y=y, is_geographic=bool(crs.is_geographic)), crs
+
+
+@pytest.mark.parametrize("earth_radius", [None, 6_371_229.0])
+def test_a_rotated_pole_grid_serves_a_box_with_its_ground_area(earth_radius: float | None) -> None:
+    g, crs = rotated_grid(earth_radius)
+    geod = crs.get_geod()  # the datum's own ellipsoid or sphere
+    box = shapely.box(8.0, 49.0, 12.0, 52.0)
+    w = compute_weights(parse_features(feature(lonlat_box(8.0, 49.0, 12.0, 52.0))), g, cache_size=0)
+    # pyproj.Geod on the lon/lat box (edges split every 0.001 degrees), on the grid datum's ellipsoid
+    expected = (
+        abs(geod.geometry_area_perimeter(shapely.geometry.polygon.orient(shapely.segmentize(box, 0.001)))[0])
+        / 1e6
+    )
+    assert w.area_km2[0] == pytest.approx(expected, rel=1e-5)
+    assert w.matrix.sum() == pytest.approx(expected, rel=1e-5)
+    assert w.coverage[0] == 1.0
+    # its centroid in longitude/latitude, never in the grid's rotated coordinates
+    assert w.longitude[0] == pytest.approx(10.0, abs=0.01)
+    assert w.latitude[0] == pytest.approx(50.5, abs=0.05)
+
+
+def test_rotated_pole_cells_have_their_ground_areas() -> None:
+    g, crs = rotated_grid()
+    to_lonlat = pyproj.Transformer.from_crs(crs, WGS84, always_xy=True)
+    areas = cell_areas_km2(g)
+    xe, ye = g.x_edges, g.y_edges
+    for j, i in [(0, 0), (51, 53), (102, 105), (10, 90)]:
+        cell = shapely.segmentize(shapely.box(xe[i], ye[j + 1], xe[i + 1], ye[j]), 0.001)
+        lonlat = shapely.transform(cell, lambda xy: np.column_stack(to_lonlat.transform(xy[:, 0], xy[:, 1])))
+        geodesic = abs(GEOD.geometry_area_perimeter(shapely.geometry.polygon.orient(lonlat))[0]) / 1e6
+        assert areas[j, i] == pytest.approx(geodesic, rel=1e-5)

@@ -164,6 +164,14 @@ def _semi_axes(crs: pyproj.CRS) -> tuple[float, float]:
     return a, b
 
 
+def _base_geographic(crs: pyproj.CRS) -> pyproj.CRS:
+    """The geographic CRS a derived geographic CRS (a rotated pole) turns; WGS84 if it names none."""
+    base = crs.to_json_dict().get("base_crs")
+    if base is None:
+        return crs.geodetic_crs if crs.geodetic_crs is not None else _WGS84
+    return pyproj.CRS.from_json_dict(base)
+
+
 def _lonlat_plane(
     grid_crs: pyproj.CRS,
     x_edges: np.ndarray,
@@ -173,35 +181,71 @@ def _lonlat_plane(
     x_flipped: bool,
     y_flipped: bool,
 ) -> _Plane:
-    """The cylindrical equal-area image of a lat-lon grid, centred on the grid's middle longitude."""
+    """The cylindrical equal-area image of a lat-lon grid, centred on the grid's middle longitude.
+
+    A rotated-pole grid (a derived geographic CRS, CF's rotated_latitude_longitude) is a lat-lon grid on a
+    sphere turned under the Earth: PROJ's ob_tran turns geodetic coordinates with the sphere's rotation, which
+    keeps cos(lat) dlat dlon. Its plane is the spherical equal-area image of the rotated coordinates (x = a
+    lambda', y = a sin phi'), exact on a spherical datum; on an ellipsoid a plane area there times
+    M N / a^2 at the geodetic latitude (M, N the radii of curvature; Snyder 1987, eqs 4-18, 4-20) is the
+    ground area, applied at each piece as on projected grids.
+    """
     a, b = _semi_axes(grid_crs)
     e = math.sqrt(max(0.0, 1 - (b / a) ** 2))
     lon0 = float((x_edges[0] + x_edges[-1]) / 2)
+    rotated = bool(getattr(grid_crs, "is_derived", False))
+    e_plane, b_plane = (0.0, a) if rotated else (e, b)
 
     def to_plane(xy: np.ndarray) -> np.ndarray:
         # Easting is linear in longitude (no wrap-around at lon0 +- 180, on purpose: antimeridian.py copies
         # pieces by whole turns of longitude onto the grid instead).
-        return np.column_stack([a * np.radians(xy[:, 0] - lon0), authalic_y(xy[:, 1], a, e)])
+        return np.column_stack([a * np.radians(xy[:, 0] - lon0), authalic_y(xy[:, 1], a, e_plane)])
 
     inverse = pyproj.Transformer.from_pipeline(
-        f"+proj=pipeline +step +inv +proj=cea +lat_ts=0 +lon_0={lon0!r} +a={a!r} +b={b!r} "
+        f"+proj=pipeline +step +inv +proj=cea +lat_ts=0 +lon_0={lon0!r} +a={a!r} +b={b_plane!r} "
         "+step +proj=unitconvert +xy_in=rad +xy_out=deg"
     )
+    to_wgs84 = None
+    if rotated or not grid_crs.equals(_WGS84, ignore_axis_order=True):
+        to_wgs84 = pyproj.Transformer.from_crs(grid_crs, _WGS84, always_xy=True)
 
     def to_lonlat(xy: np.ndarray) -> np.ndarray:
-        return np.column_stack(inverse.transform(xy[:, 0], xy[:, 1]))
+        x, y = inverse.transform(xy[:, 0], xy[:, 1])
+        if to_wgs84 is not None:  # rotated coordinates (or another datum's) are not WGS84 longitude/latitude
+            x, y = to_wgs84.transform(x, y)
+        return np.column_stack([x, y])
+
+    ground_km2 = areas_km2 = None
+    if rotated and e > 1e-12:
+        geodetic = _base_geographic(grid_crs)
+        to_geodetic = pyproj.Transformer.from_crs(grid_crs, geodetic, always_xy=True)
+
+        def ground_km2(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+            lam = np.degrees(np.asarray(x, np.float64) / a) + lon0
+            phi = np.degrees(np.arcsin(np.clip(np.asarray(y, np.float64) / a, -1.0, 1.0)))
+            _, lat = to_geodetic.transform(lam, phi)
+            s2 = np.sin(np.radians(lat)) ** 2
+            return 1e-6 * (1 - e * e) / (1 - e * e * s2) ** 2  # M N / a^2, km2 per m2 of the plane
+
+        def plane_to_grid(xy: np.ndarray) -> np.ndarray:
+            return np.column_stack(inverse.transform(xy[:, 0], xy[:, 1]))
+
+        centre = (lon0, float((y_edges[0] + y_edges[-1]) / 2))
+        areas_km2 = _equal_area_areas(grid_crs, geodetic, centre, MAX_SEGMENT_METRES, plane_to_grid)
 
     return _Plane(
         x_edges=a * np.radians(x_edges - lon0),
-        y_edges=authalic_y(y_edges, a, e),
+        y_edges=authalic_y(y_edges, a, e_plane),
         x_centres=a * np.radians(x_centres - lon0),
-        y_centres=authalic_y(y_centres, a, e),
+        y_centres=authalic_y(y_centres, a, e_plane),
         x_flipped=x_flipped,
         y_flipped=y_flipped,
         to_plane=to_plane,
         to_lonlat=to_lonlat,
         km2_per_unit2=1e-6,
         period=2 * math.pi * a,
+        ground_km2=ground_km2,
+        areas_km2=areas_km2,
     )
 
 
@@ -232,24 +276,8 @@ def _projected_plane(
         scale = np.asarray(projection.get_factors(lon, lat, errcheck=False).areal_scale, dtype=np.float64)
         return km2_per_unit2 / scale
 
-    # Whole features: a Lambert azimuthal equal-area frame on the grid's own datum, centred on the grid.
-    centre_lon, centre_lat = to_geodetic.transform(
-        float((x_edges[0] + x_edges[-1]) / 2), float((y_edges[0] + y_edges[-1]) / 2)
-    )
-    equal_area = pyproj.crs.ProjectedCRS(
-        conversion=pyproj.crs.coordinate_operation.LambertAzimuthalEqualAreaConversion(
-            latitude_natural_origin=float(centre_lat), longitude_natural_origin=float(centre_lon)
-        ),
-        geodetic_crs=geodetic,
-    )
-    to_equal_area = pyproj.Transformer.from_crs(grid_crs, equal_area, always_xy=True)
-
-    def areas_km2(geometries: np.ndarray) -> np.ndarray:
-        dense = shapely.segmentize(geometries, MAX_SEGMENT_METRES / unit)
-        moved = shapely.transform(
-            dense, lambda xy: np.column_stack(to_equal_area.transform(xy[:, 0], xy[:, 1]))
-        )
-        return shapely.area(moved) * 1e-6
+    centre = (float((x_edges[0] + x_edges[-1]) / 2), float((y_edges[0] + y_edges[-1]) / 2))
+    areas_km2 = _equal_area_areas(grid_crs, geodetic, centre, MAX_SEGMENT_METRES / unit, None)
 
     return _Plane(
         x_edges=x_edges,
@@ -264,6 +292,41 @@ def _projected_plane(
         ground_km2=ground_km2,
         areas_km2=areas_km2,
     )
+
+
+def _equal_area_areas(
+    grid_crs: pyproj.CRS,
+    geodetic: pyproj.CRS,
+    centre: tuple[float, float],
+    segment: float,
+    plane_to_grid: Callable[[np.ndarray], np.ndarray] | None,
+) -> Callable[[np.ndarray], np.ndarray]:
+    """A function giving the ground area (km2) of whole plane geometries, also where they leave the grid.
+
+    They are measured in a Lambert azimuthal equal-area frame on the grid's own datum, centred on the grid
+    (``centre`` in grid-CRS coordinates), after their edges are split every ``segment`` plane units so that
+    they keep the shape they have on the plane; ``plane_to_grid`` maps plane to grid-CRS coordinates
+    (None: the plane is the grid's own).
+    """
+    to_geodetic = pyproj.Transformer.from_crs(grid_crs, geodetic, always_xy=True)
+    centre_lon, centre_lat = to_geodetic.transform(*centre)
+    equal_area = pyproj.crs.ProjectedCRS(
+        conversion=pyproj.crs.coordinate_operation.LambertAzimuthalEqualAreaConversion(
+            latitude_natural_origin=float(centre_lat), longitude_natural_origin=float(centre_lon)
+        ),
+        geodetic_crs=geodetic,
+    )
+    to_equal_area = pyproj.Transformer.from_crs(grid_crs, equal_area, always_xy=True)
+
+    def move(xy: np.ndarray) -> np.ndarray:
+        if plane_to_grid is not None:
+            xy = plane_to_grid(xy)
+        return np.column_stack(to_equal_area.transform(xy[:, 0], xy[:, 1]))
+
+    def areas_km2(geometries: np.ndarray) -> np.ndarray:
+        return shapely.area(shapely.transform(shapely.segmentize(geometries, segment), move)) * 1e-6
+
+    return areas_km2
 
 
 def _to_grid(geometries: np.ndarray, source: pyproj.CRS, grid_crs: pyproj.CRS) -> np.ndarray:
