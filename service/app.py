@@ -35,7 +35,8 @@ from service.errors import (
 from service.jobs import JobRunner
 from service.registry import StoreRegistry
 from service.routes import ROUTER_MODULES
-from service.routes.deps import ServiceState, load_token_digests
+from service.routes.body import ProblemException, parsed_body
+from service.routes.deps import ServiceState, load_tokens
 from service.routes.models import Problem
 from service.settings import Settings
 
@@ -64,10 +65,14 @@ _POINTER_FIELDS = frozenset(
 )  # fmt: skip
 
 
-def pointer_from_field(field: str | None) -> str | None:
-    """An RFC 6901 pointer into the request body from a dotted field name ('years.start' -> '/years/start')."""
-    if field == "indicators":
-        return "/indicators"
+def pointer_from_field(field: str | None, body: Any = None) -> str | None:
+    """An RFC 6901 pointer into the request body from a dotted field name ('years.start' -> '/years/start').
+
+    Fields about indicators ('indicators', 'indicators.gdd.base') point into the indicator list; with the
+    parsed ``body`` at hand they point at the indicator (and parameter) itself.
+    """
+    if field is not None and (field == "indicators" or field.startswith(("indicators.", "indicators["))):
+        return _indicator_pointer(field, body)
     if (
         not field
         or not _FIELD_PATH.match(field)
@@ -75,6 +80,29 @@ def pointer_from_field(field: str | None) -> str | None:
     ):
         return None
     return "/" + re.sub(r"\[(\d+)\]", r"/\1", field).replace(".", "/")
+
+
+def _indicator_pointer(field: str, body: Any) -> str:
+    """The pointer of an indicator field: '/indicators/<index>[/<parameter>]' where the body tells, else the list."""
+    indexed = re.fullmatch(r"indicators\[(\d+)\]", field)
+    if indexed:
+        return f"/indicators/{indexed.group(1)}"
+    given = body.get("indicators") if isinstance(body, dict) else None
+    if not isinstance(given, list):
+        return "/indicators"
+    names = [i if isinstance(i, str) else i.get("name") if isinstance(i, dict) else None for i in given]
+    parts = field.split(".")
+    if len(parts) == 3 and parts[1] in names:
+        index = names.index(parts[1])
+        return f"/indicators/{index}/{parts[2]}" if isinstance(given[index], dict) else f"/indicators/{index}"
+    if field == "indicators":
+        from service.indicators.base import catalog
+
+        known = {i.name for i in catalog()}
+        unknown = [k for k, name in enumerate(names) if name not in known]
+        if unknown:
+            return f"/indicators/{unknown[0]}"
+    return "/indicators"
 
 
 class ProblemResponse(JSONResponse):
@@ -104,7 +132,7 @@ def problem_response(exc: BaseException, request: Request) -> JSONResponse:
     """The problem+json response of an exception (WxshockError or anything else, which becomes a 500)."""
     status, doc = problem_for(exc, instance=request.url.path)
     if 400 <= status < 500 and "pointer" not in doc and "feature_id" not in doc:
-        pointer = pointer_from_field(doc.get("field"))
+        pointer = pointer_from_field(doc.get("field"), parsed_body(request))
         if pointer is not None:
             doc["pointer"] = pointer
     headers = {"WWW-Authenticate": 'Bearer realm="wxshock"'} if isinstance(exc, AuthError) else None
@@ -143,6 +171,8 @@ def validation_problem(exc: RequestValidationError, content_type: str = "") -> R
             continue
         if error.get("type") == "missing":
             item["message"] = "the request needs a JSON body (Content-Type: application/json)"
+        elif error.get("type") not in _NOT_AN_OBJECT:
+            continue  # a check of the whole request (no field of its own): its message says what failed
         elif "json" not in content_type:
             item["message"] = f"the body was sent as {content_type or 'no Content-Type'!r}; send JSON with "
             item["message"] += "Content-Type: application/json"
@@ -160,6 +190,10 @@ def validation_problem(exc: RequestValidationError, content_type: str = "") -> R
         pointer=first["pointer"] if first["pointer"] or "in" not in first else None,
         field=first.get("name") if "in" in first else None,
     )
+
+
+# Pydantic's error types for a body that is not an object at all.
+_NOT_AN_OBJECT = frozenset({"model_type", "model_attributes_type", "dict_type"})
 
 
 class BodyTooLarge(StarletteHTTPException):
@@ -197,6 +231,8 @@ def install_error_handlers(app: FastAPI) -> None:
     async def http_error(request: Request, exc: Exception) -> JSONResponse:
         if isinstance(exc, BodyTooLarge):
             return problem_response(exc.error(), request)
+        if isinstance(exc, ProblemException):
+            return problem_response(exc.error, request)
         status = getattr(exc, "status_code", 500)
         slug, title = _HTTP_PROBLEMS.get(status, ("http-error", "HTTP error"))
         detail = {
@@ -319,9 +355,7 @@ def routers() -> list[Any]:
 
 def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
     """The wxshock app; with ``open_stores`` its lifespan opens the datasets and starts the job worker."""
-    state = ServiceState(
-        settings=settings, token_digests=load_token_digests(settings) if open_stores else frozenset()
-    )
+    state = ServiceState(settings=settings, tokens=load_tokens(settings) if open_stores else {})
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:

@@ -7,6 +7,8 @@ Each class also subclasses the builtin it refines, so ``except ValueError`` keep
 
 from __future__ import annotations
 
+import errno
+import sqlite3
 from typing import Any
 
 PROBLEM_TYPE_PREFIX = "tag:wxshock,2026:problem/"
@@ -220,7 +222,13 @@ def validation_items(errors: list[dict[str, Any]], drop_prefix: tuple[str, ...] 
         message = str(error.get("msg", "")).removeprefix("Value error, ")
         item: dict[str, Any] = {"pointer": pointer_from_loc(loc), "message": message}
         if "input" in error and isinstance(error["input"], str | int | float | bool | type(None)):
-            item["value"] = error["input"]
+            value = error["input"]
+            # Never echo a long text whole (a 1 MB id would make the problem document 1 MB).
+            item["value"] = (
+                value[:40] + f"... ({len(value)} characters)"
+                if isinstance(value, str) and len(value) > 200
+                else value
+            )
         items.append(item)
     return items
 
@@ -236,6 +244,14 @@ class AuthError(WxshockError, PermissionError):
 # --- execution ------------------------------------------------------------------------------------------------
 
 
+class StorageFullError(WxshockError, OSError):
+    """The server's data directory is full: a job's record or result cannot be written."""
+
+    status = 507
+    slug = "storage-full"
+    title = "Server storage full"
+
+
 class ClusterUnavailableError(WxshockError, ConnectionError):
     """The configured dask scheduler cannot be reached, has no workers, or kept losing the workers of a task."""
 
@@ -244,8 +260,27 @@ class ClusterUnavailableError(WxshockError, ConnectionError):
     title = "Compute cluster unavailable"
 
 
+_FULL_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT})
+
+
+def storage_full(exc: BaseException) -> StorageFullError | None:
+    """A StorageFullError standing for ``exc`` when it is a full disk or quota (file or SQLite); else None."""
+    if isinstance(exc, StorageFullError):
+        return exc
+    full = (isinstance(exc, OSError) and exc.errno in _FULL_ERRNOS) or (
+        isinstance(exc, sqlite3.OperationalError) and "full" in str(exc).lower()
+    )
+    if not full:
+        return None
+    return StorageFullError(
+        "the server's data directory is full, so the job's record or result could not be written; nothing "
+        "was lost, but no job can run until its administrator frees space; try again later"
+    )
+
+
 def problem_for(exc: BaseException, instance: str | None = None) -> tuple[int, dict[str, Any]]:
     """The HTTP status and problem document for any exception; unknown ones become a bare 500."""
+    exc = storage_full(exc) or exc
     if isinstance(exc, WxshockError):
         doc = exc.problem()
         status = exc.status

@@ -4,6 +4,11 @@ A job moves queued -> running -> succeeded | failed, or to cancelled from queued
 written to ``<id>.<format>.partial`` and renamed when complete, so a partial result is never served as
 finished. A server killed in the middle of a job puts that job back in the queue when it starts again; the
 run is deterministic, so the re-run gives the same bytes as an uninterrupted one.
+
+Each job belongs to the owner of the token that submitted it (CONTRACTS.md "Tokens and owners"): only its
+owner, or an admin, sees, fetches or cancels it, and Idempotency-Keys are scoped per owner. A full disk never
+stops a worker: the job fails with a 507 problem document, its partial files are removed, and new jobs are
+refused while the data directory stays below ``min_free_bytes``.
 """
 
 from __future__ import annotations
@@ -12,6 +17,8 @@ import hashlib
 import json
 import logging
 import os
+import pickle
+import shutil
 import sqlite3
 import threading
 import time
@@ -22,9 +29,18 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from service.errors import JobNotFoundError, JobStateError, RequestError, RunCancelledError, problem_for
+from service.errors import (
+    JobNotFoundError,
+    JobStateError,
+    RequestError,
+    RunCancelledError,
+    StorageFullError,
+    problem_for,
+    storage_full,
+)
 
 if TYPE_CHECKING:
+    from service.prepared import Prepared
     from service.registry import StoreRegistry
     from service.schemas import IndicatorRequest
     from service.settings import Settings
@@ -60,10 +76,35 @@ CREATE TABLE IF NOT EXISTS jobs (
 );
 CREATE INDEX IF NOT EXISTS jobs_state ON jobs (state, created_at);
 """
+# Schema changes after the first, applied in order to older databases (PRAGMA user_version counts them).
+_MIGRATIONS = (
+    # 1: owners and skipped features. Jobs from before owners have owner '' (visible to admins only).
+    """
+    ALTER TABLE jobs ADD COLUMN owner TEXT NOT NULL DEFAULT '';
+    ALTER TABLE jobs ADD COLUMN skipped TEXT;
+    CREATE INDEX IF NOT EXISTS jobs_owner ON jobs (owner, created_at);
+    """,
+)
 _COLUMNS = (
     "id, state, dataset, format, request_hash, idempotency_key, features_total, features_done, created_at, "
-    "started_at, finished_at, attempts, error, result_file, media_type, headers"
+    "started_at, finished_at, attempts, error, result_file, media_type, headers, owner, skipped"
 )
+
+
+@dataclass(frozen=True)
+class Principal:
+    """Who asks: the owner of a bearer token (a user or project name), and whether it is an admin."""
+
+    owner: str
+    admin: bool = False
+
+    def sees(self, job: Job) -> bool:
+        """Whether this caller may see, fetch or cancel ``job``: its owner, or an admin."""
+        return self.admin or job.owner == self.owner
+
+
+# With no token configured the server has one user, who sees every job.
+ANONYMOUS = Principal("anonymous", admin=True)
 
 
 @dataclass(frozen=True)
@@ -86,6 +127,8 @@ class Job:
     result_file: str | None
     media_type: str | None
     headers: dict[str, str] = field(default_factory=dict)
+    owner: str = ANONYMOUS.owner
+    skipped: list[dict[str, Any]] = field(default_factory=list)
 
     @classmethod
     def from_row(cls, row: tuple[Any, ...]) -> Job:
@@ -93,6 +136,7 @@ class Job:
         values = list(row)
         values[12] = json.loads(values[12]) if values[12] else None
         values[15] = json.loads(values[15]) if values[15] else {}
+        values[17] = json.loads(values[17]) if values[17] else []
         return cls(*values)
 
     def seconds_left(self, now: float | None = None) -> float | None:
@@ -106,9 +150,15 @@ class Job:
 
 
 def request_digest(request_json: str, fmt: str) -> str:
-    """SHA-256 of a job's canonical request and output format: equal submissions have equal digests."""
-    canonical = json.dumps(json.loads(request_json), sort_keys=True, separators=(",", ":"))
-    return hashlib.sha256(f"{fmt}\n{canonical}".encode()).hexdigest()
+    """SHA-256 of a job's request text (canonical JSON, see service.request_text) and output format."""
+    digest = hashlib.sha256(f"{fmt}\n".encode())
+    digest.update(request_json.encode("utf-8"))
+    return digest.hexdigest()
+
+
+def scoped_key(owner: str, key: str | None) -> str | None:
+    """An Idempotency-Key as stored: scoped to its owner, so that owners never meet each other's keys."""
+    return None if key is None else f"{owner}\x1f{key}"
 
 
 def feature_count(request: IndicatorRequest) -> int:
@@ -127,18 +177,29 @@ class JobDatabase:
             self._connection.execute("PRAGMA journal_mode=WAL")
             self._connection.execute("PRAGMA synchronous=FULL")
             self._connection.executescript(_SCHEMA)
+            version = int(self._connection.execute("PRAGMA user_version").fetchone()[0])
+            for number, script in enumerate(_MIGRATIONS[version:], start=version + 1):
+                self._connection.executescript(f"BEGIN; {script} PRAGMA user_version = {number}; COMMIT;")
 
     @contextmanager
     def _transaction(self) -> Iterator[sqlite3.Connection]:
-        """The connection inside BEGIN IMMEDIATE ... COMMIT (rolled back on error)."""
+        """The connection inside BEGIN IMMEDIATE ... COMMIT (rolled back on error).
+
+        A full disk can make the COMMIT fail and SQLite roll back by itself; the ROLLBACK is then only tried,
+        so the error raised is always the one that happened (a failed ROLLBACK once killed the worker).
+        """
         with self._lock:
             self._connection.execute("BEGIN IMMEDIATE")
             try:
                 yield self._connection
+                self._connection.execute("COMMIT")
             except BaseException:
-                self._connection.execute("ROLLBACK")
+                if self._connection.in_transaction:
+                    try:
+                        self._connection.execute("ROLLBACK")
+                    except sqlite3.Error:
+                        log.warning("ROLLBACK failed after an error; the connection is reset by SQLite")
                 raise
-            self._connection.execute("COMMIT")
 
     def close(self) -> None:
         """Close the connection."""
@@ -146,7 +207,7 @@ class JobDatabase:
             self._connection.close()
 
     def insert(self, job: Job, request_json: str) -> Job:
-        """Record a new queued job, or return the job already recorded under its idempotency key."""
+        """Record a new queued job, or return the job already recorded under its (owner-scoped) key."""
         with self._transaction() as db:
             if job.idempotency_key is not None:
                 row = db.execute(
@@ -156,7 +217,7 @@ class JobDatabase:
                     return Job.from_row(row)
             db.execute(
                 "INSERT INTO jobs (id, state, dataset, format, request, request_hash, idempotency_key, "
-                "features_total, created_at) VALUES (?, 'queued', ?, ?, ?, ?, ?, ?, ?)",
+                "features_total, created_at, owner, skipped) VALUES (?, 'queued', ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (
                     job.id,
                     job.dataset,
@@ -166,9 +227,28 @@ class JobDatabase:
                     job.idempotency_key,
                     job.features_total,
                     job.created_at,
+                    job.owner,
+                    json.dumps(job.skipped) if job.skipped else None,
                 ),
             )
         return job
+
+    def list_jobs(self, owner: str | None, state: str | None, limit: int) -> list[Job]:
+        """Jobs newest first: of one owner (None: every owner), in one state (None: any), at most ``limit``."""
+        where, values = [], []
+        if owner is not None:
+            where.append("owner = ?")
+            values.append(owner)
+        if state is not None:
+            where.append("state = ?")
+            values.append(state)
+        clause = f"WHERE {' AND '.join(where)} " if where else ""
+        with self._lock:
+            rows = self._connection.execute(
+                f"SELECT {_COLUMNS} FROM jobs {clause}ORDER BY created_at DESC, rowid DESC LIMIT ?",
+                (*values, limit),
+            ).fetchall()
+        return [Job.from_row(r) for r in rows]
 
     def get(self, job_id: str) -> Job | None:
         """The job of that id, or None."""
@@ -311,13 +391,39 @@ def run_with_pipeline(
     *,
     progress: Callable[[int, int], None],
     cancelled: Callable[[], bool],
+    prepared: Prepared | None = None,
 ) -> tuple[bytes, str, dict[str, str]]:
-    """Compute a job's table with the pipeline and encode it: (bytes, media type, headers)."""
+    """Compute a job's table with the pipeline (reusing the submission's weights) and encode it."""
     from service import encode, pipeline
 
     store = registry.get_dataset(request.dataset)
-    result = pipeline.run(request, store, settings, progress=progress, cancelled=cancelled)
+    result = pipeline.run(
+        request,
+        store,
+        settings,
+        progress=progress,
+        cancelled=cancelled,
+        invalid_features=JOB_INVALID_FEATURES,
+        prepared=prepared,
+    )
     return encode.encode(result, fmt)
+
+
+# What a job does with a feature that cannot be computed when the request does not say (CONTRACTS.md): a
+# batch that loses 0.1 % of its features should not lose the other 99.9 %.
+JOB_INVALID_FEATURES = "skip"
+
+
+@dataclass(frozen=True)
+class _Unrecorded:
+    """A job's end that the database could not take (full disk): kept here and written when it can be."""
+
+    state: str
+    finished_at: float
+    error: dict[str, Any] | None = None
+    result_file: str | None = None
+    media_type: str | None = None
+    headers: dict[str, str] | None = None
 
 
 class JobRunner:
@@ -337,7 +443,9 @@ class JobRunner:
         self.registry = registry
         self.directory = Path(settings.data_dir) / "jobs"
         self.results = self.directory / "results"
+        self.prepared = self.directory / "prepared"
         self.results.mkdir(parents=True, exist_ok=True)
+        self.prepared.mkdir(parents=True, exist_ok=True)
         self.db = JobDatabase(self.directory / "jobs.sqlite")
         self._run_job = run_job
         self._poll_seconds = poll_seconds
@@ -347,6 +455,8 @@ class JobRunner:
         self._stop = threading.Event()
         self._threads: list[threading.Thread] = []
         self._cancelled: set[str] = set()
+        self._unrecorded: dict[str, _Unrecorded] = {}
+        self._unrecorded_lock = threading.Lock()
         self._last_clean_up = 0.0
         self._clean_up_lock = threading.Lock()
 
@@ -357,8 +467,9 @@ class JobRunner:
         requeued, failed = self.db.requeue_interrupted(time.time())
         if requeued or failed:
             log.warning("re-queued %d interrupted job(s); failed %d tried too often", requeued, failed)
-        for partial in self.results.glob("*.partial"):
-            partial.unlink(missing_ok=True)
+        for directory in (self.results, self.prepared):
+            for partial in directory.glob("*.partial"):
+                partial.unlink(missing_ok=True)
         self.clean_up()
         for index in range(self.settings.job_workers):
             thread = threading.Thread(target=self._work, name=f"wxshock-job-worker-{index}", daemon=True)
@@ -382,13 +493,40 @@ class JobRunner:
 
     # --- the API's operations -------------------------------------------------------------------------------
 
+    def check_space(self) -> None:
+        """Refuse new work (507) while the data directory has less free space than min_free_bytes."""
+        try:
+            free = shutil.disk_usage(self.directory).free
+        except OSError:
+            return
+        if free < self.settings.min_free_bytes:
+            raise StorageFullError(
+                f"the server's data directory has {free / 1e6:.1f} MB free, less than the "
+                f"{self.settings.min_free_bytes / 1e6:.1f} MB it keeps for job records and results (setting "
+                "min_free_bytes); no new job is accepted until its administrator frees space; try again later",
+                limit="min_free_bytes",
+            )
+
     def submit(
-        self, request: IndicatorRequest, fmt: str, idempotency_key: str | None = None
+        self,
+        request: IndicatorRequest,
+        fmt: str,
+        idempotency_key: str | None = None,
+        *,
+        owner: str = ANONYMOUS.owner,
+        prepared: Prepared | None = None,
     ) -> tuple[Job, bool]:
-        """Queue a job; returns (job, created). A repeated Idempotency-Key returns the first job."""
+        """Queue a job for ``owner``; returns (job, created). A repeated Idempotency-Key returns the first job.
+
+        ``prepared`` (the checks' weights and skipped features, from check_job_request) is kept for the run.
+        """
+        from service import request_text
+
+        self.check_space()
         # Only the fields the user gave: resolution tells "not given" from "given as the default" (the default
-        # pair, for one), so the stored request must re-validate to exactly the request that was sent.
-        request_json = request.model_dump_json(exclude_unset=True)
+        # pair, for one), so the stored request must re-validate to exactly the request that was sent. Written
+        # feature by feature (a single call over a large request holds every other thread up).
+        request_json = request_text.canonical_text(request, exclude_unset=True)
         digest = request_digest(request_json, fmt)
         job = Job(
             id=uuid.uuid4().hex,
@@ -396,7 +534,7 @@ class JobRunner:
             dataset=self.registry.get_dataset(request.dataset).name,
             format=fmt,
             request_hash=digest,
-            idempotency_key=idempotency_key,
+            idempotency_key=scoped_key(owner, idempotency_key),
             features_total=feature_count(request),
             features_done=0,
             created_at=time.time(),
@@ -406,43 +544,63 @@ class JobRunner:
             error=None,
             result_file=None,
             media_type=None,
+            owner=owner,
+            skipped=list(prepared.skipped) if prepared is not None else [],
         )
-        recorded = self.db.insert(job, request_json)
-        if recorded.id != job.id and recorded.request_hash != digest:
-            raise RequestError(
-                f"Idempotency-Key {idempotency_key!r} was already used for a different request (job "
-                f"{recorded.id}); send a new key for a new request",
-                field="Idempotency-Key",
-            )
-        if recorded.id == job.id:
+        if prepared is not None:
+            self._save_prepared(job.id, prepared)
+        try:
+            recorded = self.db.insert(job, request_json)
+        except sqlite3.Error as exc:
+            self._prepared_path(job.id).unlink(missing_ok=True)
+            raise storage_full(exc) or exc from None
+        if recorded.id != job.id:
+            self._prepared_path(job.id).unlink(missing_ok=True)
+            if recorded.request_hash != digest:
+                # The key is the caller's own (keys are scoped per owner), so naming the job is safe.
+                raise RequestError(
+                    f"Idempotency-Key {idempotency_key!r} was already used for a different request (your job "
+                    f"{recorded.id}); send a new key for a new request",
+                    field="Idempotency-Key",
+                )
+        else:
             self._wake.set()
-        return recorded, recorded.id == job.id
+        return self._overlaid(recorded), recorded.id == job.id
 
-    def status(self, job_id: str) -> Job:
-        """The job's current record, or JobNotFoundError."""
+    def status(self, job_id: str, caller: Principal = ANONYMOUS) -> Job:
+        """The job's current record, or JobNotFoundError (also for a job the caller may not see, or expired)."""
         job = self.db.get(job_id)
-        if job is None:
+        if job is not None and self._expired(job):
+            self._remove(job)
+            job = None
+        if job is None or not caller.sees(job):
+            # Another owner's job is answered exactly like a job that does not exist.
             raise JobNotFoundError(
-                f"no job {job_id!r}: it was never submitted, or it finished more than "
-                f"{self.settings.job_retention_hours:g} hours ago and was removed",
+                f"no job {job_id[:64]!r}{'' if caller.admin else ' of yours'}: it was never submitted, or it "
+                f"finished more than {self.settings.job_retention_hours:g} hours ago and was removed",
                 field="job_id",
             )
-        return job
+        return self._overlaid(job)
 
-    def cancel(self, job_id: str) -> Job:
+    def list_jobs(self, caller: Principal, *, state: str | None = None, limit: int = 100) -> list[Job]:
+        """The caller's jobs (an admin's: everyone's), newest first, expired ones left out."""
+        jobs = self.db.list_jobs(None if caller.admin else caller.owner, state, limit)
+        return [self._overlaid(j) for j in jobs if not self._expired(j)]
+
+    def cancel(self, job_id: str, caller: Principal = ANONYMOUS) -> Job:
         """Cancel a queued or running job (cancelling a cancelled job again is harmless)."""
-        job = self.status(job_id)
+        job = self.status(job_id, caller)
         if job.state in ("succeeded", "failed"):
             raise JobStateError(
                 f"job {job_id!r} already {job.state}; only a queued or running job can be cancelled"
             )
         self._cancelled.add(job_id)
         cancelled = self.db.cancel(job_id, time.time())
-        return cancelled if cancelled is not None else self.status(job_id)
+        return self._overlaid(cancelled) if cancelled is not None else self.status(job_id, caller)
 
-    def result_path(self, job_id: str) -> tuple[Job, Path]:
+    def result_path(self, job_id: str, caller: Principal = ANONYMOUS) -> tuple[Job, Path]:
         """The finished job and its result file, or JobStateError naming the job's state."""
-        job = self.status(job_id)
+        job = self.status(job_id, caller)
         if job.state != "succeeded" or not job.result_file:
             reason = f": {job.error.get('detail')}" if job.state == "failed" and job.error else ""
             raise JobStateError(
@@ -461,31 +619,131 @@ class JobRunner:
             self._last_clean_up = now
             removed = 0
             for job in self.db.expired(now - self.settings.job_retention_hours * 3600.0):
-                if job.result_file:
-                    (self.results / job.result_file).unlink(missing_ok=True)
-                self.db.delete(job.id)
+                self._remove(job)
                 removed += 1
         if removed:
             log.info("removed %d expired job(s)", removed)
         return removed
 
+    def _expired(self, job: Job, now: float | None = None) -> bool:
+        """Whether a finished job is past its retention time (checked on every read, not only by clean-up)."""
+        if job.finished_at is None or job.state not in FINISHED_STATES:
+            return False
+        now = time.time() if now is None else now
+        return job.finished_at < now - self.settings.job_retention_hours * 3600.0
+
+    def _remove(self, job: Job) -> None:
+        """Delete a job's files and record (the record stays when the database cannot be written)."""
+        if job.result_file:
+            (self.results / job.result_file).unlink(missing_ok=True)
+        self._prepared_path(job.id).unlink(missing_ok=True)
+        try:
+            self.db.delete(job.id)
+        except sqlite3.Error:
+            log.warning(
+                "cannot remove the record of expired job %s now; it is hidden and removed later", job.id
+            )
+
+    # --- prepared weights -----------------------------------------------------------------------------------
+
+    def _prepared_path(self, job_id: str) -> Path:
+        """Where the weights computed at a job's submission are kept until it ends."""
+        return self.prepared / f"{job_id}.pickle"
+
+    def _save_prepared(self, job_id: str, prepared: Prepared) -> None:
+        """Keep the submission's weights for the run (a full disk refuses the job with 507)."""
+        try:
+            write_atomically(self._prepared_path(job_id), pickle.dumps(prepared, protocol=5))
+        except OSError as exc:
+            raise storage_full(exc) or exc from None
+
+    def _load_prepared(self, job_id: str) -> Prepared | None:
+        """The weights kept at submission, or None (the run then computes them again)."""
+        path = self._prepared_path(job_id)
+        try:
+            with open(path, "rb") as handle:
+                return pickle.load(handle)  # written by this server into its own data directory
+        except FileNotFoundError:
+            return None
+        except Exception:  # noqa: BLE001 - an unreadable file (another version) costs only the recomputation
+            log.warning("job %s: the weights kept at submission cannot be read; computing them again", job_id)
+            return None
+
+    # --- recording ends through a full disk -----------------------------------------------------------------
+
+    def _overlaid(self, job: Job) -> Job:
+        """The job with an end that the database could not take yet."""
+        with self._unrecorded_lock:
+            end = self._unrecorded.get(job.id)
+        if end is None or job.state != "running":
+            return job
+        return Job(
+            **{
+                **job.__dict__,
+                "state": end.state,
+                "finished_at": end.finished_at,
+                "error": end.error,
+                "result_file": end.result_file,
+                "media_type": end.media_type,
+                "headers": end.headers or {},
+            }
+        )
+
+    def _finish(self, job_id: str, end: _Unrecorded) -> bool:
+        """Record a job's end; when the database cannot take it, keep it to write later. False: cancelled."""
+        try:
+            recorded = self.db.finish(
+                job_id,
+                end.state,
+                end.finished_at,
+                error=end.error,
+                result_file=end.result_file,
+                media_type=end.media_type,
+                headers=end.headers,
+            )
+        except sqlite3.Error as exc:
+            log.warning("job %s: cannot record that it %s (%s); kept to record later", job_id, end.state, exc)
+            with self._unrecorded_lock:
+                self._unrecorded[job_id] = end
+            return True
+        with self._unrecorded_lock:
+            self._unrecorded.pop(job_id, None)
+        if recorded:
+            self._prepared_path(job_id).unlink(missing_ok=True)
+        return recorded
+
+    def _record_pending(self) -> None:
+        """Try again to record the ends the database could not take."""
+        with self._unrecorded_lock:
+            pending = list(self._unrecorded.items())
+        for job_id, end in pending:
+            self._finish(job_id, end)
+
     # --- the workers ----------------------------------------------------------------------------------------
 
     def _work(self) -> None:
-        """A worker thread: claim the oldest queued job, run it, repeat; clean up now and then when idle."""
+        """A worker thread: claim the oldest queued job, run it, repeat; clean up now and then when idle.
+
+        Nothing that goes wrong here ends the thread: a storage error (a full disk) is logged and the loop goes
+        on, so the worker is alive again as soon as space is freed.
+        """
         while not self._stop.is_set():
             try:
+                self._record_pending()
                 job = self.db.claim_next(time.time())
-            except sqlite3.Error:
-                log.exception("cannot read the job queue")
+                if time.time() - self._last_clean_up > self._clean_up_seconds:
+                    self.clean_up()  # also between jobs, so that a busy queue does not keep old results forever
+            except Exception:  # noqa: BLE001 - the worker outlives any storage error
+                log.exception("the job queue cannot be read or written; trying again shortly")
                 job = None
-            if time.time() - self._last_clean_up > self._clean_up_seconds:
-                self.clean_up()  # also between jobs, so that a busy queue does not keep old results forever
             if job is None:
                 self._wake.wait(self._poll_seconds)
                 self._wake.clear()
                 continue
-            self._run(job)
+            try:
+                self._run(job)
+            except Exception:  # noqa: BLE001 - _run records failures itself; this is the last guard
+                log.exception("job %s: the worker failed while handling it", job.id)
 
     def _run(self, job: Job) -> None:
         """Run one claimed job to its end state; never raises."""
@@ -495,35 +753,49 @@ class JobRunner:
         last_write = [0.0]
 
         def progress(done: int, total: int) -> None:
-            # Progress comes per feature batch; write it at most a few times a second.
+            # Progress comes per feature batch; write it at most a few times a second. Progress is only
+            # informative: a database that cannot take it (a full disk) does not stop the run.
             now = time.monotonic()
             if now - last_write[0] >= 0.2 or done >= total:
                 last_write[0] = now
-                self.db.progress(job.id, int(done), int(total))
+                try:
+                    self.db.progress(job.id, int(done), int(total))
+                except sqlite3.Error as exc:
+                    log.warning("job %s: cannot record progress (%s)", job.id, exc)
 
         def cancelled_by_user() -> bool:
             if job.id in self._cancelled:
                 return True
-            current = self.db.get(job.id)
+            try:
+                current = self.db.get(job.id)
+            except sqlite3.Error:
+                return False
             return current is None or current.state != "running"
 
         def cancelled() -> bool:
             # A stopping server interrupts the run too; the job stays 'running' and is re-queued on start.
             return self._stop.is_set() or cancelled_by_user()
 
+        result: Path | None = None
         try:
-            request = IndicatorRequest.model_validate_json(self.db.request_of(job.id))
+            request = parse_stored_request(self.db.request_of(job.id), IndicatorRequest)
+            kwargs: dict[str, Any] = {"progress": progress, "cancelled": cancelled}
+            prepared = self._load_prepared(job.id)
+            if prepared is not None:
+                kwargs["prepared"] = prepared
             body, media_type, headers = self._run_job(
-                request, self.registry, self.settings, job.format, progress=progress, cancelled=cancelled
+                request, self.registry, self.settings, job.format, **kwargs
             )
             if cancelled_by_user():
                 raise RunCancelledError(f"job {job.id} was cancelled")
             name = f"{job.id}.{SUFFIXES[job.format]}"
-            _write_atomically(self.results / name, body)
-            if not self.db.finish(
-                job.id, "succeeded", time.time(), result_file=name, media_type=media_type, headers=headers
-            ):
-                (self.results / name).unlink(missing_ok=True)
+            result = self.results / name
+            write_atomically(result, body)
+            end = _Unrecorded(
+                "succeeded", time.time(), result_file=name, media_type=media_type, headers=headers
+            )
+            if not self._finish(job.id, end):
+                result.unlink(missing_ok=True)
             else:
                 log.info("job %s: succeeded (%d bytes)", job.id, len(body))
         except RunCancelledError:
@@ -531,30 +803,52 @@ class JobRunner:
                 log.info("job %s: interrupted by the server stopping; it will run again on start", job.id)
             else:
                 log.info("job %s: cancelled", job.id)
+                self._prepared_path(job.id).unlink(missing_ok=True)
         except Exception as exc:  # noqa: BLE001 - a job's failure is recorded, never lost, never kills the worker
+            if result is not None:
+                result.unlink(missing_ok=True)
             status, problem = problem_for(exc, instance=f"/v1/jobs/{job.id}")
             if status == 503 and job.attempts < MAX_ATTEMPTS and not self._stop.is_set():
                 # The cluster or a store was unavailable, not the request wrong: wait, then queue it again.
                 delay = self._retry_seconds * job.attempts
                 log.warning("job %s: %s; trying again in %.0f s", job.id, problem["detail"], delay)
                 self._stop.wait(delay)
-                self.db.requeue(job.id)
-                return
-            if not isinstance(exc, RequestError):
-                log.exception("job %s failed", job.id)
-            self.db.finish(job.id, "failed", time.time(), error=problem)
+                try:
+                    self.db.requeue(job.id)
+                    return
+                except sqlite3.Error:
+                    log.warning("job %s: cannot queue it again; recording it as failed", job.id)
+            if status >= 500 and status not in (503, 507):
+                log.error("job %s failed", job.id, exc_info=exc)
+            elif status == 507:
+                log.error("job %s failed: the data directory is full (%s)", job.id, exc)
+            self._finish(job.id, _Unrecorded("failed", time.time(), error=problem))
         finally:
             self._cancelled.discard(job.id)
 
 
-def _write_atomically(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` through a .partial file renamed into place once on disk."""
+def parse_stored_request(text: str, model: type[Any]) -> Any:
+    """A stored request re-validated, parsed feature by feature (see service.request_text)."""
+    from service import request_text
+
+    return model.model_validate(request_text.loads(text))
+
+
+def write_atomically(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` through a .partial file renamed into place once on disk.
+
+    On any error (a full disk among them) the partial file is removed before the error is raised.
+    """
     partial = path.with_name(path.name + ".partial")
-    with open(partial, "wb") as handle:
-        handle.write(data)
-        handle.flush()
-        os.fsync(handle.fileno())
-    os.replace(partial, path)
+    try:
+        with open(partial, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(partial, path)
+    except BaseException:
+        partial.unlink(missing_ok=True)
+        raise
     directory = os.open(path.parent, os.O_RDONLY)
     try:
         os.fsync(directory)
@@ -562,28 +856,14 @@ def _write_atomically(path: Path, data: bytes) -> None:
         os.close(directory)
 
 
-def check_job_request(request: IndicatorRequest, registry: StoreRegistry, settings: Settings) -> None:
-    """Refuse at submission what the run would refuse: unknown dataset, years, baseline, lags, geometries."""
-    from service.errors import LimitExceededError
-    from service.geometry import parse_features
-    from service.indicators.table import resolve_request
+def check_job_request(request: IndicatorRequest, registry: StoreRegistry, settings: Settings) -> Prepared:
+    """Refuse at submission what the run would refuse, with the on-demand route's own checks.
+
+    Request-level faults always raise (422/404); features that cannot be computed are skipped unless the
+    request says ``"invalid_features": "fail"``, and a job with no feature left is refused (422). Returns the
+    weights and skipped features, which the run reuses.
+    """
+    from service import pipeline
 
     store = registry.get_dataset(request.dataset)
-    span = resolve_request(request, store.dates).years
-    years = span.end - span.start + 1 if span is not None else 0
-    if span is not None and years > settings.max_years_per_request:
-        raise LimitExceededError(
-            f"the request spans {years} years ({span.start}-{span.end}); at most "
-            f"{settings.max_years_per_request} are allowed (setting max_years_per_request); ask for fewer years",
-            limit="max_years_per_request",
-            allowed=settings.max_years_per_request,
-            got=years,
-            pointer="/years",
-        )
-    parse_features(
-        request.features.model_dump(mode="json", exclude_none=False),
-        id_property=request.id_property,
-        crs=request.crs,
-        repair=request.repair,
-        max_vertices=settings.max_vertices_per_feature,
-    )
+    return pipeline.prepare(request, store, settings, invalid_features=JOB_INVALID_FEATURES)

@@ -16,14 +16,21 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from service import __version__, cluster
+from service import __version__, cluster, request_text
 from service.aggregate import aggregate
 from service.encode import RunResult
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
-from service.errors import LimitExceededError, OutOfRangeError, RunCancelledError, UnknownDatasetError
+from service.errors import (
+    FeatureError,
+    LimitExceededError,
+    OutOfRangeError,
+    RunCancelledError,
+    UnknownDatasetError,
+)
 from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
 from service.indicators.base import VARIABLES, DailySeries, snap_daily, snap_decimals
 from service.indicators.table import add_warning_notes, compute_table, plan_indicators, resolve_request
+from service.prepared import Prepared, skipped_of, skipped_warnings, without_shapes
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
 from service.store import Store, open_store
@@ -57,28 +64,31 @@ def pick_store(stores: Mapping[str, Store], name: str | None) -> Store:
 
 
 def request_hash(resolved: IndicatorRequest | SeriesRequest, fingerprint: str) -> str:
-    """SHA-256 over the resolved request, the dataset fingerprint and the software version."""
-    payload = {
-        "request": resolved.model_dump(mode="json"),
-        "fingerprint": fingerprint,
-        "software": __version__,
-    }
-    canonical = json.dumps(payload, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
-    return "sha256:" + hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+    """SHA-256 over the resolved request, the dataset fingerprint and the software version.
+
+    The canonical JSON of {"fingerprint", "request", "software"} (sorted keys, compact), written feature by
+    feature so that a large request never holds the interpreter in one call.
+    """
+    around = {"fingerprint": fingerprint, "software": __version__}
+    return "sha256:" + request_text.canonical_sha256(resolved, around, "request")
 
 
 def provenance(
-    resolved: IndicatorRequest | SeriesRequest, store: Store, parsed: ParsedFeatures
+    resolved: IndicatorRequest | SeriesRequest,
+    store: Store,
+    parsed: ParsedFeatures,
+    skipped: list[dict[str, Any]] | None = None,
 ) -> dict[str, Any]:
-    """Dataset, fingerprint, software, request hash and the resolved request (features by count and hash)."""
-    request = resolved.model_dump(mode="json")
-    features_json = json.dumps(
-        request.pop("features"), sort_keys=True, separators=(",", ":"), ensure_ascii=False
-    )
+    """Dataset, fingerprint, software, request hash and the resolved request (features by count and hash).
+
+    ``skipped`` lists the features left out under invalid_features 'skip' (their rows hold nulls).
+    """
+    request = resolved.model_dump(mode="json", exclude={"features"})
     request["features"] = {
         "count": len(parsed.features),
-        "sha256": hashlib.sha256(features_json.encode("utf-8")).hexdigest(),
+        "sha256": request_text.features_sha256(resolved),
         "repaired": list(parsed.repaired),
+        "skipped": list(skipped or []),
     }
     request["dataset"] = store.name
     return {
@@ -108,15 +118,21 @@ def _check_years(years: tuple[int, int], settings: Settings) -> None:
 
 
 def features_and_weights(
-    request: IndicatorRequest | SeriesRequest, store: Store, settings: Settings
+    request: IndicatorRequest | SeriesRequest, store: Store, settings: Settings, *, invalid: str = "fail"
 ) -> tuple[ParsedFeatures, Weights]:
-    """Parse and check the request's features, then their weights on the store's grid."""
+    """Parse and check the request's features, then their weights on the store's grid.
+
+    ``invalid`` 'skip' asks service.geometry to skip, not refuse, features that cannot be computed (their
+    weight rows stay empty); the results then list them in ``skipped``.
+    """
+    skip_option = _skip_option(invalid)
     parsed = parse_features(
-        request.features.model_dump(mode="json", exclude_none=False),
+        request_text.features_as_dict(request),
         id_property=request.id_property,
         crs=request.crs,
         repair=request.repair,
         max_vertices=settings.max_vertices_per_feature,
+        **skip_option,
     )
     weighting = request.weighting
     layer = None
@@ -138,8 +154,18 @@ def features_and_weights(
         data_mask=store.data_mask(),
         max_cells=settings.max_cells_per_feature,
         cache_size=settings.weights_cache_size,
+        **skip_option,
     )
     return parsed, weights
+
+
+def _skip_option(invalid: str) -> dict[str, str]:
+    """The keyword asking service.geometry to skip bad features, where its functions take it."""
+    import inspect
+
+    if invalid == "fail" or "invalid" not in inspect.signature(parse_features).parameters:
+        return {}
+    return {"invalid": invalid}
 
 
 def take_weights(weights: Weights, rows: np.ndarray) -> Weights:
@@ -245,12 +271,20 @@ def run(
     progress: Progress | None = None,
     cancelled: Cancelled | None = None,
     batch_size: int = DEFAULT_BATCH_FEATURES,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
 ) -> RunResult:
-    """Season indicators for every feature of the request, one row per (feature_id, year)."""
+    """Season indicators for every feature of the request, one row per (feature_id, year).
+
+    ``invalid_features`` is what to do with a feature that cannot be computed when the request does not say
+    ('fail' on demand, 'skip' for jobs). ``prepared`` reuses the weights of an earlier :func:`prepare`.
+    """
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
     variables = needed_variables(resolved)
-    parsed, weights = features_and_weights(resolved, store, settings)
+    if prepared is None:
+        prepared = _prepare_resolved(resolved, store, settings, invalid_features)
+    parsed, weights = prepared.parsed, prepared.weights
     # a fixed baseline may lie after the requested years: read up to whichever ends later
     span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
     properties = [f.properties for f in parsed.features]
@@ -279,13 +313,85 @@ def run(
             progress(done, total)
     frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
     warnings = _warnings_in_order(warnings, weights.feature_ids)
+    frame, warnings = _without_skipped(frame, warnings, prepared.skipped)
     later = [
         warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
         for feature_id in parsed.repaired
-    ]
+    ] + skipped_warnings(prepared.skipped)
     warnings.extend(later)
     frame = add_warning_notes(frame, later)  # notes last, with the codes of the warnings made here
-    return RunResult(frame=frame, provenance=provenance(resolved, store, parsed), warnings=warnings)
+    return RunResult(
+        frame=frame,
+        provenance=provenance(resolved, store, parsed, prepared.skipped),
+        warnings=warnings,
+    )
+
+
+def _without_skipped(
+    frame: pd.DataFrame, warnings: list[dict[str, Any]], skipped: list[dict[str, Any]]
+) -> tuple[pd.DataFrame, list[dict[str, Any]]]:
+    """A skipped feature's rows (all nulls) lose the warnings its missing values made; the caller adds one
+    feature_skipped warning for it instead."""
+    if not skipped:
+        return frame, warnings
+    ids = {e["feature_id"] for e in skipped if e["feature_id"] is not None}
+    kept = [w for w in warnings if w.get("feature_id") not in ids]
+    if "notes" in frame.columns:
+        frame = frame.copy()
+        frame.loc[frame["feature_id"].isin(ids), "notes"] = ""
+    return frame, kept
+
+
+def prepare(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    invalid_features: str = "fail",
+    keep_shapes: bool = False,
+) -> Prepared:
+    """Every check a run makes before reading daily values, and the features' weights: what a job's
+    submission runs (so it refuses what the run would refuse) and what its run reuses.
+
+    Request-level faults raise; per-feature faults raise under 'fail' (one error listing every bad feature)
+    and are skipped under 'skip'. A request whose every feature is skipped raises FeatureError (422).
+    ``keep_shapes`` keeps the features' geometries (the map draws them); otherwise they are dropped.
+    """
+    resolved = resolve_request(request, store.dates, store.calendar, store.variables)
+    _check_years((resolved.years.start, resolved.years.end), settings)
+    return _prepare_resolved(resolved, store, settings, invalid_features, keep_shapes)
+
+
+def _prepare_resolved(
+    resolved: IndicatorRequest | SeriesRequest,
+    store: Store,
+    settings: Settings,
+    invalid_features: str,
+    keep_shapes: bool = False,
+) -> Prepared:
+    """The weights of a resolved request's features under the request's (or the caller's) invalid_features."""
+    mode = resolved.invalid_features or invalid_features
+    parsed, weights = features_and_weights(resolved, store, settings, invalid=mode)
+    skipped = skipped_of(parsed, weights)
+    skipped_ids = {e["feature_id"] for e in skipped}
+    if skipped and all(f.id in skipped_ids for f in parsed.features):
+        first = skipped[0]
+        raise FeatureError(
+            f"no feature of the request can be computed: all {len(skipped)} are invalid or without data "
+            f"(first: feature {first['feature_id']!r}: {first['reason']}); see 'errors'",
+            pointer=first["pointer"],
+            feature_id=first["feature_id"],
+            errors=[
+                {
+                    "pointer": e["pointer"],
+                    "feature_id": e["feature_id"],
+                    "code": e["code"],
+                    "detail": e["reason"],
+                }
+                for e in skipped
+            ],
+        )
+    return Prepared(parsed if keep_shapes else without_shapes(parsed), weights, skipped, mode)
 
 
 def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFrame:

@@ -2,10 +2,130 @@
 
 from __future__ import annotations
 
+import math
 import re
+from collections.abc import Iterator
 from typing import Annotated, Any, Literal, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Discriminator,
+    Field,
+    StrictBool,
+    StrictInt,
+    Tag,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+from pydantic_core import InitErrorDetails, PydanticCustomError
+
+# Ids and every other free text of a request are at most this many characters (CONTRACTS.md): an id is
+# repeated on every output row, so a 1 MB id made a 1 MB request cost gigabytes.
+MAX_TEXT = 200
+# Class edges and spell z bounds lie within +-MAX_Z standard deviations. A season 10 sd from its normal has a
+# probability below 1e-23 under a normal law, so no edge beyond it can separate seasons; the bound also keeps
+# the class axis of the pictures drawable (edges of +-1e308 broke matplotlib).
+MAX_Z = 10.0
+
+Text = Annotated[str, Field(max_length=MAX_TEXT)]
+Year = Annotated[StrictInt, Field(ge=1, le=9999)]
+# Numbers refuse true/false and numbers written as text ("1.5"): leniency there hides a mistake.
+Number = Annotated[float, Field(strict=True)]
+ZValue = Annotated[float, Field(strict=True, ge=-MAX_Z, le=MAX_Z)]
+
+# --- checks that apply to the whole request ---------------------------------------------------------------
+
+
+def _problem(kind: str, message: str, loc: tuple[int | str, ...], value: Any) -> InitErrorDetails:
+    """One validation problem at ``loc`` (a path into the request), for ValidationError.from_exception_data."""
+    return InitErrorDetails(type=PydanticCustomError(kind, message), loc=loc, input=value)
+
+
+def _preview(text: str) -> str:
+    """The start of a long text, for messages that must not echo all of it."""
+    return text[:40] + f"... ({len(text)} characters)"
+
+
+def _walk(value: Any, loc: tuple[int | str, ...]) -> Iterator[InitErrorDetails]:
+    """Non-finite numbers and texts longer than MAX_TEXT in a JSON-like value, keys included."""
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            yield _problem(
+                "finite_number",
+                f"{value!r} is not a finite number; JSON has no NaN or Infinity: send a number, or leave the "
+                "field out for its default",
+                loc,
+                repr(value),
+            )
+    elif isinstance(value, str):
+        if len(value) > MAX_TEXT:
+            yield _problem(
+                "text_too_long",
+                f"this text has {len(value)} characters, more than the {MAX_TEXT} allowed",
+                loc,
+                _preview(value),
+            )
+    elif isinstance(value, dict):
+        for key, item in value.items():
+            if isinstance(key, str) and len(key) > MAX_TEXT:
+                yield _problem(
+                    "text_too_long",
+                    f"this name has {len(key)} characters, more than the {MAX_TEXT} allowed",
+                    (*loc, key[:40] + "..."),
+                    _preview(key),
+                )
+                continue
+            yield from _walk(item, (*loc, key))
+    elif isinstance(value, list | tuple):
+        for index, item in enumerate(value):
+            yield from _walk(item, (*loc, index))
+
+
+def _id_problems(features: Any, id_property: Any) -> Iterator[InitErrorDetails]:
+    """Feature ids (the Feature id, or the property named by id_property) longer than MAX_TEXT."""
+    if not isinstance(features, dict):
+        return
+    if features.get("type") == "FeatureCollection" and isinstance(features.get("features"), list):
+        items = [(("features", "features", i), f) for i, f in enumerate(features["features"])]
+    else:
+        items = [(("features",), features)]
+    for loc, feature in items:
+        if not isinstance(feature, dict):
+            continue
+        if isinstance(id_property, str):
+            properties = feature.get("properties")
+            value = properties.get(id_property) if isinstance(properties, dict) else None
+            where: tuple[int | str, ...] = (*loc, "properties", id_property)
+        else:
+            value, where = feature.get("id"), (*loc, "id")
+        text = str(value) if isinstance(value, str | int) and not isinstance(value, bool) else ""
+        if len(text) > MAX_TEXT:
+            yield _problem(
+                "id_too_long",
+                f"this feature id has {len(text)} characters, more than the {MAX_TEXT} allowed; ids are "
+                "repeated on every output row: use a short code and keep names in your own table",
+                where,
+                _preview(text),
+            )
+
+
+def value_problems(data: dict[str, Any]) -> Iterator[InitErrorDetails]:
+    """Every non-finite number and over-long text of a raw request (a JSON object), by location.
+
+    This is the one place where they are refused. Inside ``features`` only the ids are looked at: coordinates
+    and buffers are checked per feature by service.geometry (a bad one is a per-feature fault, which a job
+    may skip), and other properties are not used.
+    """
+    for key, value in data.items():
+        if key == "features":
+            yield from _id_problems(value, data.get("id_property"))
+        elif isinstance(key, str) and len(key) > MAX_TEXT:
+            yield from _walk({key: value}, ())
+        else:
+            yield from _walk(value, (key,))
+
 
 _MONTH_DAY = re.compile(r"^(0[1-9]|1[0-2])-(0[1-9]|[12][0-9]|3[01])$")
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,39}$")
@@ -45,8 +165,8 @@ class GeoJSONFeatureCollection(BaseModel):
 class YearSpan(_Model):
     """Inclusive span of season-years."""
 
-    start: int = Field(ge=1, le=9999)
-    end: int = Field(ge=1, le=9999)
+    start: Year
+    end: Year
 
     @model_validator(mode="after")
     def _ordered(self) -> YearSpan:
@@ -59,7 +179,7 @@ class YearSpan(_Model):
 class MonthsSeason(_Model):
     """A season of whole months, one contiguous run that may cross the new year ([11, 12, 1, 2])."""
 
-    months: list[int] = Field(min_length=1, max_length=12)
+    months: list[StrictInt] = Field(min_length=1, max_length=12)
 
     @field_validator("months")
     @classmethod
@@ -82,8 +202,8 @@ class MonthsSeason(_Model):
 class WindowSeason(_Model):
     """A season from one day of the year to another, both inclusive, 'MM-DD'; it may cross the new year."""
 
-    start: str
-    end: str
+    start: Text
+    end: Text
 
     @field_validator("start", "end")
     @classmethod
@@ -100,7 +220,7 @@ class WindowSeason(_Model):
 class PropertySeason(_Model):
     """Each feature's own season, read from a feature property that holds a months list or a window."""
 
-    property: str = Field(min_length=1)
+    property: Text = Field(min_length=1)
 
 
 def _by_keys(**tags: str):  # noqa: ANN202 - a pydantic discriminator callable
@@ -142,8 +262,8 @@ Season = Annotated[
 class FixedBaseline(_Model):
     """The normal is the same span of season-years for every season."""
 
-    start: int = Field(ge=1, le=9999)
-    end: int = Field(ge=1, le=9999)
+    start: Year
+    end: Year
 
     @model_validator(mode="after")
     def _span(self) -> FixedBaseline:
@@ -160,7 +280,7 @@ class FixedBaseline(_Model):
 class TrailingBaseline(_Model):
     """A moving normal: the N season-years before each season-year."""
 
-    trailing: int = Field(ge=3, le=100)
+    trailing: StrictInt = Field(ge=3, le=100)
 
 
 # --- what to compute ----------------------------------------------------------------------------------------
@@ -170,7 +290,7 @@ class IndicatorSpec(BaseModel):
     """An indicator by name with parameters; parameters are checked against the catalog."""
 
     model_config = ConfigDict(extra="allow")
-    name: str = Field(min_length=1)
+    name: Text = Field(min_length=1)
 
     def params(self) -> dict[str, Any]:
         """The parameters given beside the name."""
@@ -180,15 +300,17 @@ class IndicatorSpec(BaseModel):
 class Classes(_Model):
     """Class edges in standard-deviation units; n edges make n + 1 classes numbered around 0."""
 
-    edges: list[float] = Field(default_factory=lambda: [-2.0, -1.0, 1.0, 2.0], min_length=1, max_length=12)
+    edges: list[ZValue] = Field(
+        default_factory=lambda: [-2.0, -1.0, 1.0, 2.0],
+        min_length=1,
+        max_length=12,
+        description=f"Standard deviations, strictly increasing, each within +-{MAX_Z:g}.",
+    )
 
     @field_validator("edges")
     @classmethod
     def _increasing(cls, edges: list[float]) -> list[float]:
-        """Edges must be finite and strictly increasing."""
-        for e in edges:
-            if e != e or e in (float("inf"), float("-inf")):
-                raise ValueError(f"edge {e!r} is not a finite number")
+        """Edges must be strictly increasing (finite and within +-MAX_Z by their type)."""
         if any(b <= a for a, b in zip(edges, edges[1:], strict=False)):
             raise ValueError(f"edges {edges!r} are not strictly increasing")
         return edges
@@ -197,11 +319,11 @@ class Classes(_Model):
 class SpellCondition(_Model):
     """One condition of a spell: bounds on an indicator's class and/or z (all given bounds must hold)."""
 
-    indicator: str
-    class_min: int | None = None
-    class_max: int | None = None
-    z_min: float | None = None
-    z_max: float | None = None
+    indicator: Text
+    class_min: StrictInt | None = Field(default=None, ge=-12, le=12)
+    class_max: StrictInt | None = Field(default=None, ge=-12, le=12)
+    z_min: ZValue | None = None
+    z_max: ZValue | None = None
 
     @model_validator(mode="after")
     def _some_bound(self) -> SpellCondition:
@@ -216,8 +338,8 @@ class SpellCondition(_Model):
 class Spell(_Model):
     """A named condition over seasons; yields <name>_run and <name>_count over the last `window` seasons."""
 
-    name: str
-    window: int = Field(default=5, ge=1, le=100)
+    name: Text
+    window: StrictInt = Field(default=5, ge=1, le=100)
     when: list[SpellCondition] = Field(min_length=1)
 
     @field_validator("name")
@@ -234,7 +356,7 @@ class Spell(_Model):
 class LayerWeighting(_Model):
     """Area weights times a static weight layer of the store (population, cropland, ...)."""
 
-    layer: str = Field(min_length=1)
+    layer: Text = Field(min_length=1)
 
 
 Weighting = Annotated[
@@ -250,7 +372,7 @@ Weighting = Annotated[
 class _FeatureRequest(_Model):
     """Fields shared by every request that sends communities."""
 
-    dataset: str | None = Field(default=None, description="Dataset name; default: the first served dataset.")
+    dataset: Text | None = Field(default=None, description="Dataset name; default: the first served dataset.")
     features: Annotated[
         Annotated[GeoJSONFeatureCollection, Tag("FeatureCollection")]
         | Annotated[GeoJSONFeature, Tag("Feature")],
@@ -265,18 +387,35 @@ class _FeatureRequest(_Model):
             custom_error_message="features must be a GeoJSON FeatureCollection or Feature (RFC 7946)",
         ),
     ]
-    id_property: str | None = Field(
+    id_property: Text | None = Field(
         default=None,
         description="Feature property that holds the community id; default: the Feature's own id.",
     )
-    crs: str | None = Field(
+    crs: Text | None = Field(
         default=None,
         description="CRS of the coordinates (any pyproj-readable string); default: WGS84 lon/lat.",
     )
     weighting: Weighting = "area"
-    repair: bool = Field(
+    repair: StrictBool = Field(
         default=False, description="Make invalid polygons valid (and report it) instead of failing."
     )
+    invalid_features: Literal["fail", "skip"] | None = Field(
+        default=None,
+        description="A feature that cannot be computed (invalid geometry, outside the grid or without data, "
+        "swapped coordinates): 'fail' refuses the request with one 422 listing every such feature; 'skip' "
+        "keeps its rows with null values and a feature_skipped warning. Default: 'fail' on demand, 'skip' "
+        "for batch jobs.",
+    )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _finite_and_short(cls, data: Any) -> Any:
+        """Refuse, in one place, non-finite numbers and over-long text anywhere in the request (see checks)."""
+        if isinstance(data, dict):
+            problems = list(value_problems(data))
+            if problems:
+                raise ValidationError.from_exception_data(cls.__name__, problems)
+        return data
 
 
 class IndicatorRequest(_FeatureRequest):
@@ -304,7 +443,7 @@ class IndicatorRequest(_FeatureRequest):
     indicators: (
         list[
             Annotated[
-                Annotated[str, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
+                Annotated[Text, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
                 Discriminator(
                     _by_keys(name="Spec"),
                     custom_error_type="indicator",
@@ -315,12 +454,12 @@ class IndicatorRequest(_FeatureRequest):
         | None
     ) = Field(default=None, description="Default: the default set.")
     classes: Classes = Field(default_factory=Classes)
-    lags: list[int] = Field(default_factory=lambda: [0], min_length=1, max_length=50)
-    pairs: list[tuple[str, str]] = Field(default_factory=list, max_length=20)
-    sequences: list[tuple[int, int]] = Field(default_factory=list, max_length=20)
+    lags: list[StrictInt] = Field(default_factory=lambda: [0], min_length=1, max_length=50)
+    pairs: list[tuple[Text, Text]] = Field(default_factory=list, max_length=20)
+    sequences: list[tuple[StrictInt, StrictInt]] = Field(default_factory=list, max_length=20)
     spells: list[Spell] = Field(default_factory=list, max_length=20)
     layout: Literal["wide", "long"] = "wide"
-    max_missing_share: float | None = Field(
+    max_missing_share: Number | None = Field(
         default=None,
         ge=0.0,
         le=1.0,
@@ -356,11 +495,19 @@ class IndicatorRequest(_FeatureRequest):
 
     @model_validator(mode="after")
     def _spell_names_unique(self) -> IndicatorRequest:
-        """Spell names become column prefixes and must differ."""
-        names = [s.name for s in self.spells]
-        dupes = sorted({n for n in names if names.count(n) > 1})
-        if dupes:
-            raise ValueError(f"spell names {dupes!r} are used more than once")
+        """Spell names become column prefixes and must differ; each repeat is named by its pointer."""
+        first: dict[str, int] = {}
+        problems: list[InitErrorDetails] = []
+        for index, spell in enumerate(self.spells):
+            if spell.name in first:
+                message = (
+                    f"spell name {spell.name!r} is used more than once (also by spells[{first[spell.name]}]); "
+                    "spell names become column prefixes and must differ"
+                )
+                problems.append(_problem("duplicate_name", message, ("spells", index, "name"), spell.name))
+            first.setdefault(spell.name, index)
+        if problems:
+            raise ValidationError.from_exception_data(type(self).__name__, problems)
         return self
 
 

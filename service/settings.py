@@ -10,6 +10,9 @@ from typing import Annotated
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
+# Shorter bearer tokens are refused at start: 16 random characters are beyond guessing over a network.
+MIN_TOKEN_LENGTH = 16
+
 
 def _default_data_dir() -> Path:
     """Where built demo stores, job records and results live unless told otherwise."""
@@ -19,7 +22,8 @@ def _default_data_dir() -> Path:
 class Settings(BaseSettings):
     """Validated at start; passed in (create_app(settings), run(..., settings)) rather than read globally."""
 
-    model_config = SettingsConfigDict(env_prefix="WXSHOCK_", extra="ignore")
+    # hide_input_in_errors: a refused setting is never echoed (it may be a token or a key).
+    model_config = SettingsConfigDict(env_prefix="WXSHOCK_", extra="ignore", hide_input_in_errors=True)
 
     # where data lives
     data_dir: Path = Field(
@@ -43,11 +47,14 @@ class Settings(BaseSettings):
     )
     tokens: Annotated[list[SecretStr], NoDecode] = Field(
         default_factory=list,
-        description="Bearer tokens (plain); when any token is configured every /v1 route needs one.",
+        description="Bearer tokens (plain), separated by commas (a comma always separates two tokens); each "
+        f"at least {MIN_TOKEN_LENGTH} characters; when any token is configured every /v1 route needs one. "
+        "A plain token's owner is 'token-' and the first 8 hex digits of its SHA-256.",
     )
     token_file: Path | None = Field(
         default=None,
-        description="File of SHA-256 hex digests of bearer tokens, one a line ('#' starts a comment).",
+        description="File of bearer tokens, one a line: '<sha256-hex> [<owner> [admin]]' ('#' starts a "
+        "comment). Jobs belong to the owner of the token that submitted them; an admin sees every job.",
     )
 
     # limits
@@ -74,6 +81,11 @@ class Settings(BaseSettings):
     )
     job_workers: int = Field(default=1, ge=1, le=16)
     job_retention_hours: float = Field(default=168.0, gt=0)
+    min_free_bytes: int = Field(
+        default=200_000_000,
+        ge=0,
+        description="New jobs are refused (507) while the data directory has less free space than this.",
+    )
 
     # object storage (s3:// stores)
     s3_endpoint_url: str | None = None
@@ -81,7 +93,7 @@ class Settings(BaseSettings):
     s3_secret_access_key: SecretStr | None = None
     s3_region: str | None = None
 
-    @field_validator("stores", "cors_origins", "tokens", mode="before")
+    @field_validator("stores", "cors_origins", mode="before")
     @classmethod
     def _split_commas(cls, value: object) -> object:
         """Accept a comma-separated string from the environment as well as a JSON list."""
@@ -90,6 +102,43 @@ class Settings(BaseSettings):
                 return json.loads(value)
             return [item.strip() for item in value.split(",") if item.strip()]
         return value
+
+    @field_validator("tokens", mode="before")
+    @classmethod
+    def _split_tokens(cls, value: object) -> object:
+        """Tokens from a string (or JSON list) or a list; a comma always separates two tokens, even in a list."""
+        if isinstance(value, str) and value.lstrip().startswith("["):
+            try:
+                value = json.loads(value)
+            except json.JSONDecodeError:
+                raise ValueError("tokens start with '[' but are not a JSON list of strings") from None
+        items = [value] if isinstance(value, str) else value
+        if not isinstance(items, list | tuple):
+            return value
+        texts = [i.get_secret_value() if isinstance(i, SecretStr) else i for i in items]
+        if not all(isinstance(t, str) for t in texts):
+            return value
+        return [part.strip() for text in texts for part in text.split(",") if part.strip()]
+
+    @field_validator("tokens")
+    @classmethod
+    def _strong_and_distinct(cls, tokens: list[SecretStr]) -> list[SecretStr]:
+        """Each token long enough to resist guessing, and none given twice (never echoing a token)."""
+        seen: dict[str, int] = {}
+        for number, token in enumerate(tokens, start=1):
+            text = token.get_secret_value()
+            if len(text) < MIN_TOKEN_LENGTH:
+                raise ValueError(
+                    f"token {number} of {len(tokens)} has {len(text)} characters; a token needs at least "
+                    f"{MIN_TOKEN_LENGTH} (make one with: python -c 'import secrets; "
+                    "print(secrets.token_urlsafe(24))'); commas separate tokens"
+                )
+            if text in seen:
+                raise ValueError(
+                    f"token {number} of {len(tokens)} repeats token {seen[text]}; give each token once"
+                )
+            seen[text] = number
+        return tokens
 
     @field_validator("demo_size")
     @classmethod

@@ -81,7 +81,7 @@ def test_wxshock_openapi_writes_the_same_document(tmp_path: Path) -> None:
         ("pairs[0][1]", "/pairs/0/1"),
         ("spells[0].when[1].indicator", "/spells/0/when/1/indicator"),
         ("indicators", "/indicators"),
-        ("indicators.gdd.base", None),  # indicators are a list: no made-up pointer
+        ("indicators.gdd.base", "/indicators"),  # without the body at hand: the list
         ("Accept", None),
         (None, None),
     ],
@@ -251,7 +251,7 @@ CORPUS: list[Case] = [
      "invalid-feature", {"pointer": "/features/features/1"}),
     ("lone surrogate in an id", lambda t: json.dumps(_valid(t, features={"type": "FeatureCollection", "features": [
         {**t, "id": "\udcff"}]})).encode(), 422, "invalid-request", {"pointer": "/features/features/0/id"}),
-    ("lone surrogate where a feature should be", lambda t: b'{"features": "\\udcff"}', 422, "validation-failed",
+    ("lone surrogate where a feature should be", lambda t: b'{"features": "\\udcff"}', 422, "invalid-request",
      {"pointer": "/features"}),
     ("NaN as an option", lambda t: json.dumps(_valid(t, max_missing_share=float("nan"))).encode(), 422,
      "validation-failed", {"pointer": "/max_missing_share"}),
@@ -389,12 +389,12 @@ def secured_server(
     """A server with one plain token, one token given as a SHA-256 digest in a file, and CORS for one origin."""
     data_dir = tmp_path_factory.mktemp("secured")
     token_file = data_dir / "tokens.sha256"
-    digest = hashlib.sha256(b"file-token-2").hexdigest()
+    digest = hashlib.sha256(b"file-token-0002-xy").hexdigest()
     token_file.write_text(f"# research group tokens\n{digest}  # alice\n\n", encoding="utf-8")
     settings = Settings(
         stores=[str(tiny_demo)],
         data_dir=data_dir,
-        tokens=["plain-token-1"],
+        tokens=["plain-token-0001-x"],
         token_file=token_file,
         cors_origins=["http://localhost:5173"],
     )
@@ -404,7 +404,7 @@ def secured_server(
 
 @pytest.mark.parametrize("path", ["/v1/datasets", "/v1/datasets/demo", "/v1/indicators", "/v1/jobs/abc"])
 @pytest.mark.parametrize(
-    "authorization", [None, "Bearer wrong", "Bearer", "Basic cGxhaW4tdG9rZW4tMQ==", "plain-token-1"]
+    "authorization", [None, "Bearer wrong", "Bearer", "Basic cGxhaW4tdG9rZW4tMQ==", "plain-token-0001-x"]
 )
 def test_v1_routes_need_a_configured_token(
     secured_server: server_support.LiveServer, path: str, authorization: str | None
@@ -418,7 +418,7 @@ def test_v1_routes_need_a_configured_token(
     assert response.json()["type"].endswith("/unauthorized")
 
 
-@pytest.mark.parametrize("token", ["plain-token-1", "file-token-2"])
+@pytest.mark.parametrize("token", ["plain-token-0001-x", "file-token-0002-xy"])
 def test_either_configured_token_opens_the_v1_routes(
     secured_server: server_support.LiveServer, token: str
 ) -> None:
@@ -466,7 +466,9 @@ def test_cors_allows_only_the_configured_origin(secured_server: server_support.L
     assert allowed.headers["access-control-allow-origin"] == "http://localhost:5173"
     other = _preflight(secured_server, "http://elsewhere.invalid")
     assert "access-control-allow-origin" not in other.headers
-    with secured_server.client(token="plain-token-1", headers={"Origin": "http://localhost:5173"}) as client:
+    with secured_server.client(
+        token="plain-token-0001-x", headers={"Origin": "http://localhost:5173"}
+    ) as client:
         response = client.get("/v1/datasets")
     assert response.headers["access-control-allow-origin"] == "http://localhost:5173"
     assert "X-Wxshock-Fingerprint" in response.headers["access-control-expose-headers"]

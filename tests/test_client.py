@@ -213,14 +213,14 @@ def test_a_geodataframe_needs_unique_ids(five: dict) -> None:
 
 
 def test_bearer_token(tiny_demo: Path, tmp_path: Path, five: dict, monkeypatch: pytest.MonkeyPatch) -> None:
-    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path, tokens=["s3cret-token"])
+    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path, tokens=["s3cret-token-0123456"])
     with thread_server(settings) as server:
         with Client(server.base_url) as anonymous, pytest.raises(ServerError) as failure:
             anonymous.datasets()
         assert failure.value.status == 401
-        with Client(server.base_url, token="s3cret-token") as member:
+        with Client(server.base_url, token="s3cret-token-0123456") as member:
             assert member.datasets()[0]["name"] == "demo"
-        monkeypatch.setenv("WXSHOCK_TOKEN", "s3cret-token")  # as `wxshock submit` documents
+        monkeypatch.setenv("WXSHOCK_TOKEN", "s3cret-token-0123456")  # as `wxshock submit` documents
         with Client(server.base_url) as from_environment:
             assert from_environment.datasets()[0]["name"] == "demo"
 

@@ -143,11 +143,20 @@ def test_seconds_left_follows_the_pace_so_far() -> None:
     assert _job().seconds_left() is None
 
 
-def test_request_digest_ignores_key_order_but_not_format() -> None:
-    a = request_digest('{"b": 1, "a": [1, 2]}', "csv")
-    assert a == request_digest('{"a": [1, 2], "b": 1}', "csv")
-    assert a != request_digest('{"a": [1, 2], "b": 1}', "json")
-    assert a != request_digest('{"a": [2, 1], "b": 1}', "csv")
+def test_request_digest_ignores_key_order_but_not_format(tiny_communities: dict[str, Any]) -> None:
+    from service.request_text import canonical_text
+
+    def digest(communities: dict[str, Any], fmt: str, **fields: Any) -> str:
+        request = _request(communities, 2, **fields)
+        return request_digest(canonical_text(request, exclude_unset=True), fmt)
+
+    first = tiny_communities["features"][0]
+    reordered = {**first, "properties": dict(reversed(list(first["properties"].items())))}
+    shuffled = {**tiny_communities, "features": [reordered, *tiny_communities["features"][1:]]}
+    a = digest(tiny_communities, "csv", lags=[0, 1])
+    assert a == digest(shuffled, "csv", lags=[0, 1])
+    assert a != digest(tiny_communities, "json", lags=[0, 1])
+    assert a != digest(tiny_communities, "csv", lags=[0, 2])
 
 
 def test_expired_jobs_and_their_files_are_removed(tmp_path: Path) -> None:

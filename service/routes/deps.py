@@ -4,19 +4,20 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any
 
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
-from pydantic import BaseModel
-from pydantic_core import PydanticSerializationError
 
-from service.errors import AuthError, LimitExceededError, RequestError, StoreError, WxshockError
-from service.jobs import JobRunner
+from service.errors import AuthError, LimitExceededError, StoreError, WxshockError
+from service.jobs import ANONYMOUS, JobRunner, Principal
 from service.registry import StoreRegistry
 from service.settings import Settings
+
+_OWNER_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._@-]{0,63}$")
 
 
 @dataclass
@@ -24,37 +25,72 @@ class ServiceState:
     """Everything a running app holds: set up once in the lifespan, read by every request."""
 
     settings: Settings
-    token_digests: frozenset[str]
+    tokens: dict[str, Principal]  # SHA-256 hex digest of a token -> its owner
     registry: StoreRegistry | None = None
     jobs: JobRunner | None = None
 
 
-def load_token_digests(settings: Settings) -> frozenset[str]:
-    """SHA-256 hex digests of every configured bearer token (plain tokens and the token file)."""
-    digests = {hashlib.sha256(t.get_secret_value().encode()).hexdigest() for t in settings.tokens}
+def plain_owner(digest: str) -> str:
+    """The owner name of a token given without a name: 'token-' and the first 8 hex digits of its digest."""
+    return f"token-{digest[:8]}"
+
+
+def load_tokens(settings: Settings) -> dict[str, Principal]:
+    """Every configured bearer token by SHA-256 hex digest: plain tokens (settings.tokens) and the token file.
+
+    A token given twice (in either place, or in both) stops the start: two holders would share one owner
+    without knowing it.
+    """
+    tokens: dict[str, Principal] = {}
+    for token in settings.tokens:
+        digest = hashlib.sha256(token.get_secret_value().encode()).hexdigest()
+        tokens[digest] = Principal(plain_owner(digest))  # repeats among these are refused by Settings
     if settings.token_file is not None:
-        digests |= read_token_file(Path(settings.token_file))
-    return frozenset(digests)
+        for number, digest, principal in read_token_file(Path(settings.token_file)):
+            if digest in tokens:
+                raise WxshockError(
+                    f"token file line {number}: this token is configured twice (again in the token file, or also "
+                    "in WXSHOCK_TOKENS); give each token once"
+                )
+            tokens[digest] = principal
+    return tokens
 
 
-def read_token_file(path: Path) -> set[str]:
-    """The digests of a token file: one SHA-256 hex digest a line, '#' starts a comment."""
+def read_token_file(path: Path) -> list[tuple[int, str, Principal]]:
+    """The entries of a token file: '<sha256-hex> [<owner> [admin]]' a line, '#' starts a comment.
+
+    A bare digest is a token of its own owner, 'token-<first 8 hex>'. Returns (line number, digest, owner).
+    """
     try:
         lines = path.read_text(encoding="utf-8").splitlines()
-    except OSError as exc:
-        raise WxshockError(f"cannot read the token file (setting token_file): {exc.strerror}") from None
-    digests = set()
+    except (OSError, UnicodeDecodeError) as exc:
+        reason = exc.strerror if isinstance(exc, OSError) else "it is not UTF-8 text"
+        raise WxshockError(f"cannot read the token file (setting token_file): {reason}") from None
+    entries: list[tuple[int, str, Principal]] = []
     for number, line in enumerate(lines, start=1):
-        text = line.split("#", 1)[0].strip().lower()
-        if not text:
+        words = line.split("#", 1)[0].split()
+        if not words:
             continue
-        if len(text) != 64 or any(c not in "0123456789abcdef" for c in text):
+        digest = words[0].lower()
+        if len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
             raise WxshockError(
                 f"token file line {number} is not a SHA-256 hex digest (64 hex digits); write "
-                "`printf %s TOKEN | sha256sum` output, one digest a line"
+                "`printf %s TOKEN | sha256sum` output, then the owner's name and 'admin' for an admin, e.g. "
+                "'<digest> alice' or '<digest> lead admin'"
             )
-        digests.add(text)
-    return digests
+        if len(words) > 3 or (len(words) == 3 and words[2] != "admin"):
+            raise WxshockError(
+                f"token file line {number}: after the digest and the owner only the word 'admin' may follow; "
+                "write '<digest> <owner>' or '<digest> <owner> admin'"
+            )
+        owner = words[1] if len(words) > 1 else plain_owner(digest)
+        if len(words) > 1 and (not _OWNER_NAME.match(owner) or owner.startswith("token-")):
+            raise WxshockError(
+                f"token file line {number}: owner name {owner[:80]!r} is not allowed; use 1 to 64 letters, "
+                "digits and . _ @ -, starting with a letter or digit and not with 'token-'"
+            )
+        entries.append((number, digest, Principal(owner, admin=len(words) == 3)))
+    return entries
 
 
 def service_state(request: Request) -> ServiceState:
@@ -92,21 +128,25 @@ _bearer = HTTPBearer(
 
 def require_token(
     state: State, credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)]
-) -> None:
-    """Refuse the request unless auth is off or it carries a configured bearer token."""
-    if not state.token_digests:
-        return
+) -> Principal:
+    """The caller: refused unless auth is off or the request carries a configured bearer token."""
+    if not state.tokens:
+        return ANONYMOUS
     if credentials is None or credentials.scheme.lower() != "bearer" or not credentials.credentials:
         raise AuthError("this server needs a bearer token: send 'Authorization: Bearer TOKEN'")
     presented = hashlib.sha256(credentials.credentials.encode()).hexdigest()
-    # Compare against every digest, in constant time each, so timing tells nothing about which nearly matched.
-    matched = False
-    for digest in state.token_digests:
-        matched |= hmac.compare_digest(presented, digest)
-    if not matched:
+    # Compare against every digest, in constant time each and without stopping at a match, so that timing
+    # tells nothing about which digest nearly matched or where the match was.
+    matched: Principal | None = None
+    for digest, principal in state.tokens.items():
+        if hmac.compare_digest(presented, digest):
+            matched = principal
+    if matched is None:
         raise AuthError("the bearer token is not valid on this server")
+    return matched
 
 
+Caller = Annotated[Principal, Depends(require_token)]
 AppSettings = Annotated[Settings, Depends(get_settings)]
 Registry = Annotated[StoreRegistry, Depends(get_registry)]
 Jobs = Annotated[JobRunner, Depends(get_jobs)]
@@ -137,8 +177,10 @@ def feature_total(features: Any) -> int:
 
 
 def check_on_demand(body: Any, settings: Settings) -> None:
-    """Refuse an on-demand body that holds unencodable text (422) or more than max_features_on_demand (413)."""
-    ensure_encodable(body)
+    """Refuse an on-demand body with more than max_features_on_demand features (413).
+
+    Text that UTF-8 cannot encode was refused when the body was read (service.routes.body).
+    """
     check_feature_count(
         feature_total(body.features),
         settings.max_features_on_demand,
@@ -170,37 +212,3 @@ PROVENANCE_HEADERS = {
     "X-Wxshock-Request-Hash": "Hash of the resolved request, dataset fingerprint and software version.",
     "X-Wxshock-Software": "Software name and version.",
 }
-
-
-def ensure_encodable(body: BaseModel) -> None:
-    """Refuse text that cannot be written back as UTF-8 (a lone surrogate escape such as "\\udcff")."""
-    try:
-        body.model_dump_json()
-    except PydanticSerializationError:
-        pointer = _first_unencodable(body.model_dump(mode="python"), "")
-        raise RequestError(
-            f"the request holds text that is not valid Unicode at {pointer or 'the body'} (a lone surrogate "
-            "such as \\udcff); send the text as UTF-8",
-            pointer=pointer,
-        ) from None
-
-
-def _first_unencodable(value: Any, pointer: str) -> str | None:
-    """The JSON pointer of the first string (key or value) that UTF-8 cannot encode."""
-    if isinstance(value, str):
-        try:
-            value.encode("utf-8")
-        except UnicodeEncodeError:
-            return pointer
-        return None
-    items: Any = (
-        value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, list) else ()
-    )
-    for key, item in items:
-        where = f"{pointer}/{str(key).replace('~', '~0').replace('/', '~1')}"
-        if isinstance(key, str) and _first_unencodable(key, where) is not None:
-            return where
-        found = _first_unencodable(item, where)
-        if found is not None:
-            return found
-    return None

@@ -7,6 +7,7 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Depends, Query, Request, Response
 
+from service.routes.body import OffLoopRoute
 from service.routes.deps import (
     AppSettings,
     Registry,
@@ -17,7 +18,12 @@ from service.routes.deps import (
 from service.routes.models import IndicatorCatalog, IndicatorInfo, ParameterInfo, problem_responses
 from service.schemas import IndicatorRequest, IndicatorResult
 
-router = APIRouter(prefix="/v1/indicators", tags=["indicators"], dependencies=[Depends(require_token)])
+router = APIRouter(
+    prefix="/v1/indicators",
+    tags=["indicators"],
+    dependencies=[Depends(require_token)],
+    route_class=OffLoopRoute,
+)
 
 OutputFormat = Literal["json", "csv", "parquet"]
 

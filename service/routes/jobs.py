@@ -5,25 +5,28 @@ from __future__ import annotations
 from datetime import UTC, datetime
 from typing import Annotated, Literal
 
-from fastapi import APIRouter, Depends, Header, Query, Request, Response
+from fastapi import APIRouter, Depends, Header, Path, Query, Request, Response
 from fastapi.responses import FileResponse
 
 from service.errors import NotAcceptableError
 from service.jobs import Job, check_job_request
+from service.routes.body import OffLoopRoute
 from service.routes.deps import (
     AppSettings,
+    Caller,
     Jobs,
     Registry,
     check_feature_count,
-    ensure_encodable,
     feature_total,
     require_token,
     table_responses,
 )
-from service.routes.models import JobStatus, Problem, problem_responses
+from service.routes.models import JobList, JobStateName, JobStatus, Problem, problem_responses
 from service.schemas import IndicatorRequest, IndicatorResult
 
-router = APIRouter(prefix="/v1/jobs", tags=["jobs"], dependencies=[Depends(require_token)])
+router = APIRouter(
+    prefix="/v1/jobs", tags=["jobs"], dependencies=[Depends(require_token)], route_class=OffLoopRoute
+)
 
 IdempotencyKey = Annotated[
     str | None,
@@ -31,6 +34,9 @@ IdempotencyKey = Annotated[
         alias="Idempotency-Key", max_length=200, description="Repeat a submission safely: same key, same job."
     ),
 ]
+
+
+JobId = Annotated[str, Path(max_length=200, description="The job's id, as given at submission.")]
 
 
 def _iso(seconds: float | None) -> str | None:
@@ -60,6 +66,9 @@ def job_status(job: Job) -> JobStatus:
         finished_at=_iso(job.finished_at),
         attempts=job.attempts,
         error=Problem(**job.error) if job.error else None,
+        owner=job.owner,
+        features_skipped=len(job.skipped),
+        skipped=job.skipped,
         links=links,
     )
 
@@ -74,7 +83,7 @@ def job_status(job: Job) -> JobStatus:
             "description": "Accepted (or, with a repeated Idempotency-Key, the job first accepted)",
             "headers": {"Location": {"schema": {"type": "string"}, "description": "The job's URL."}},
         },
-        **problem_responses(400, 401, 404, 413, 422, 503),
+        **problem_responses(400, 401, 404, 413, 422, 503, 507),
     },
 )
 def submit_job(
@@ -83,22 +92,39 @@ def submit_job(
     registry: Registry,
     jobs: Jobs,
     settings: AppSettings,
+    caller: Caller,
     idempotency_key: IdempotencyKey = None,
     format: Annotated[
         Literal["json", "csv", "parquet"], Query(description="Format of the result.")
     ] = "parquet",
 ) -> JobStatus:
     """Queue an indicator request with any number of features as a batch job; 202 with its Location."""
-    ensure_encodable(body)
     check_feature_count(
         feature_total(body.features), settings.max_features_per_job, "max_features_per_job", on_demand=False
     )
-    check_job_request(body, registry, settings)
-    job, created = jobs.submit(body, format, idempotency_key)
+    jobs.check_space()
+    prepared = check_job_request(body, registry, settings)
+    job, created = jobs.submit(body, format, idempotency_key, owner=caller.owner, prepared=prepared)
     response.headers["Location"] = f"/v1/jobs/{job.id}"
     if not created:
         response.headers["Idempotent-Replayed"] = "true"
     return job_status(job)
+
+
+@router.get(
+    "",
+    operation_id="listJobs",
+    response_model=JobList,
+    responses=problem_responses(401, 422, 503),
+)
+def list_jobs(
+    jobs: Jobs,
+    caller: Caller,
+    state: Annotated[JobStateName | None, Query(description="Only jobs in this state.")] = None,
+    limit: Annotated[int, Query(ge=1, le=1000, description="At most this many, newest first.")] = 100,
+) -> JobList:
+    """Your jobs, newest first (an admin token sees every owner's jobs)."""
+    return JobList(jobs=[job_status(j) for j in jobs.list_jobs(caller, state=state, limit=limit)])
 
 
 @router.get(
@@ -107,9 +133,9 @@ def submit_job(
     response_model=JobStatus,
     responses=problem_responses(401, 404, 422, 503),
 )
-def get_job(job_id: str, jobs: Jobs) -> JobStatus:
+def get_job(job_id: JobId, jobs: Jobs, caller: Caller) -> JobStatus:
     """A job's state, features done and total, and an estimate of the time left."""
-    return job_status(jobs.status(job_id))
+    return job_status(jobs.status(job_id, caller))
 
 
 @router.get(
@@ -121,9 +147,9 @@ def get_job(job_id: str, jobs: Jobs) -> JobStatus:
         **problem_responses(401, 404, 406, 409, 422, 503),
     },
 )
-def get_job_result(job_id: str, request: Request, jobs: Jobs) -> FileResponse:
+def get_job_result(job_id: JobId, request: Request, jobs: Jobs, caller: Caller) -> FileResponse:
     """The finished table of a succeeded job (409 while it is queued or running, or when it failed)."""
-    job, path = jobs.result_path(job_id)
+    job, path = jobs.result_path(job_id, caller)
     accept = request.headers.get("accept")
     if not _accepts(accept, job.media_type or ""):
         raise NotAcceptableError(
@@ -146,9 +172,9 @@ def get_job_result(job_id: str, request: Request, jobs: Jobs) -> FileResponse:
     response_model=JobStatus,
     responses=problem_responses(401, 404, 409, 422, 503),
 )
-def cancel_job(job_id: str, jobs: Jobs) -> JobStatus:
+def cancel_job(job_id: JobId, jobs: Jobs, caller: Caller) -> JobStatus:
     """Cancel a queued or running job; its partial work is discarded."""
-    return job_status(jobs.cancel(job_id))
+    return job_status(jobs.cancel(job_id, caller))
 
 
 def _accepts(accept: str | None, media_type: str) -> bool:

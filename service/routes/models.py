@@ -15,6 +15,7 @@ class ProblemItem(BaseModel):
     message: str | None = Field(default=None, description="Why a field failed validation.")
     detail: str | None = Field(default=None, description="Why a feature failed.")
     feature_id: str | None = None
+    code: str | None = Field(default=None, description="A feature's fault as a warning code.")
 
 
 class Problem(BaseModel):
@@ -143,7 +144,21 @@ class JobStatus(BaseModel):
     finished_at: str | None
     attempts: int = Field(description="How many times the job was started (a server restart re-runs it).")
     error: Problem | None = None
+    owner: str = Field(description="Owner of the token that submitted the job.")
+    features_skipped: int = Field(
+        default=0, description="Features that cannot be computed and are skipped (invalid_features 'skip')."
+    )
+    skipped: list[ProblemItem] = Field(
+        default_factory=list,
+        description="Each skipped feature: its position and id, the code and the reason; its rows hold nulls.",
+    )
     links: dict[str, str]
+
+
+class JobList(BaseModel):
+    """The caller's jobs, newest first."""
+
+    jobs: list[JobStatus]
 
 
 def problem_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
@@ -157,6 +172,7 @@ def problem_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
         413: "Limit exceeded (body size or features)",
         422: "The request cannot be served as written",
         503: "Not ready",
+        507: "The server's storage is full",
     }
     return {
         status: {

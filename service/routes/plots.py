@@ -7,11 +7,14 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Query, Response
 
 from service.errors import RequestError
+from service.routes.body import OffLoopRoute
 from service.routes.deps import AppSettings, Registry, check_on_demand, require_token
 from service.routes.models import problem_responses
 from service.schemas import IndicatorRequest
 
-router = APIRouter(prefix="/v1/plots", tags=["plots"], dependencies=[Depends(require_token)])
+router = APIRouter(
+    prefix="/v1/plots", tags=["plots"], dependencies=[Depends(require_token)], route_class=OffLoopRoute
+)
 
 PNG_RESPONSE: dict[int | str, dict[str, Any]] = {
     200: {
@@ -53,13 +56,13 @@ def _one_feature(body: IndicatorRequest, feature_id: str | None) -> tuple[Indica
     return body.model_copy(update={"features": collection}), feature_id
 
 
-def _with_plotted(body: IndicatorRequest, precipitation: str, temperature: str) -> IndicatorRequest:
-    """The request in the wide layout, with the two plotted indicators added to those it names.
+def _with_plotted(body: IndicatorRequest, *drawn: str) -> IndicatorRequest:
+    """The request in the wide layout, with the drawn indicators added to those it names.
 
-    With no indicators named, only what the picture needs is computed: the two plotted indicators and
-    those the request's spells and pairs refer to.
+    With no indicators named, only what the picture needs is computed: the drawn indicators and those the
+    request's spells and pairs refer to.
     """
-    wanted = [precipitation, temperature]
+    wanted = list(drawn)
     wanted += [c.indicator for s in body.spells for c in s.when] + [n for pair in body.pairs for n in pair]
     given = list(body.indicators) if body.indicators is not None else []
     names = {i if isinstance(i, str) else i.name for i in given}
@@ -78,12 +81,14 @@ def plot_series(
     registry: Registry,
     settings: AppSettings,
     feature_id: Annotated[
-        str | None, Query(description="Which community to draw when several are sent.")
+        str | None, Query(max_length=200, description="Which community to draw when several are sent.")
     ] = None,
     precipitation: Annotated[
-        str, Query(description="Precipitation indicator of the upper panel.")
+        str, Query(max_length=200, description="Precipitation indicator of the upper panel.")
     ] = "prcp_total",
-    temperature: Annotated[str, Query(description="Temperature indicator of the lower panel.")] = "tmean",
+    temperature: Annotated[
+        str, Query(max_length=200, description="Temperature indicator of the lower panel.")
+    ] = "tmean",
     width: Width = 1000,
     height: Height = 640,
 ) -> Response:
@@ -133,7 +138,9 @@ def plot_map(
     year: Annotated[
         int | None, Query(ge=1, le=9999, description="Season-year; default the last served.")
     ] = None,
-    indicator: Annotated[str, Query(description="prcp_total, tmean, tmax_mean or tmin_mean.")] = "prcp_total",
+    indicator: Annotated[
+        str, Query(max_length=200, description="prcp_total, tmean, tmax_mean or tmin_mean.")
+    ] = "prcp_total",
     width: Width = 900,
     height: Height = 700,
 ) -> Response:
@@ -146,9 +153,10 @@ def plot_map(
     check_on_demand(body, settings)
     mappable(indicator)
     store = registry.get_dataset(body.dataset)
-    # The same feature checks as the table's (outside the grid, no data, limits), so a map never
-    # outlines a community that the table would refuse.
-    parsed, _ = pipeline.features_and_weights(body, store, settings)
+    # The table's own checks of the whole request (indicators, parameters, pairs, sequences, spells, years,
+    # features: outside the grid, no data, limits), so a map never draws what the table would refuse.
+    prepared = pipeline.prepare(_with_plotted(body, indicator), store, settings, keep_shapes=True)
+    parsed = prepared.parsed
     # Resolve years and baseline as the table would, for the one mapped indicator only.
     only_mapped = {"indicators": [indicator], "pairs": [], "sequences": [], "spells": []}
     resolved = resolve_request(body.model_copy(update=only_mapped), store.dates)

@@ -6,6 +6,7 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Depends, Query, Request, Response
 
+from service.routes.body import OffLoopRoute
 from service.routes.deps import (
     AppSettings,
     Registry,
@@ -16,7 +17,9 @@ from service.routes.deps import (
 from service.routes.models import problem_responses
 from service.schemas import IndicatorResult, SeriesRequest
 
-router = APIRouter(prefix="/v1/series", tags=["series"], dependencies=[Depends(require_token)])
+router = APIRouter(
+    prefix="/v1/series", tags=["series"], dependencies=[Depends(require_token)], route_class=OffLoopRoute
+)
 
 
 @router.post(

@@ -178,3 +178,85 @@ def test_a_job_of_20000_features_is_accepted_followed_and_cancelled(tiny_demo: P
         assert client.get("/health").status_code == 200
         cancelled = client.delete(response.headers["Location"]).json()
         assert cancelled["state"] == "cancelled"
+
+
+# --- owners (issue 12, finding 2) -----------------------------------------------------------------------------
+
+ALICE, BOB, LEAD, PLAIN = (
+    "alice-token-0123456789",
+    "bob-token-0123456789x",
+    "lead-token-0123456789",
+    "plain-token-012345678",
+)
+
+
+@pytest.fixture(scope="module")
+def shared_server(tiny_demo: Path, tmp_path_factory: pytest.TempPathFactory):
+    """A group server: named tokens for alice and bob, an admin, and one plain token."""
+    import hashlib
+
+    data_dir = tmp_path_factory.mktemp("shared")
+    token_file = data_dir / "tokens"
+
+    def digest(token: str) -> str:
+        return hashlib.sha256(token.encode()).hexdigest()
+
+    token_file.write_text(
+        f"# the group's tokens\n{digest(ALICE)} alice\n{digest(BOB)} bob  # a student\n{digest(LEAD)} lead admin\n",
+        encoding="utf-8",
+    )
+    settings = Settings(stores=[str(tiny_demo)], data_dir=data_dir, tokens=[PLAIN], token_file=token_file)
+    with server_support.thread_server(settings) as server:
+        yield server
+
+
+def test_a_job_is_seen_fetched_and_cancelled_only_by_its_owner_or_an_admin(
+    shared_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    # The attack: with several tokens, any holder read another's job status and result and cancelled it.
+    with shared_server.client(token=ALICE) as alice, shared_server.client(token=BOB) as bob:
+        submitted = alice.post("/v1/jobs", json=_body(tiny_communities, 2))
+        assert submitted.status_code == 202 and submitted.json()["owner"] == "alice"
+        location = submitted.headers["Location"]
+        done = _follow(alice, location, {"succeeded", "failed"})
+        assert done["state"] == "succeeded"
+        for method, path in [("GET", location), ("GET", location + "/result"), ("DELETE", location)]:
+            refused = _problem(bob.request(method, path), 404)
+            assert refused["type"].endswith("/unknown-job") and "of yours" in refused["detail"]
+        assert bob.get("/v1/jobs").json()["jobs"] == []
+        assert [j["id"] for j in alice.get("/v1/jobs").json()["jobs"]] == [done["id"]]
+    with shared_server.client(token=LEAD) as lead:
+        assert lead.get(location).json()["owner"] == "alice"
+        assert lead.get(location + "/result").status_code == 200
+        assert done["id"] in [j["id"] for j in lead.get("/v1/jobs").json()["jobs"]]
+
+
+def test_idempotency_keys_are_scoped_per_owner_and_never_echo_another_job(
+    shared_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    # The attack: reusing someone else's Idempotency-Key returned their job; with another body the 422 named it.
+    key = {"Idempotency-Key": "wave-7-upload"}
+    with shared_server.client(token=ALICE) as alice, shared_server.client(token=BOB) as bob:
+        mine = alice.post("/v1/jobs", json=_body(tiny_communities, 2), headers=key)
+        theirs = bob.post("/v1/jobs", json=_body(tiny_communities, 2), headers=key)
+        assert mine.status_code == theirs.status_code == 202
+        assert theirs.json()["id"] != mine.json()["id"] and "Idempotent-Replayed" not in theirs.headers
+        other_body = bob.post("/v1/jobs", json=_body(tiny_communities, 3), headers=key)
+        problem = _problem(other_body, 422)
+        assert mine.json()["id"] not in other_body.text and theirs.json()["id"] in problem["detail"]
+        again = alice.post("/v1/jobs", json=_body(tiny_communities, 2), headers=key)
+        assert again.json()["id"] == mine.json()["id"] and again.headers["Idempotent-Replayed"] == "true"
+
+
+def test_a_plain_token_owns_its_jobs_under_a_name_made_from_its_digest(
+    shared_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    import hashlib
+
+    with shared_server.client(token=PLAIN) as plain:
+        status = plain.post("/v1/jobs", json=_body(tiny_communities, 1)).json()
+    owner = "token-" + hashlib.sha256(PLAIN.encode()).hexdigest()[:8]
+    assert status["owner"] == owner and PLAIN not in str(status)
+    with shared_server.client(token=PLAIN) as plain:
+        listed = plain.get("/v1/jobs", params={"limit": 5}).json()["jobs"]
+    assert {j["owner"] for j in listed} == {owner}

@@ -164,7 +164,7 @@ def test_map_plot_errors_are_problem_documents(
 def test_plots_need_the_token_when_the_server_has_one(
     tiny_demo: Path, tmp_path: Path, tiny_communities: dict
 ) -> None:
-    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path, tokens=["plot-token"])
+    settings = Settings(stores=[str(tiny_demo)], data_dir=tmp_path, tokens=["plot-token-0123456789"])
     with thread_server(settings) as server:
         with server.client() as anonymous:
             assert (
@@ -173,7 +173,7 @@ def test_plots_need_the_token_when_the_server_has_one(
                 ).status_code
                 == 401
             )
-        with server.client(token="plot-token") as member:
+        with server.client(token="plot-token-0123456789") as member:
             assert (
                 member.post("/v1/plots/series", json=BODY | {"features": _one(tiny_communities)}).status_code
                 == 200
