@@ -209,6 +209,11 @@ def pointer_from_loc(loc: tuple[int | str, ...] | list[int | str]) -> str:
     return "/" + "/".join(parts) if parts else ""
 
 
+# Names pydantic gives the members of a union such as `str | int` in an error's location; no field of a
+# request has these names.
+_UNION_MEMBERS = frozenset({"str", "int", "float", "bool", "none", "bytes"})
+
+
 def validation_items(errors: list[dict[str, Any]], drop_prefix: tuple[str, ...] = ()) -> list[dict[str, Any]]:
     """Pydantic's error list as problem-document items: a pointer, the message and the offending value."""
     items = []
@@ -216,7 +221,11 @@ def validation_items(errors: list[dict[str, Any]], drop_prefix: tuple[str, ...] 
         loc = list(error.get("loc", ()))
         # pydantic adds the chosen union member's tag ('MonthsSeason', 'function-after[...]') to the
         # location; a user cannot act on those, so keep only the field names and list positions.
-        loc = [p for p in loc if isinstance(p, int) or not (str(p)[:1].isupper() or "[" in str(p))]
+        loc = [
+            p
+            for p in loc
+            if isinstance(p, int) or not (str(p)[:1].isupper() or "[" in str(p) or p in _UNION_MEMBERS)
+        ]
         if drop_prefix and tuple(loc[: len(drop_prefix)]) == drop_prefix:
             loc = loc[len(drop_prefix) :]
         message = str(error.get("msg", "")).removeprefix("Value error, ")
@@ -229,7 +238,8 @@ def validation_items(errors: list[dict[str, Any]], drop_prefix: tuple[str, ...] 
                 if isinstance(value, str) and len(value) > 200
                 else value
             )
-        items.append(item)
+        if not items or items[-1] != item:  # a union's members repeat the same place and value
+            items.append(item)
     return items
 
 

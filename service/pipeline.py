@@ -359,7 +359,37 @@ def prepare(
     """
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
-    return _prepare_resolved(resolved, store, settings, invalid_features, keep_shapes)
+    prepared = _prepare_resolved(resolved, store, settings, invalid_features, keep_shapes)
+    _dry_run(resolved, store, prepared)
+    return prepared
+
+
+def _dry_run(resolved: IndicatorRequest, store: Store, prepared: Prepared) -> None:
+    """Compute the table of one feature on missing daily values over the run's own days.
+
+    The run resolves the request again on the days it reads, and some indicators check their parameters
+    against each other only when they compute; a dry run on missing values raises the same errors in a few
+    milliseconds, so that a job's submission refuses what its run would refuse.
+    """
+    skipped = {e["feature_id"] for e in prepared.skipped}
+    feature = next(f for f in prepared.parsed.features if f.id not in skipped)
+    span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
+    days = span.stop - span.start
+    missing = np.full((1, days), np.nan)
+    dates = store.dates
+    daily = DailySeries(
+        tmax=missing,
+        tmin=missing.copy(),
+        prcp=missing.copy(),
+        year=np.asarray(dates.year[span]),
+        month=np.asarray(dates.month[span]),
+        day=np.asarray(dates.day[span]),
+        dayofyear=np.asarray(dates.dayofyear[span]),
+        calendar=store.calendar,
+        latitude=np.zeros(1),
+    )
+    with np.errstate(all="ignore"):
+        compute_table(daily, [feature.id], [feature.properties], resolved)
 
 
 def _prepare_resolved(

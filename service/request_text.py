@@ -25,8 +25,8 @@ _ITEM_ARRAY = ("features", "features")
 _SPACE = re.compile(r"[ \t\n\r]*")
 # A \u escape of a UTF-16 surrogate: the only way a JSON text can carry text that UTF-8 cannot encode.
 _SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F][0-9a-fA-F]{2}")
-# Deepest nesting a request needs is about 10 (a MultiPolygon's coordinates inside the request); deeper than
-# this is refused with its position before the parser's own recursion limit is reached.
+# A request nests about 10 levels deep (a MultiPolygon's coordinates inside the request). Nesting that the
+# parser cannot follow (about 1,000 levels) is refused with the position where it first passed this depth.
 MAX_DEPTH = 64
 _DECODER = json.JSONDecoder()
 _LONG_NUMBER = re.compile(r"\d{4301,}")
@@ -105,7 +105,7 @@ def _parsed_whole(text: str, position: int, depth: int) -> tuple[Any, int]:
         raise _malformed(exc.msg, text, exc.pos) from None
     except RecursionError:
         raise _malformed(
-            f"arrays or objects nest more than {MAX_DEPTH} levels deep",
+            f"arrays or objects nest too deeply (here deeper than {MAX_DEPTH} levels; a request needs about 10)",
             text,
             _too_deep_at(text, position, depth),
         ) from None
@@ -151,7 +151,11 @@ def _expect(text: str, position: int, char: str, what: str) -> int:
 def _object(text: str, position: int, path: tuple[str, ...], depth: int) -> tuple[dict[str, Any], int]:
     """An object whose keys are checked for repeats; its values parsed by _value."""
     if depth + 1 > MAX_DEPTH:
-        raise _malformed(f"arrays or objects nest more than {MAX_DEPTH} levels deep", text, position)
+        raise _malformed(
+            f"arrays or objects nest too deeply (here deeper than {MAX_DEPTH} levels; a request needs about 10)",
+            text,
+            position,
+        )
     result: dict[str, Any] = {}
     position = _SPACE.match(text, position + 1).end()  # type: ignore[union-attr]
     if text.startswith("}", position):

@@ -100,6 +100,14 @@ def _id_problems(features: Any, id_property: Any) -> Iterator[InitErrorDetails]:
             where: tuple[int | str, ...] = (*loc, "properties", id_property)
         else:
             value, where = feature.get("id"), (*loc, "id")
+        if isinstance(value, float) and not math.isfinite(value):
+            yield _problem(
+                "finite_number",
+                f"feature id {value!r} is not a finite number; give every feature a usable id",
+                where,
+                repr(value),
+            )
+            continue
         text = str(value) if isinstance(value, str | int) and not isinstance(value, bool) else ""
         if len(text) > MAX_TEXT:
             yield _problem(

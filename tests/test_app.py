@@ -9,7 +9,7 @@ import json
 import statistics
 import threading
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -92,7 +92,7 @@ def test_pointers_are_made_from_field_names_only_where_they_follow_the_body(
     assert pointer_from_field(field) == pointer
 
 
-# --- a corpus of bad requests ---------------------------------------------------------------------------------
+# --- limits and a strict server -------------------------------------------------------------------------------
 
 LIMITS = {
     "max_body_bytes": 400_000,
@@ -132,35 +132,6 @@ def _valid(town: dict[str, Any], **fields: Any) -> dict[str, Any]:
     return body
 
 
-def _with_geometry(town: dict[str, Any], geometry: Any, **properties: Any) -> dict[str, Any]:
-    """A valid request whose one feature has another geometry (and extra properties)."""
-    feature = copy.deepcopy(town)
-    feature["geometry"] = geometry
-    feature["properties"].update(properties)
-    return _valid(town, features={"type": "FeatureCollection", "features": [feature]})
-
-
-def _square(x: float, y: float, size: float = 0.05) -> list[list[list[float]]]:
-    """A closed square ring with its south-west corner at (x, y)."""
-    return [[[x, y], [x + size, y], [x + size, y + size], [x, y + size], [x, y]]]
-
-
-def _circle(n: int) -> dict[str, Any]:
-    """A polygon of n vertices inside the demo grid."""
-    import math
-
-    ring = [
-        [-39.5 + 0.05 * math.cos(2 * math.pi * i / n), 14.5 + 0.05 * math.sin(2 * math.pi * i / n)]
-        for i in range(n)
-    ]
-    return {"type": "Polygon", "coordinates": [[*ring, ring[0]]]}
-
-
-def _swap(town: dict[str, Any]) -> dict[str, Any]:
-    """The town's geometry with each position's coordinates swapped (latitude first)."""
-    return {"type": "Polygon", "coordinates": [[[y, x] for x, y in town["geometry"]["coordinates"][0]]]}
-
-
 def _many(town: dict[str, Any], n: int) -> dict[str, Any]:
     """n copies of the town under distinct ids."""
     features = []
@@ -171,138 +142,7 @@ def _many(town: dict[str, Any], n: int) -> dict[str, Any]:
     return {"type": "FeatureCollection", "features": features}
 
 
-# (name, make(town) -> body (dict, or bytes sent as is), status, problem slug, where: pointer / feature_id / limit)
-Case = tuple[str, Callable[[dict[str, Any]], Any], int, str, dict[str, Any]]
-NAN_RING = "[[[-39.5, 14.5], [NaN, 14.6], [-39.4, 14.5], [-39.5, 14.5]]]"
-CORPUS: list[Case] = [
-    ("malformed JSON", lambda t: b'{"features": {"type": "FeatureCollection", ', 400, "validation-failed",
-     {"pointer": ""}),
-    ("trailing comma", lambda t: b'{"features": 1,}', 400, "validation-failed", {"pointer": ""}),
-    ("body is a list", lambda t: b"[1, 2, 3]", 422, "validation-failed", {"pointer": ""}),
-    ("empty body", lambda t: b"", 422, "validation-failed", {"pointer": ""}),
-    ("features is a number", lambda t: _valid(t, features=3), 422, "validation-failed", {"pointer": "/features"}),
-    ("no features", lambda t: _valid(t, features={"type": "FeatureCollection", "features": []}), 422,
-     "validation-failed", {"pointer": "/features/features"}),
-    ("misspelt field", lambda t: {**_valid(t), "baselin": {"start": 1980, "end": 1989}}, 422, "validation-failed",
-     {"pointer": "/baselin"}),
-    ("years as text", lambda t: _valid(t, years={"start": "two thousand", "end": 2005}), 422, "validation-failed",
-     {"pointer": "/years/start"}),
-    ("years reversed", lambda t: _valid(t, years={"start": 2005, "end": 2000}), 422, "validation-failed",
-     {"pointer": "/years"}),
-    ("baseline of two years", lambda t: _valid(t, baseline={"start": 1980, "end": 1981}), 422, "validation-failed",
-     {"pointer": "/baseline"}),
-    ("negative lag", lambda t: _valid(t, lags=[0, -1]), 422, "validation-failed", {"pointer": "/lags"}),
-    ("repeated lag", lambda t: _valid(t, lags=[1, 1]), 422, "validation-failed", {"pointer": "/lags"}),
-    ("months not in a run", lambda t: _valid(t, season={"months": [1, 5]}), 422, "validation-failed",
-     {"pointer": "/season/months"}),
-    ("window day 13-01", lambda t: _valid(t, season={"start": "13-01", "end": "04-30"}), 422, "validation-failed",
-     {"pointer": "/season/start"}),
-    ("edges not increasing", lambda t: _valid(t, classes={"edges": [1, -1]}), 422, "validation-failed",
-     {"pointer": "/classes/edges"}),
-    ("unknown weighting", lambda t: _valid(t, weighting="volume"), 422, "validation-failed",
-     {"pointer": "/weighting"}),
-    ("sequence a >= b", lambda t: _valid(t, sequences=[[2, 1]]), 422, "validation-failed",
-     {"pointer": "/sequences"}),
-    ("spell without a bound", lambda t: _valid(t, spells=[{"name": "dry", "when": [{"indicator": "prcp_total"}]}]),
-     422, "validation-failed", {"pointer": "/spells/0/when/0"}),
-    ("unknown dataset", lambda t: _valid(t, dataset="elsewhere"), 404, "unknown-dataset", {"pointer": "/dataset"}),
-    ("a path as dataset", lambda t: _valid(t, dataset="/tmp/demo.zarr"), 404, "unknown-dataset",
-     {"pointer": "/dataset"}),
-    ("unknown indicator", lambda t: _valid(t, indicators=["prcp_totl"]), 422, "unknown-indicator",
-     {"field": "indicators"}),
-    ("unknown parameter", lambda t: _valid(t, indicators=[{"name": "gdd", "bse": 10}]), 422, "unknown-indicator",
-     {"field": "indicators.gdd.bse"}),
-    ("parameter out of bounds", lambda t: _valid(t, indicators=[{"name": "gdd", "base": 1000}]), 422,
-     "unknown-indicator", {"field": "indicators.gdd.base"}),
-    ("baseline outside the data", lambda t: _valid(t, baseline={"start": 1900, "end": 1910}), 422, "out-of-range",
-     {"pointer": "/baseline"}),
-    ("years outside the data", lambda t: _valid(t, years={"start": 2020, "end": 2030}), 422, "out-of-range",
-     {"pointer": "/years/end"}),
-    ("lags before the data start",
-     lambda t: _valid(t, years={"start": 1976, "end": 1980}, baseline={"start": 1990, "end": 1999}, lags=[0, 3]),
-     422, "out-of-range", {"pointer": "/years/start"}),
-    ("pair of an indicator not asked for", lambda t: _valid(t, pairs=[["prcp_total", "edd"]]), 422,
-     "invalid-request", {"pointer": "/pairs/0/1"}),
-    ("unknown weight layer", lambda t: _valid(t, weighting={"layer": "cropland"}), 404, "unknown-dataset",
-     {"pointer": "/weighting/layer"}),
-    ("unreadable CRS", lambda t: _valid(t, crs="EPSG:999999"), 422, "invalid-request", {"pointer": "/crs"}),
-    ("ring not closed", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": [_square(-39.5, 14.5)[0][:-1]]}),
-     422, "invalid-feature", {"feature_id": True}),
-    ("swapped coordinates", lambda t: _with_geometry(t, _swap(t)), 422, "invalid-feature", {"feature_id": True}),
-    ("self-intersecting polygon",
-     lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": [[[-39.5, 14.5], [-39.4, 14.6], [-39.4, 14.5],
-                                                                       [-39.5, 14.6], [-39.5, 14.5]]]}),
-     422, "invalid-feature", {"feature_id": True}),
-    ("polygon outside the grid", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": _square(10, 10)}),
-     422, "feature-without-data", {"feature_id": True}),
-    ("unknown geometry type", lambda t: _with_geometry(t, {"type": "Blob", "coordinates": [1, 2]}), 422,
-     "invalid-feature", {"feature_id": True}),
-    ("coordinates as text",
-     lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": [[["a", "b"], ["c", "d"], ["e", "f"], ["a", "b"]]]}),
-     422, "invalid-feature", {"feature_id": True}),
-    ("NaN coordinates",
-     lambda t: json.dumps(_with_geometry(t, {"type": "Polygon", "coordinates": "RING"})).replace('"RING"', NAN_RING)
-     .encode(), 422, "invalid-feature", {"feature_id": True}),
-    ("latitude beyond 90", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": _square(-39.5, 94.5)}), 422,
-     "invalid-feature", {"feature_id": True}),
-    ("point without buffer", lambda t: _with_geometry(t, {"type": "Point", "coordinates": [-39.5, 14.5]}), 422,
-     "invalid-feature", {"pointer": "/features/features/0/properties/buffer_m"}),
-    ("duplicate feature ids", lambda t: _valid(t, features={"type": "FeatureCollection", "features": [t, t]}), 422,
-     "invalid-feature", {"pointer": "/features/features/1"}),
-    ("lone surrogate in an id", lambda t: json.dumps(_valid(t, features={"type": "FeatureCollection", "features": [
-        {**t, "id": "\udcff"}]})).encode(), 422, "invalid-request", {"pointer": "/features/features/0/id"}),
-    ("lone surrogate where a feature should be", lambda t: b'{"features": "\\udcff"}', 422, "invalid-request",
-     {"pointer": "/features"}),
-    ("NaN as an option", lambda t: json.dumps(_valid(t, max_missing_share=float("nan"))).encode(), 422,
-     "validation-failed", {"pointer": "/max_missing_share"}),
-    ("too many features", lambda t: _valid(t, features=_many(t, 6)), 413, "limit-exceeded",
-     {"limit": "max_features_on_demand"}),
-    ("too many vertices", lambda t: _with_geometry(t, _circle(400)), 422, "limit-exceeded",
-     {"limit": "max_vertices_per_feature"}),
-    ("too many cells", lambda t: _with_geometry(t, {"type": "Polygon", "coordinates": _square(-39.8, 14.2, 0.3)}),
-     422, "limit-exceeded", {"limit": "max_cells_per_feature"}),
-    ("too many years", lambda t: _valid(t, years={"start": 1990, "end": 2022}), 422, "limit-exceeded",
-     {"limit": "max_years_per_request"}),
-    ("oversized body", lambda t: _valid(t, features=_many(t, 3) | {"padding": "x" * 500_000}), 413,
-     "limit-exceeded", {"limit": "max_body_bytes"}),
-]  # fmt: skip
-
-
-@pytest.mark.parametrize(("name", "make", "status", "slug", "where"), CORPUS, ids=[c[0] for c in CORPUS])
-def test_each_bad_request_gets_the_right_problem_document(
-    strict_server: server_support.LiveServer,
-    town: dict[str, Any],
-    name: str,
-    make: Callable[[dict[str, Any]], Any],
-    status: int,
-    slug: str,
-    where: dict[str, Any],
-) -> None:
-    body = make(town)
-    with strict_server.client() as client:
-        if isinstance(body, bytes):
-            response = client.post(
-                "/v1/indicators", content=body, headers={"Content-Type": "application/json"}
-            )
-        else:
-            response = client.post("/v1/indicators", json=body)
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"] == PROBLEM
-    problem = response.json()
-    assert problem["type"] == f"tag:wxshock,2026:problem/{slug}"
-    assert problem["status"] == status and problem["title"] and problem["instance"] == "/v1/indicators"
-    assert len(problem["detail"]) > 20
-    for key, expected in where.items():
-        if expected is True:
-            assert problem.get(key), (key, problem)
-        else:
-            assert problem.get(key) == expected, (key, problem)
-    if slug == "validation-failed":
-        assert problem["errors"] and all("pointer" in e and e["message"] for e in problem["errors"])
-
-
-def test_the_corpus_is_large_enough() -> None:
-    assert len(CORPUS) >= 30
+# The corpus of bad requests is data: tests/data/hostile/cases.jsonl, run by tests/test_hostile.py.
 
 
 def test_the_valid_request_of_the_corpus_is_served(
