@@ -375,12 +375,16 @@ def _dry_run(resolved: IndicatorRequest, store: Store, prepared: Prepared) -> No
     feature = next(f for f in prepared.parsed.features if f.id not in skipped)
     span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
     days = span.stop - span.start
-    missing = np.full((1, days), np.nan)
+    needed = needed_variables(resolved)
+
+    def missing(name: str) -> np.ndarray | None:
+        return np.full((1, days), np.nan) if name in needed else None
+
     dates = store.dates
     daily = DailySeries(
-        tmax=missing,
-        tmin=missing.copy(),
-        prcp=missing.copy(),
+        tmax=missing("tmax"),
+        tmin=missing("tmin"),
+        prcp=missing("prcp"),
         year=np.asarray(dates.year[span]),
         month=np.asarray(dates.month[span]),
         day=np.asarray(dates.day[span]),
