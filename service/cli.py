@@ -11,6 +11,13 @@ from pathlib import Path
 from service import __version__
 from service.errors import WxshockError
 
+# Top-level modules of the "service" extra (pyproject.toml); the light client install has none of them.
+SERVICE_STACK = frozenset(
+    {"numpy", "scipy", "xarray", "zarr", "numcodecs", "cftime", "dask", "distributed", "shapely", "pyproj",
+     "fastapi", "uvicorn", "pydantic_settings", "netCDF4", "matplotlib", "fsspec", "s3fs", "antimeridian", "pint",
+     "cf_xarray", "rasterio", "rioxarray"}
+)  # fmt: skip
+
 
 def _settings(args: argparse.Namespace):  # noqa: ANN202 - Settings, imported lazily to keep start-up quick
     """Settings from the environment, overridden by the command's own options."""
@@ -227,6 +234,16 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("wxshock: interrupted", file=sys.stderr)
         return 130
+    except ModuleNotFoundError as exc:
+        # The base install is the light client (submit); every other command needs the service extra.
+        if (exc.name or "").split(".")[0] not in SERVICE_STACK:
+            raise
+        print(
+            f"wxshock {args.command}: needs the service stack, which is not installed (no module {exc.name!r}); "
+            "install it with: python -m pip install 'wxshock[service]'",
+            file=sys.stderr,
+        )
+        return 2
 
 
 if __name__ == "__main__":

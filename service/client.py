@@ -19,15 +19,20 @@ import time
 import uuid
 from collections.abc import Callable, Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import httpx
-import pandas as pd
 
 from service import __version__
 from service.errors import RequestError, WxshockError
 
+if TYPE_CHECKING:  # pandas is imported where a table is made: `wxshock submit` only moves bytes (0.6 s saved)
+    import pandas as pd
+
 PARQUET = "application/vnd.apache.parquet"
+# What a batch job can return, by format name, and the media type asked for; file suffixes map onto the names.
+JOB_MEDIA_TYPES = {"parquet": PARQUET, "csv": "text/csv", "json": "application/json"}
+_SUFFIX_ALIASES = {"pq": "parquet"}
 # The server's default on-demand limit (setting max_features_on_demand); more features go as a batch job.
 ON_DEMAND_FEATURES = 200
 _RETRY_STATUSES = frozenset({502, 503, 504})
@@ -189,6 +194,8 @@ def feature_count(body: Mapping[str, Any]) -> int:
 
 def frame_from_parquet(data: bytes) -> pd.DataFrame:
     """A wxshock Parquet result as a DataFrame with attrs['provenance'] and attrs['warnings']."""
+    import pandas as pd
+
     from service.encode import read_parquet_provenance
 
     frame = pd.read_parquet(io.BytesIO(data))
@@ -306,6 +313,8 @@ class Client:
 
     def catalog(self) -> pd.DataFrame:
         """The indicator catalog as a table: name, unit, family, definition, source, parameters."""
+        import pandas as pd
+
         return pd.DataFrame(self.get_json("/v1/indicators")["indicators"])
 
     # --- indicators ---
@@ -389,9 +398,11 @@ class Client:
     def _submit_body(self, body: dict[str, Any], fmt: str, idempotency_key: str | None) -> Job:
         """POST /v1/jobs with an Idempotency-Key, so that a retried submission never makes a second job."""
         key = idempotency_key or uuid.uuid4().hex
-        media = {"parquet": PARQUET, "csv": "text/csv", "json": "application/json"}.get(fmt)
+        media = JOB_MEDIA_TYPES.get(fmt)
         if media is None:
-            raise RequestError(f"format {fmt!r} is not offered; choose parquet, csv or json", field="format")
+            raise RequestError(
+                f"format {fmt!r} is not offered; choose {', '.join(JOB_MEDIA_TYPES)}", field="format"
+            )
         response = self.request(
             "POST",
             "/v1/jobs",
@@ -441,12 +452,14 @@ class Job:
     ) -> Job:
         """Follow the job until it finishes, with a bar of features done, total and time left.
 
+        Polls every ``poll`` seconds, sooner at first (0.1 s, doubling), so a short job is not kept waiting.
         Raises JobFailedError (with the job's problem document) when it fails or is cancelled, and
         TimeoutError when ``timeout`` seconds pass first (the job keeps running on the server).
         """
         from tqdm import tqdm
 
         started = time.monotonic()
+        polls = 0
         status = self.last_status
         bar = (
             tqdm(total=int(status.get("features_total") or 0), unit="feature", desc=f"job {self.id[:8]}")
@@ -478,7 +491,8 @@ class Job:
                         f"({status.get('features_done')}/{status.get('features_total')} features); "
                         "it keeps running: call wait() again"
                     )
-                time.sleep(poll)
+                time.sleep(min(poll, 0.1 * 2**polls))
+                polls += 1
         finally:
             if bar is not None:
                 bar.close()
@@ -496,6 +510,8 @@ class Job:
 
     def result(self) -> pd.DataFrame:
         """The finished table as a DataFrame (a Parquet job keeps provenance and warnings in attrs)."""
+        import pandas as pd
+
         response = self.result_bytes()
         kind = response.headers.get("content-type", "").split(";")[0].strip()
         if kind in (PARQUET, "application/x-parquet"):
@@ -541,6 +557,19 @@ def _provenance_headers(headers: Mapping[str, str]) -> dict[str, str]:
 # --- wxshock submit -------------------------------------------------------------------------------------------
 
 
+def job_format_from_suffix(path_suffix: str) -> str:
+    """The job result format of an output file's suffix (.parquet or .pq, .csv, .json)."""
+    suffix = path_suffix.lower().lstrip(".")
+    fmt = _SUFFIX_ALIASES.get(suffix, suffix)
+    if fmt not in JOB_MEDIA_TYPES:
+        raise RequestError(
+            f"cannot tell the output format from the suffix {path_suffix!r}; use "
+            f"{', '.join('.' + name for name in JOB_MEDIA_TYPES)}",
+            field="out",
+        )
+    return fmt
+
+
 def submit_files(
     *,
     server: str,
@@ -556,10 +585,10 @@ def submit_files(
     server's, so they equal `wxshock compute`'s for the same request and store. A CSV gets a
     ``.provenance.json`` beside it.
     """
-    from service.encode import format_from_suffix
+    # Not service.pipeline (dask, zarr, xarray: 5 s of imports): the server's bytes are written as they come.
     from service.encode.files import write_atomically
 
-    fmt = format_from_suffix(out_path.suffix)
+    fmt = job_format_from_suffix(out_path.suffix)
     try:
         body = json.loads(Path(request_path).read_text(encoding="utf-8"))
     except (OSError, json.JSONDecodeError) as exc:

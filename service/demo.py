@@ -45,7 +45,7 @@ from scipy import special, stats
 from service.errors import RequestError
 from service.store import FILL_VALUE, SCALE_FACTOR, write_store
 
-DEMO_INPUTS = Path(__file__).resolve().parent.parent / "demo_store"
+DEMO_INPUTS = Path(__file__).resolve().parent / "demo_store"
 SIZES = ("tiny", "small", "large")
 KM_PER_DEGREE = (
     111.32  # length of one degree of latitude (and of longitude at the equator), km; common practice

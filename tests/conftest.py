@@ -29,3 +29,15 @@ def tiny_communities(tiny_demo: Path) -> dict:
     import json
 
     return json.loads((tiny_demo.parent / "communities.geojson").read_text(encoding="utf-8"))
+
+
+def pytest_terminal_summary(terminalreporter: pytest.TerminalReporter) -> None:
+    """How long the container tests' slow steps took, when they ran (tests/_support_docker.py)."""
+    import sys
+
+    support = sys.modules.get("tests._support_docker")  # imported only where container tests were collected
+    if support is not None and support.TIMINGS:
+        steps = ", ".join(
+            f"{name.removesuffix('_s')} {seconds:.0f} s" for name, seconds in support.TIMINGS.items()
+        )
+        terminalreporter.write_line(f"container steps: {steps}")
