@@ -13,6 +13,8 @@ degree, about 430 m, over the invented region 40-39 W, 14-15 N) and every cell h
   antimeridian the same polygons moved to straddle the 180th meridian (every one crossing it) on a grid
               written in 0..360
   points      P buffered points (2 km radius) on the lat-lon grid, the shape of a survey's cluster file
+  points_small the same points on the small demo's grid (0.01-degree cells), where POST /v1/jobs must
+              answer within 30 s for 100,000 of them (CONTRACTS.md)
 
 Each phase is timed in CPU seconds (one core: geometry is single-threaded), best of three rounds.
 """
@@ -40,12 +42,14 @@ LCC = pyproj.CRS.from_proj4(
 )
 
 
-def lonlat_grid(west: float = WEST) -> Any:
-    """The large demo's grid shape: 256 x 256 cells of 1/256 degree from (west, 14 N), rows north first."""
+def lonlat_grid(west: float = WEST, cells: int = CELLS) -> Any:
+    """The large demo's grid shape: 256 x 256 cells of 1/256 degree from (west, 14 N), rows north first
+    (``cells`` 100: the small demo's, 0.01-degree cells)."""
     from service.store import Grid
 
-    x = west + SIZE * (np.arange(CELLS) + 0.5)
-    y = (SOUTH + SIZE * (np.arange(CELLS) + 0.5))[::-1]
+    size = 1.0 / cells
+    x = west + size * (np.arange(cells) + 0.5)
+    y = (SOUTH + size * (np.arange(cells) + 0.5))[::-1]
     return Grid(crs_wkt=pyproj.CRS.from_epsg(4326).to_wkt(), x=x, y=y, is_geographic=True)
 
 
@@ -146,6 +150,7 @@ def run(n_polygons: int, n_points: int) -> dict[str, dict[str, Any]]:
     # the region moved to 179.5 E .. 179.5 W, written in -180..180 (each ring jumps), on a 0..360 grid
     results["antimeridian"] = timed(polygons(n_polygons, shift=219.5), lonlat_grid(west=179.5))
     results["points"] = timed(points(n_points), lonlat_grid(), rounds=1)
+    results["points_small"] = timed(points(n_points), lonlat_grid(cells=100), rounds=1)
     return results
 
 
@@ -156,6 +161,7 @@ def report(results: dict[str, dict[str, Any]]) -> str:
         "projected": "the same polygons on a Lambert conformal grid (ground areas)",
         "antimeridian": "the same polygons across the 180th meridian, 0..360 grid",
         "points": "buffered points (2 km) on the lat-lon grid",
+        "points_small": "buffered points (2 km) on the small demo's grid (100 x 100 cells of 0.01 degree)",
     }
     lines = [
         START,
@@ -197,7 +203,9 @@ def main() -> int:
     parser.add_argument("--polygons", type=int, default=5000)
     parser.add_argument("--points", type=int, default=100_000)
     parser.add_argument(
-        "--phase", choices=["latlon", "projected", "antimeridian", "points"], help="one phase only"
+        "--phase",
+        choices=["latlon", "projected", "antimeridian", "points", "points_small"],
+        help="one phase only",
     )
     args = parser.parse_args()
     n_polygons, n_points = (500, 5000) if args.quick else (args.polygons, args.points)
@@ -207,6 +215,8 @@ def main() -> int:
             r = timed(polygons(n_polygons, shift=219.5), lonlat_grid(west=179.5))
         elif args.phase == "points":
             r = timed(points(n_points), grids["points"](), rounds=1)
+        elif args.phase == "points_small":
+            r = timed(points(n_points), lonlat_grid(cells=100), rounds=1)
         else:
             r = timed(polygons(n_polygons), grids[args.phase]())
         print({k: round(v, 3) if isinstance(v, float) else v for k, v in r.items()})

@@ -430,7 +430,7 @@ def feature(geometry: Any, properties: dict | None = None, fid: Any = "v-17") ->
             None,
             r"beyond \+-90 degrees; the coordinates look swapped",
         ),
-        (polygon([[[0, 0], ["a", 0], [1, 1], [0, 0]]]), None, r"not numbers"),
+        (polygon([[[0, 0], ["a", 0], [1, 1], [0, 0]]]), None, r"position 1 \[.a., 0\]: .a. is text"),
         (
             polygon([[[0, 0], [1, 0], [1, 1], [0, 1], [0, 0]], [[5, 5], [6, 5], [5, 5]]]),
             None,
@@ -566,3 +566,45 @@ def test_longitudes_wrap_onto_a_0_to_360_grid() -> None:
     area = cell_areas_km2(grid)[0, 0]
     w = weights_of(collection(polygon(box(-179.5, 0.0, -178.0, 1.0))), grid)
     np.testing.assert_allclose(dense(w, grid)[0], [[area / 2, area, 0.0, 0.0]], rtol=1e-12)
+
+
+# --- against a brute-force overlay ----------------------------------------------------------------------------
+
+
+def _star(rng: np.random.Generator, cx: float, cy: float, radius: float, n: int) -> shapely.Polygon:
+    """A random star-shaped (often concave) polygon around (cx, cy)."""
+    angle = np.sort(rng.uniform(0, 2 * np.pi, n))
+    r = radius * rng.uniform(0.2, 1.0, n)
+    return shapely.Polygon(np.column_stack([cx + r * np.cos(angle), cy + r * np.sin(angle)]))
+
+
+def test_weights_match_a_brute_force_overlay_with_every_cell() -> None:
+    # Concave stars, a star with a hole, a box on cell edges, a long thin diagonal and a notch one cell
+    # wide and a sliver thin: every cell's weight equals GEOS's intersection area with that cell's box
+    # (on the grid's plane, scaled to the ground), whether the boundary touches the cell or not.
+    rng = np.random.default_rng(11)
+    grid = lambert_grid(nx=12, ny=9, size=1_000.0)
+    shapes = [_star(rng, 6_000, 4_500, 4_000, 40) for _ in range(3)]
+    wavy = np.linspace(0, 2 * np.pi, 90, endpoint=False)
+    ring = np.column_stack(
+        [
+            6_000 + (3_500 + 600 * np.sin(5 * wavy)) * np.cos(wavy),
+            4_500 + (3_500 + 600 * np.sin(5 * wavy)) * np.sin(wavy),
+        ]
+    )
+    shapes.append(shapely.Polygon(ring, [shapely.box(5_000, 4_000, 6_500, 5_000).exterior.coords]))  # a hole
+    shapes.append(shapely.box(2_000, 1_000, 9_000, 7_000))  # every vertex on a cell corner
+    shapes.append(shapely.Polygon([(100, 100), (11_900, 8_700), (11_800, 8_850), (0, 300)]))
+    notch = shapely.box(500, 500, 11_500, 8_500).difference(shapely.box(5_999.9, 0, 6_000.1, 8_000))
+    shapes.append(notch)
+    fc = collection(*(shapely.geometry.mapping(s) for s in shapes))
+    w = compute_weights(parse_features(fc, crs=LAMBERT_CRS.to_wkt()), grid, cache_size=0)
+    got = dense(w, grid)
+    xe, ye = grid.x_edges, grid.y_edges
+    cells = cell_areas_km2(grid)
+    for f, shape in enumerate(shapes):
+        for j in range(grid.shape[0]):
+            for i in range(grid.shape[1]):
+                box_ = shapely.box(xe[i], ye[j + 1], xe[i + 1], ye[j])
+                share = shape.intersection(box_).area / box_.area
+                assert got[f, j, i] == pytest.approx(share * cells[j, i], rel=1e-6, abs=1e-9), (f, j, i)

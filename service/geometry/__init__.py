@@ -10,9 +10,12 @@ with data only. planes.py holds the equal-area frames and cell areas; antimeridi
 from __future__ import annotations
 
 from service.geometry.checks import (
+    FAULT_CODES,
+    INVALID_MODES,
     MAX_BUFFER_M,
     Feature,
     ParsedFeatures,
+    SkippedFeature,
     parse_features,
     request_crs,
 )
@@ -21,6 +24,7 @@ from service.geometry.planes import (
     MAX_SEGMENT_DEGREES,
     authalic_y,
     buffer_circle,
+    buffer_circles,
     cell_areas_km2,
 )
 from service.geometry.weights import (
@@ -37,15 +41,19 @@ __all__ = [
     "BBOX_CELLS_FACTOR",
     "BUFFER_VERTICES",
     "CANDIDATES_PER_PASS",
+    "FAULT_CODES",
+    "INVALID_MODES",
     "MAX_BUFFER_M",
     "MAX_SEGMENT_DEGREES",
     "WEIGHTINGS",
     "WEIGHTS_CACHE",
     "Feature",
     "ParsedFeatures",
+    "SkippedFeature",
     "Weights",
     "authalic_y",
     "buffer_circle",
+    "buffer_circles",
     "cell_areas_km2",
     "compute_weights",
     "parse_features",

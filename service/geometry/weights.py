@@ -22,7 +22,16 @@ from scipy import sparse
 
 from service.errors import FeatureError, FeatureWithoutDataError, LimitExceededError, RequestError
 from service.geometry.antimeridian import crossing, split, wrap_parts
-from service.geometry.checks import Feature, ParsedFeatures, _fail, _raise_collected, request_crs
+from service.geometry.checks import (
+    Feature,
+    ParsedFeatures,
+    SkippedFeature,
+    _fail,
+    _raise_collected,
+    invalid_mode,
+    request_crs,
+    skipped_from,
+)
 from service.geometry.planes import _Plane, _plane, _to_grid
 
 if TYPE_CHECKING:
@@ -47,7 +56,9 @@ class Weights:
     ``matrix[f, c]`` is the area (km2) of feature f within cell c (times the weight layer's value under
     layer weighting; the full cell area under ``centers``), zero on cells without data. Per feature:
     ``area_km2`` its whole area, ``n_cells`` the cells with weight, ``coverage`` the share of its area on
-    cells with data, ``latitude``/``longitude`` its centroid (degrees, WGS84).
+    cells with data, ``latitude``/``longitude`` its centroid (degrees, WGS84). ``skipped`` lists the features
+    left out under ``invalid="skip"`` (at parsing and here), in request order; their rows are empty, their
+    ``n_cells`` and ``coverage`` 0, and their area and centroid NaN when their geometry was unusable.
     """
 
     matrix: sparse.csr_matrix
@@ -59,6 +70,7 @@ class Weights:
     longitude: np.ndarray
     key: str
     weighting: str = "area"
+    skipped: list[SkippedFeature] = field(default_factory=list)
 
 
 class _LRU:
@@ -106,13 +118,16 @@ def weights_key(
     layer: np.ndarray | None,
     data_mask: np.ndarray | None,
     max_cells: int,
+    invalid: str = "fail",
 ) -> str:
-    """SHA-256 over the feature ids and footprints, their CRS, the grid, the weighting, layer and mask."""
+    """SHA-256 over the feature ids and footprints, their CRS, the grid, the weighting, layer, mask and mode."""
     h = hashlib.sha256()
-    h.update(f"wxshock-weights-2|{parsed.crs}|{weighting}|{max_cells}|".encode())
-    for f in parsed.features:
+    h.update(f"wxshock-weights-2|{parsed.crs}|{weighting}|{max_cells}|{invalid}|".encode())
+    footprints = np.array([f.footprint for f in parsed.features], dtype=object)
+    wkb = shapely.to_wkb(footprints, output_dimension=2)  # None (a skipped feature) stays None
+    for f, blob in zip(parsed.features, wkb, strict=True):
         h.update(f.id.encode("utf-8") + b"\0")
-        h.update(shapely.to_wkb(f.footprint, output_dimension=2))
+        h.update(blob if blob is not None else b"skipped\0")
     h.update(grid.crs_wkt.encode("utf-8"))
     h.update(np.ascontiguousarray(grid.x, dtype=np.float64).tobytes())
     h.update(np.ascontiguousarray(grid.y, dtype=np.float64).tobytes())
@@ -134,16 +149,22 @@ def compute_weights(
     data_mask: np.ndarray | None = None,
     max_cells: int = 250_000,
     cache_size: int = 64,
+    invalid: str | None = None,
 ) -> Weights:
     """The weights of every feature on ``grid`` (see :class:`Weights`), cached by :func:`weights_key`.
 
     ``weighting`` 'area': exact intersection areas (km2); 'centers': the full area of each cell whose
     centre lies inside the feature (boundary included). ``layer`` (ny, nx) multiplies the weights (NaN
-    counts as 0). Cells where ``data_mask`` (ny, nx) is False get no weight. Raises FeatureWithoutDataError
-    for a feature with no weight left (outside the grid, only cells without data), FeatureError for one that
-    looks like swapped coordinates, LimitExceededError for one touching more than ``max_cells`` cells.
-    ``cache_size`` is the number of weight sets kept (settings.weights_cache_size; 0 turns caching off).
+    counts as 0). Cells where ``data_mask`` (ny, nx) is False get no weight. Per-feature faults:
+    FeatureWithoutDataError for a feature with no weight left (code outside_grid, or no_data for only cells
+    without data), FeatureError for one that looks like swapped coordinates (swapped_coordinates),
+    LimitExceededError for one touching more than ``max_cells`` cells (too_many_cells). Under ``invalid``
+    "fail" they are raised (the first, listing all); under "skip" each such feature keeps an empty row and is
+    listed in ``skipped``, unless no feature is left, when they are raised. ``invalid`` defaults to the mode
+    the features were parsed with. ``cache_size`` is the number of weight sets kept (settings.
+    weights_cache_size; 0 turns caching off).
     """
+    mode = invalid_mode(invalid if invalid is not None else parsed.invalid)
     if weighting not in WEIGHTINGS:
         raise RequestError(
             f"weighting {weighting!r} is not known; use 'area', 'centers' or a weight layer",
@@ -165,12 +186,12 @@ def compute_weights(
             )
     if data_mask is not None:
         data_mask = np.asarray(data_mask, dtype=bool)
-    key = weights_key(parsed, grid, weighting, layer, data_mask, max_cells)
+    key = weights_key(parsed, grid, weighting, layer, data_mask, max_cells, mode)
     cached = WEIGHTS_CACHE.get(key)
     if cached is not None:
         WEIGHTS_CACHE.put(key, cached, cache_size)  # a smaller size asked for now still applies
         return cached
-    weights = _compute_weights(parsed, grid, weighting, layer, data_mask, max_cells, key)
+    weights = _compute_weights(parsed, grid, weighting, layer, data_mask, max_cells, key, mode)
     WEIGHTS_CACHE.put(key, weights, cache_size)
     return weights
 
@@ -214,33 +235,44 @@ def _overlaps(
 ) -> tuple[np.ndarray, ...]:
     """For the parts ``rows``: (part, ix, iy, plane area, ground km2, counted) of every cell they overlap.
 
-    Cells wholly inside a part take the cell's area without an intersection; the others are clipped with
-    GEOS's rectangle clipping. Plane areas become ground areas at each piece's centroid (the cell centre
-    for whole cells). ``counted`` is the weighting's choice of cells (all overlapping cells, or those whose
-    centre lies in the part); indices are ascending-plane indices.
+    The candidates are the cells under each part's bounding box. Those its boundary may touch (edge cells,
+    :func:`_edge_cells`) are clipped with GEOS's rectangle clipping; every other candidate lies wholly inside
+    or wholly outside the part, which its centre decides (a point-in-polygon test, no geometry built). Plane
+    areas become ground areas at each piece's centroid (the cell centre for whole cells). ``counted`` is the
+    weighting's choice of cells (all overlapping cells, or those whose centre lies in the part); indices are
+    ascending-plane indices.
     """
     x0, x1, y0, y1 = (r[rows] for r in ranges)
     width = x1 - x0
     counts = width * (y1 - y0)
     total = int(counts.sum())
+    start = np.cumsum(counts) - counts
     part = np.repeat(rows, counts)
-    offset = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
+    offset = np.arange(total) - np.repeat(start, counts)
     width_each = np.repeat(width, counts)
     ix = np.repeat(x0, counts) + offset % np.maximum(width_each, 1)
     iy = np.repeat(y0, counts) + offset // np.maximum(width_each, 1)
-    xmin, xmax = plane.x_edges[ix], plane.x_edges[ix + 1]
-    ymin, ymax = plane.y_edges[iy], plane.y_edges[iy + 1]
     g = geoms[part]
-    boxes = shapely.box(xmin, ymin, xmax, ymax)
-    inside = shapely.contains_properly(g, boxes)
-    area = np.where(inside, (xmax - xmin) * (ymax - ymin), 0.0)
-    edge = np.flatnonzero(~inside)
-    edge = edge[shapely.intersects(g[edge], boxes[edge])]
-    clipped = _clip(g[edge], xmin[edge], ymin[edge], xmax[edge], ymax[edge], boxes[edge])
+    edge_mask = _edge_cells(geoms[rows], x0, x1, y0, y1, start, total, plane)
+    cx, cy = plane.x_centres[ix], plane.y_centres[iy]
+    cell_area = (plane.x_edges[ix + 1] - plane.x_edges[ix]) * (plane.y_edges[iy + 1] - plane.y_edges[iy])
+    whole = np.flatnonzero(~edge_mask)
+    inside = np.zeros(total, dtype=bool)
+    inside[whole] = shapely.contains_xy(g[whole], cx[whole], cy[whole])
+    area = np.where(inside, cell_area, 0.0)
+    edge = np.flatnonzero(edge_mask)
+    clipped = _clip(
+        g[edge],
+        plane.x_edges[ix[edge]],
+        plane.y_edges[iy[edge]],
+        plane.x_edges[ix[edge] + 1],
+        plane.y_edges[iy[edge] + 1],
+    )
     area[edge] = shapely.area(clipped)
     keep = area > 0
     if weighting == "centers":
-        counted = shapely.intersects_xy(g, plane.x_centres[ix], plane.y_centres[iy])
+        counted = inside.copy()
+        counted[edge] = shapely.intersects_xy(g[edge], cx[edge], cy[edge])
         keep |= counted
     else:
         counted = keep
@@ -248,24 +280,89 @@ def _overlaps(
         ground = area * plane.km2_per_unit2
     else:
         # The areal scale at each piece's centroid; whole cells (and empty pieces) use the cell centre.
-        px, py = plane.x_centres[ix], plane.y_centres[iy]
+        px, py = cx.copy(), cy.copy()
         if edge.size:
-            centre = shapely.centroid(clipped)
             ok = area[edge] > 0
-            px, py = px.copy(), py.copy()
-            px[edge[ok]], py[edge[ok]] = shapely.get_x(centre[ok]), shapely.get_y(centre[ok])
+            centre = shapely.centroid(clipped[ok])
+            px[edge[ok]], py[edge[ok]] = shapely.get_x(centre), shapely.get_y(centre)
         ground = np.zeros_like(area)
         ground[keep] = plane.piece_areas_km2(area[keep], px[keep], py[keep])
     return part[keep], ix[keep], iy[keep], area[keep], ground[keep], counted[keep]
 
 
+def _edge_cells(
+    parts: np.ndarray,
+    x0: np.ndarray,
+    x1: np.ndarray,
+    y0: np.ndarray,
+    y1: np.ndarray,
+    start: np.ndarray,
+    total: int,
+    plane: _Plane,
+) -> np.ndarray:
+    """(total,) bool over the parts' candidate cells: True where the part's boundary may touch the cell.
+
+    Every boundary segment marks each cell of its bounding box's index range (a superset of the cells it
+    passes through; a vertex on a cell edge counts for the cells on both sides), so a cell left unmarked
+    meets no boundary and lies wholly inside or wholly outside. A segment spanning several cells is first
+    cut into as many pieces, which keeps the marked boxes small: a part costs about its boundary's cell
+    count, not its bounding box's.
+    """
+    mark = np.zeros(total, dtype=bool)
+    if total == 0:
+        return mark
+    rings, owner = shapely.get_rings(parts, return_index=True)
+    xy, ring_of = shapely.get_coordinates(rings, return_index=True)
+    same = ring_of[1:] == ring_of[:-1]  # segments join consecutive vertices of one ring
+    if not same.any():
+        return mark
+    p0, p1 = xy[:-1][same], xy[1:][same]
+    k = owner[ring_of[:-1][same]]  # the part (position in ``parts``) of each segment
+    left0, left1 = _cell_index(p0, plane, "left"), _cell_index(p1, plane, "left")
+    pieces = np.maximum(np.abs(left1[0] - left0[0]), np.abs(left1[1] - left0[1])) + 1
+    if (pieces > 1).any():
+        step = np.arange(int(pieces.sum())) - np.repeat(np.cumsum(pieces) - pieces, pieces)
+        n_each = np.repeat(pieces, pieces)
+        d = np.repeat(p1 - p0, pieces, axis=0)
+        base = np.repeat(p0, pieces, axis=0)
+        q0 = base + d * (step / n_each)[:, None]
+        q1 = base + d * ((step + 1) / n_each)[:, None]
+        last = step + 1 == n_each
+        q1[last] = p1  # the exact end of each segment (one piece per segment is its last)
+        p0, p1, k = q0, q1, np.repeat(k, pieces)
+        left0, left1 = _cell_index(p0, plane, "left"), _cell_index(p1, plane, "left")
+    right0, right1 = _cell_index(p0, plane, "right"), _cell_index(p1, plane, "right")
+    lo_x, lo_y = np.minimum(left0[0], left1[0]), np.minimum(left0[1], left1[1])
+    hi_x, hi_y = np.maximum(right0[0], right1[0]), np.maximum(right0[1], right1[1])
+    a = np.clip(lo_x, x0[k], x1[k] - 1)
+    b = np.clip(hi_x, a, x1[k] - 1)
+    c = np.clip(lo_y, y0[k], y1[k] - 1)
+    e = np.clip(hi_y, c, y1[k] - 1)
+    w = b - a + 1
+    n = w * (e - c + 1)
+    off = np.arange(int(n.sum())) - np.repeat(np.cumsum(n) - n, n)
+    w_each = np.repeat(w, n)
+    mx = np.repeat(a, n) + off % w_each
+    my = np.repeat(c, n) + off // w_each
+    p = np.repeat(k, n)
+    mark[start[p] + (my - y0[p]) * (x1[p] - x0[p]) + (mx - x0[p])] = True
+    return mark
+
+
+def _cell_index(xy: np.ndarray, plane: _Plane, side: str) -> tuple[np.ndarray, np.ndarray]:
+    """Ascending-plane (ix, iy) of the cells holding points; on a cell edge, the lower (left) or upper (right)."""
+    ix = np.searchsorted(plane.x_edges, xy[:, 0], side=side) - 1
+    iy = np.searchsorted(plane.y_edges, xy[:, 1], side=side) - 1
+    return ix, iy
+
+
 def _clip(
-    g: np.ndarray, xmin: np.ndarray, ymin: np.ndarray, xmax: np.ndarray, ymax: np.ndarray, boxes: np.ndarray
+    g: np.ndarray, xmin: np.ndarray, ymin: np.ndarray, xmax: np.ndarray, ymax: np.ndarray
 ) -> np.ndarray:
     """Each geometry clipped to its rectangle (GEOS rectangle clipping, ~13x faster than an overlay)."""
     ufunc = getattr(shapely.lib, "clip_by_rect", None)
     if ufunc is None:  # older shapely: the general overlay gives the same areas
-        return shapely.intersection(g, boxes)
+        return shapely.intersection(g, shapely.box(xmin, ymin, xmax, ymax))
     return ufunc(g, xmin, ymin, xmax, ymax)
 
 
@@ -291,6 +388,7 @@ def _outside_reason(
                     feature.pointer + "/geometry",
                     "lies outside the grid, but would lie inside it with each position's two coordinates "
                     "swapped; the coordinates look swapped: GeoJSON positions are [longitude, latitude]",
+                    "swapped_coordinates",
                 )
     gx, gy = np.asarray(grid.x_edges), np.asarray(grid.y_edges)
     fb = shapely.bounds(grid_geometry)
@@ -301,6 +399,7 @@ def _outside_reason(
         "and the request's crs",
         pointer=feature.pointer,
         feature_id=feature.id,
+        code="outside_grid",
     )
 
 
@@ -312,33 +411,37 @@ def _compute_weights(
     data_mask: np.ndarray | None,
     max_cells: int,
     key: str,
+    mode: str,
 ) -> Weights:
     """The work of :func:`compute_weights`, uncached."""
     ny, nx = grid.shape
     n = len(parsed.features)
+    active = np.array([i for i, f in enumerate(parsed.features) if f.footprint is not None], dtype=np.int64)
+    features = [parsed.features[i] for i in active]
+    m = len(features)
     plane = _plane(grid)
     source = request_crs(parsed.crs)
-    footprints = np.array([f.footprint for f in parsed.features], dtype=object)
+    faults: dict[int, RequestError] = {}  # row among the active features -> its fault
+    footprints = np.array([f.footprint for f in features], dtype=object)
     on_grid = _to_grid(footprints, source, grid.crs())
     if plane.geographic:
         # Shapes that the reprojection carried across the grid's 180th meridian (lon/lat requests were cut
         # at parse time; this catches projected requests and datum shifts at the meridian).
-        on_grid = _split_on_grid(on_grid, parsed)
+        on_grid = _split_on_grid(on_grid, features, faults)
     geoms = shapely.transform(on_grid, plane.to_plane)
     feature_area = plane.feature_areas_km2(geoms)
     parts, owner = shapely.get_parts(geoms, return_index=True)
-    latitude, longitude = _centroids(parts, owner, n, plane)
+    latitude, longitude = _centroids(parts, owner, m, plane)
     if plane.period is not None:
         parts, owner = wrap_parts(parts, owner, plane.x_edges[0], plane.x_edges[-1], plane.period)
     shapely.prepare(parts)
     ranges = _index_ranges(shapely.bounds(parts), plane)
     part_candidates = (ranges[1] - ranges[0]) * (ranges[3] - ranges[2])
-    candidates = np.bincount(owner, weights=part_candidates, minlength=n).astype(np.int64)
-    errors: list[RequestError] = []
+    candidates = np.bincount(owner, weights=part_candidates, minlength=m).astype(np.int64)
     too_big = candidates > BBOX_CELLS_FACTOR * max_cells
     for r in np.flatnonzero(too_big):
-        errors.append(
-            _too_many_cells(parsed.features[r], int(candidates[r]), max_cells, "its bounding box spans")
+        faults.setdefault(
+            int(r), _too_many_cells(features[r], int(candidates[r]), max_cells, "its bounding box spans")
         )
     mask_flat = None if data_mask is None else data_mask.ravel()
     layer_flat = None if layer is None else np.nan_to_num(layer.ravel(), nan=0.0)
@@ -354,7 +457,7 @@ def _compute_weights(
         pieces.counted.append(counted)
     part, cell, area, ground, counted = pieces.joined()
     feature = owner[part]
-    if len(parts) != n:
+    if len(parts) != m:
         # Several parts (or copies a turn apart) of one feature may share a cell: one entry per pair.
         feature, cell, area, ground, counted = _per_feature_cell(
             feature, cell, area, ground, counted, ny * nx
@@ -368,63 +471,93 @@ def _compute_weights(
         weight = np.where(mask_flat[cell], weight, 0.0)
     if layer_flat is not None:
         weight = weight * layer_flat[cell]
-    touched = np.bincount(feature[ground > 0], minlength=n)
+    touched = np.bincount(feature[ground > 0], minlength=m)
     has_data = mask_flat[cell] if mask_flat is not None else np.ones(len(cell), bool)
-    data_area = np.bincount(feature, weights=np.where(has_data, ground, 0.0), minlength=n)
-    data_plane = np.bincount(feature, weights=np.where(has_data, area, 0.0), minlength=n)
-    n_cells = np.bincount(feature[weight > 0], minlength=n)
+    data_area = np.bincount(feature, weights=np.where(has_data, ground, 0.0), minlength=m)
+    data_plane = np.bincount(feature, weights=np.where(has_data, area, 0.0), minlength=m)
+    n_cells = np.bincount(feature[weight > 0], minlength=m)
     for r in np.flatnonzero(~too_big):
-        f = parsed.features[r]
+        if int(r) in faults:
+            continue
+        f = features[r]
         if touched[r] > max_cells:
-            errors.append(_too_many_cells(f, int(touched[r]), max_cells, "it touches"))
+            faults[int(r)] = _too_many_cells(f, int(touched[r]), max_cells, "it touches")
         elif touched[r] == 0 and not (weighting == "centers" and n_cells[r] > 0):
-            errors.append(_outside_reason(f, on_grid[r], source, grid, plane))
+            faults[int(r)] = _outside_reason(f, on_grid[r], source, grid, plane)
         elif n_cells[r] == 0:
-            errors.append(_without_data(f, int(touched[r]), weighting, layer is not None, data_area[r] > 0))
-    _raise_collected(errors)
-    keep = weight > 0
-    matrix = sparse.csr_matrix((weight[keep], (feature[keep], cell[keep])), shape=(n, ny * nx))
-    matrix.sum_duplicates()
-    matrix.sort_indices()
+            faults[int(r)] = _without_data(f, int(touched[r]), weighting, layer is not None, data_area[r] > 0)
+    skipped = _settle(faults, features, parsed, mode)
     coverage = np.clip(data_area / np.where(feature_area > 0, feature_area, 1.0), 0.0, 1.0)
     # A feature wholly on cells with data has coverage 1 exactly, not 1 less the midpoint rule's 1e-6 on
     # projected grids (plane areas of the pieces add up to the feature's to rounding).
-    plane_area = shapely.area(geoms)
-    coverage[data_plane >= plane_area * (1 - 1e-9)] = 1.0
+    coverage[data_plane >= shapely.area(geoms) * (1 - 1e-9)] = 1.0
+    faulted = np.zeros(m, dtype=bool)
+    faulted[list(faults)] = True
+    coverage[faulted] = 0.0
+    n_cells[faulted] = 0
+    keep = (weight > 0) & ~faulted[feature]
+    matrix = sparse.csr_matrix((weight[keep], (active[feature[keep]], cell[keep])), shape=(n, ny * nx))
+    matrix.sum_duplicates()
+    matrix.sort_indices()
     return Weights(
         matrix=matrix,
         feature_ids=parsed.ids,
-        area_km2=feature_area,
-        n_cells=n_cells.astype(np.int64),
-        coverage=coverage,
-        latitude=latitude,
-        longitude=longitude,
+        area_km2=_spread(feature_area, active, n, np.nan),
+        n_cells=_spread(n_cells.astype(np.int64), active, n, 0),
+        coverage=_spread(coverage, active, n, 0.0),
+        latitude=_spread(latitude, active, n, np.nan),
+        longitude=_spread(longitude, active, n, np.nan),
         key=key,
         weighting=weighting,
+        skipped=skipped,
     )
 
 
-def _split_on_grid(on_grid: np.ndarray, parsed: ParsedFeatures) -> np.ndarray:
-    """Features on a lat-lon grid's CRS with those crossing its 180th meridian cut there, or FeatureError."""
+def _spread(values: np.ndarray, active: np.ndarray, n: int, fill: float) -> np.ndarray:
+    """Per-feature values of the active features placed at their rows among all ``n``, ``fill`` elsewhere."""
+    if len(active) == n:
+        return values
+    out = np.full(n, fill, dtype=values.dtype)
+    out[active] = values
+    return out
+
+
+def _settle(
+    faults: dict[int, RequestError], features: list[Feature], parsed: ParsedFeatures, mode: str
+) -> list[SkippedFeature]:
+    """Raise the per-feature faults under 'fail' (or when no feature is left); else every skipped feature."""
+    here = [skipped_from(error, features[r].index) for r, error in faults.items()]
+    if faults and (mode == "fail" or len(faults) == len(features)):
+        errors: list[tuple[int, RequestError]] = [(features[r].index, e) for r, e in faults.items()]
+        # under 'skip' with nothing left, the features skipped at parsing belong in the list too
+        errors += [
+            (s.index, FeatureError(s.reason, pointer=s.pointer, feature_id=s.feature_id, code=s.code))
+            for s in (parsed.skipped if mode == "skip" else [])
+        ]
+        _raise_collected([e for _, e in sorted(errors, key=lambda pair: pair[0])])
+    return sorted([*parsed.skipped, *here], key=lambda s: s.index)
+
+
+def _split_on_grid(
+    on_grid: np.ndarray, features: list[Feature], faults: dict[int, RequestError]
+) -> np.ndarray:
+    """Features on a lat-lon grid's CRS with those crossing its 180th meridian cut there; faults noted."""
     pick = np.flatnonzero(crossing(on_grid))
     if pick.size == 0:
         return on_grid
     out = on_grid.copy()
-    errors: list[RequestError] = []
     for i in pick:
         try:
             out[i] = split(on_grid[i])
         except ValueError as exc:
-            f = parsed.features[i]
-            errors.append(
-                _fail(
-                    f.id,
-                    f.pointer + "/geometry",
-                    f"crosses the grid's 180th meridian and {exc}; send it cut at 180 degrees as a "
-                    "MultiPolygon (RFC 7946, section 3.1.9)",
-                )
+            f = features[i]
+            faults[int(i)] = _fail(
+                f.id,
+                f.pointer + "/geometry",
+                f"crosses the grid's 180th meridian and {exc}; send it cut at 180 degrees as a "
+                "MultiPolygon (RFC 7946, section 3.1.9)",
             )
-    _raise_collected(errors)
+            out[i] = shapely.Polygon()
     return out
 
 
@@ -501,6 +634,7 @@ def _too_many_cells(feature: Feature, got: int, allowed: int, what: str) -> Limi
         got=got,
         pointer=feature.pointer,
         feature_id=feature.id,
+        code="too_many_cells",
     )
 
 
@@ -518,5 +652,8 @@ def _without_data(
     else:
         reason = f"none of the {touched} cells it overlaps has data (water, or outside the data domain)"
     return FeatureWithoutDataError(
-        f"feature {feature.id!r} has no data: {reason}", pointer=feature.pointer, feature_id=feature.id
+        f"feature {feature.id!r} has no data: {reason}",
+        pointer=feature.pointer,
+        feature_id=feature.id,
+        code="no_data",
     )
