@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import os
 import platform
-import sys
 import time
 from pathlib import Path
 from typing import Any
