@@ -31,8 +31,14 @@ if TYPE_CHECKING:  # pandas is imported where a table is made: `wxshock submit` 
 
 PARQUET = "application/vnd.apache.parquet"
 # What a batch job can return, by format name, and the media type asked for; file suffixes map onto the names.
-JOB_MEDIA_TYPES = {"parquet": PARQUET, "csv": "text/csv", "json": "application/json"}
-_SUFFIX_ALIASES = {"pq": "parquet"}
+JOB_MEDIA_TYPES = {
+    "parquet": PARQUET,
+    "csv": "text/csv",
+    "json": "application/json",
+    "dta": "application/x-stata-dta",
+    "bundle": "application/zip",
+}
+_SUFFIX_ALIASES = {"pq": "parquet", "zip": "bundle"}
 # The server's default on-demand limit (setting max_features_on_demand); more features go as a batch job.
 ON_DEMAND_FEATURES = 200
 _RETRY_STATUSES = frozenset({502, 503, 504})
@@ -516,6 +522,15 @@ class Job:
         kind = response.headers.get("content-type", "").split(";")[0].strip()
         if kind in (PARQUET, "application/x-parquet"):
             return frame_from_parquet(response.content)
+        if kind == "application/zip":  # a replication bundle: its Parquet copy keeps provenance and warnings
+            import zipfile
+
+            with zipfile.ZipFile(io.BytesIO(response.content)) as bundle:
+                return frame_from_parquet(bundle.read("table.parquet"))
+        if kind == "application/x-stata-dta":
+            frame = pd.read_stata(io.BytesIO(response.content), convert_categoricals=False)
+            frame.attrs["provenance"] = _provenance_headers(response.headers)
+            return frame
         if kind == "text/csv":
             frame = pd.read_csv(io.BytesIO(response.content))
             frame.attrs["provenance"] = _provenance_headers(response.headers)
@@ -558,13 +573,13 @@ def _provenance_headers(headers: Mapping[str, str]) -> dict[str, str]:
 
 
 def job_format_from_suffix(path_suffix: str) -> str:
-    """The job result format of an output file's suffix (.parquet or .pq, .csv, .json)."""
+    """The job result format of an output file's suffix (.parquet or .pq, .csv, .json, .dta, .zip)."""
     suffix = path_suffix.lower().lstrip(".")
     fmt = _SUFFIX_ALIASES.get(suffix, suffix)
     if fmt not in JOB_MEDIA_TYPES:
         raise RequestError(
             f"cannot tell the output format from the suffix {path_suffix!r}; use "
-            f"{', '.join('.' + name for name in JOB_MEDIA_TYPES)}",
+            f"{', '.join('.' + name for name in JOB_MEDIA_TYPES if name != 'bundle')}, .zip (a bundle)",
             field="out",
         )
     return fmt

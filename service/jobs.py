@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from service.encode.formats import SUFFIXES
 from service.errors import (
     JobNotFoundError,
     JobStateError,
@@ -52,7 +53,6 @@ FINISHED_STATES = frozenset({"succeeded", "failed", "cancelled"})
 # A job that was running when the server stopped this many times is failed instead of re-queued, so that a
 # request that brings the server down cannot keep bringing it down.
 MAX_ATTEMPTS = 3
-SUFFIXES = {"json": "json", "csv": "csv", "parquet": "parquet"}
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS jobs (

@@ -5,14 +5,25 @@ a fixed number of decimals (far below the store's 0.1 precision, far above summa
 time-dependent is written.
 
 Modules: ``result`` (RunResult and the byte-stable frame), ``formats`` (which format a request asks for,
-and ``encode``, the one entry point), ``tables`` (JSON, CSV, Parquet), ``files`` (result files on disk). The public names below are the ones
+and ``encode``, the one entry point), ``tables`` (JSON, CSV, Parquet), ``stata`` (.dta), ``bundle`` (the replication zip), ``codebook`` (what each
+column is), ``files`` (result files on disk). The public names below are the ones
 to import; the modules behind them may move.
 """
 
 from __future__ import annotations
 
 from service.encode.files import write_atomically
-from service.encode.formats import FORMATS, encode, format_from, format_from_suffix
+from service.encode.formats import (
+    FORMATS,
+    SERIES_FORMATS,
+    SUFFIXES,
+    SeriesFormat,
+    TableFormat,
+    download_name,
+    encode,
+    format_from,
+    format_from_suffix,
+)
 from service.encode.result import FLOAT_DECIMALS, RunResult, json_value, provenance_headers, stable_frame
 from service.encode.tables import (
     PARQUET_METADATA_KEY,
@@ -25,6 +36,11 @@ from service.encode.tables import (
 __all__ = [
     "FLOAT_DECIMALS",
     "FORMATS",
+    "SERIES_FORMATS",
+    "SUFFIXES",
+    "SeriesFormat",
+    "TableFormat",
+    "download_name",
     "PARQUET_METADATA_KEY",
     "RunResult",
     "encode",

@@ -189,14 +189,16 @@ def check_on_demand(body: Any, settings: Settings) -> None:
     )
 
 
-def table_responses(json_description: str) -> dict[int | str, dict[str, Any]]:
-    """The OpenAPI 200 entry of a route answering JSON, CSV or Parquet by Accept or ?format=."""
+def table_responses(json_description: str, *, bundle: bool = True) -> dict[int | str, dict[str, Any]]:
+    """The OpenAPI 200 entry of a route answering JSON, CSV, Parquet, Stata (or a bundle) by Accept or ?format=."""
     return {
         200: {
             "description": json_description,
             "content": {
                 "text/csv": {"schema": {"type": "string"}},
                 "application/vnd.apache.parquet": {"schema": {"type": "string", "format": "binary"}},
+                "application/x-stata-dta": {"schema": {"type": "string", "format": "binary"}},
+                **({"application/zip": {"schema": {"type": "string", "format": "binary"}}} if bundle else {}),
             },
             "headers": {
                 name: {"schema": {"type": "string"}, "description": description}

@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import importlib
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Depends, Query, Request, Response
 
+from service.encode.formats import TableFormat
 from service.routes.body import OffLoopRoute
 from service.routes.deps import (
     AppSettings,
@@ -25,7 +26,7 @@ router = APIRouter(
     route_class=OffLoopRoute,
 )
 
-OutputFormat = Literal["json", "csv", "parquet"]
+OutputFormat = TableFormat  # json, csv, parquet, dta (Stata), bundle (replication zip)
 
 
 def indicator_catalog() -> IndicatorCatalog:

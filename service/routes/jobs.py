@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Depends, Header, Path, Query, Request, Response
 from fastapi.responses import FileResponse
 
+from service.encode.formats import SUFFIXES, TableFormat
 from service.errors import NotAcceptableError
 from service.jobs import Job, check_job_request
 from service.routes.body import OffLoopRoute
@@ -95,7 +96,7 @@ def submit_job(
     caller: Caller,
     idempotency_key: IdempotencyKey = None,
     format: Annotated[
-        Literal["json", "csv", "parquet"], Query(description="Format of the result.")
+        TableFormat, Query(description="Format of the result: json, csv, parquet, dta or bundle (a zip).")
     ] = "parquet",
 ) -> JobStatus:
     """Queue an indicator request with any number of features as a batch job; 202 with its Location."""
@@ -161,7 +162,7 @@ def get_job_result(job_id: JobId, request: Request, jobs: Jobs, caller: Caller) 
         path,
         media_type=job.media_type,
         headers=job.headers,
-        filename=f"wxshock-{job.id}.{job.format}",
+        filename=f"wxshock-{job.id}.{SUFFIXES[job.format]}",
         content_disposition_type="attachment",
     )
 

@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated
 
 from fastapi import APIRouter, Depends, Query, Request, Response
 
+from service.encode.formats import SeriesFormat
 from service.routes.body import OffLoopRoute
 from service.routes.deps import (
     AppSettings,
@@ -27,7 +28,7 @@ router = APIRouter(
     operation_id="computeSeries",
     response_model=IndicatorResult,
     responses={
-        **table_responses("The daily series, one row per (feature_id, date)"),
+        **table_responses("The daily series, one row per (feature_id, date)", bundle=False),
         **problem_responses(400, 401, 404, 406, 413, 422, 503),
     },
 )
@@ -36,14 +37,14 @@ def compute_series(
     request: Request,
     registry: Registry,
     settings: AppSettings,
-    format: Annotated[
-        Literal["json", "csv", "parquet"] | None, Query(description="Overrides Accept.")
-    ] = None,
+    format: Annotated[SeriesFormat | None, Query(description="Overrides Accept.")] = None,
 ) -> Response:
     """Daily area-weighted tmax, tmin, tmean and prcp per community (Parquet unless asked otherwise)."""
     from service import encode, pipeline
 
-    fmt = encode.format_from(request.headers.get("accept"), format, default="parquet")
+    fmt = encode.format_from(
+        request.headers.get("accept"), format, default="parquet", offered=encode.SERIES_FORMATS
+    )
     check_on_demand(body, settings)
     store = registry.get_dataset(body.dataset)
     content, media_type, headers = encode.encode(pipeline.run_series(body, store, settings), fmt)

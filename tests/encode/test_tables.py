@@ -114,3 +114,72 @@ def test_float_noise_below_precision_does_not_change_bytes() -> None:
     noisy = _result()
     noisy.frame["prcp_total"] = noisy.frame["prcp_total"] + 1e-11
     assert encode(noisy, "csv")[0] == encode(_result(), "csv")[0]
+
+
+@pytest.mark.parametrize(
+    ("cell", "written"),
+    [
+        ('=HYPERLINK("x")', '\'=HYPERLINK("x")'),
+        ("+1+2", "'+1+2"),
+        ("-2+3+cmd", "'-2+3+cmd"),
+        ("@SUM(A1)", "'@SUM(A1)"),
+        ("\tx", "'\tx"),
+        ("-1.5", "-1.5"),  # a plain number stays what it is
+        ("+3e5", "+3e5"),
+        ("qu-001", "qu-001"),
+        ("much drier", "much drier"),
+    ],
+)
+def test_csv_neutralises_formula_like_text(cell: str, written: str) -> None:
+    # OWASP, "CSV Injection": a leading quote makes spreadsheets show the text instead of running it.
+    frame = pd.DataFrame(
+        {"feature_id": pd.array([cell], dtype="string"), "value": [-1.5], "label": pd.Categorical([cell])}
+    )
+    body, _, _ = encode(RunResult(frame, PROVENANCE, []), "csv")
+    back = pd.read_csv(io.BytesIO(body), dtype=str, keep_default_na=False)
+    assert back["feature_id"].tolist() == [written]
+    assert back["label"].tolist() == [written]
+    assert back["value"].tolist() == ["-1.5"]  # numbers are never touched
+
+
+def test_json_and_parquet_keep_formula_like_text_as_it_is() -> None:
+    frame = pd.DataFrame({"feature_id": pd.array(["=1+1"], dtype="string")})
+    result = RunResult(frame, PROVENANCE, [])
+    assert json.loads(encode(result, "json")[0])["rows"][0]["feature_id"] == "=1+1"
+    assert pq.read_table(io.BytesIO(encode(result, "parquet")[0]))["feature_id"].to_pylist() == ["=1+1"]
+
+
+def test_parquet_keeps_provenance_and_warnings_under_their_own_keys() -> None:
+    body, _, _ = encode(_result(), "parquet")
+    metadata = pq.read_schema(io.BytesIO(body)).metadata
+    assert json.loads(metadata[b"wxshock.provenance"]) == PROVENANCE
+    assert json.loads(metadata[b"wxshock.warnings"]) == _result().warnings
+    assert read_parquet_provenance(body) == {"provenance": PROVENANCE, "warnings": _result().warnings}
+
+
+def test_old_parquet_files_still_read() -> None:
+    # Before the split, one key held {provenance, warnings}.
+    import pyarrow as pa
+
+    table = pa.table({"feature_id": ["a"]}).replace_schema_metadata(
+        {b"wxshock.provenance": json.dumps({"provenance": PROVENANCE, "warnings": [{"reason": "x"}]})}
+    )
+    sink = io.BytesIO()
+    pq.write_table(table, sink)
+    assert read_parquet_provenance(sink.getvalue()) == {
+        "provenance": PROVENANCE,
+        "warnings": [{"reason": "x"}],
+    }
+
+
+def test_parquet_stores_repeated_ids_once_per_row_group_but_reads_them_as_plain_strings() -> None:
+    frame = pd.DataFrame(
+        {"feature_id": pd.array(["qu-001"] * 500 + ["qu-002"] * 500, dtype="string"), "year": range(1000)}
+    )
+    body, _, _ = encode(RunResult(frame, PROVENANCE, []), "parquet")
+    parquet = pq.ParquetFile(io.BytesIO(body))
+    column = parquet.metadata.row_group(0).column(0)
+    assert column.path_in_schema == "feature_id"
+    assert "RLE_DICTIONARY" in column.encodings or "PLAIN_DICTIONARY" in column.encodings
+    assert str(parquet.schema_arrow.field("feature_id").type) in ("string", "large_string")
+    assert pd.read_parquet(io.BytesIO(body))["feature_id"].iloc[-1] == "qu-002"
