@@ -6,6 +6,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from service.encode.formats import TableFormat
+
 
 class ProblemItem(BaseModel):
     """One failing field or feature of a request: where (an RFC 6901 pointer into the body) and why."""
@@ -132,7 +134,7 @@ class JobStatus(BaseModel):
     id: str
     state: JobStateName
     dataset: str
-    format: Literal["json", "csv", "parquet"]
+    format: TableFormat
     features_total: int
     features_done: int
     progress: float = Field(description="Share of features done, 0 to 1.")
