@@ -63,7 +63,13 @@ def test_every_operation_has_a_stable_id_a_summary_and_problem_documents_for_err
             if status.startswith(("4", "5")) and path not in ("/ready",):
                 assert list(response["content"]) == [PROBLEM], (method, path, status)
     table = schema["paths"]["/v1/indicators"]["post"]["responses"]["200"]["content"]
-    assert set(table) == {"application/json", "text/csv", "application/vnd.apache.parquet"}
+    assert set(table) == {
+        "application/json",
+        "text/csv",
+        "application/vnd.apache.parquet",
+        "application/x-stata-dta",
+        "application/zip",
+    }
 
 
 def test_wxshock_openapi_writes_the_same_document(tmp_path: Path) -> None:
