@@ -1,4 +1,4 @@
-"""Outside tools the tests drive: R (Rscript with httr2 and jsonlite) and headless Chromium with chromedriver.
+"""Outside tools the tests drive: R (Rscript with the R client's packages) and headless Chromium with chromedriver.
 
 Each session fixture finds the tool, or installs it from Debian's packages when it is missing (apt-get update
 once per session, then apt-get install), and skips with the reason only when it cannot be installed (not
@@ -27,7 +27,17 @@ from typing import Any
 import httpx
 import pytest
 
-R_PACKAGES = ("r-base-core", "r-cran-httr2", "r-cran-jsonlite")
+# R and what the R client (clients/r) needs to install, check and test: Debian's packages only.
+R_PACKAGES = (
+    "r-base-core",
+    "r-cran-httr2",
+    "r-cran-jsonlite",
+    "r-cran-sf",
+    "r-cran-tibble",
+    "r-cran-haven",
+    "r-cran-testthat",
+)
+R_LIBRARIES = ("httr2", "jsonlite", "sf", "tibble", "haven", "testthat")
 BROWSER_PACKAGES = ("chromium", "chromium-driver")
 CHROMIUM_FLAGS = (
     "--headless",
@@ -74,9 +84,10 @@ def apt_install(packages: Sequence[str]) -> str | None:
 
 
 def _r_ready(rscript: str) -> bool:
-    """Rscript runs and loads httr2 and jsonlite."""
+    """Rscript runs and finds every package of R_LIBRARIES."""
+    wanted = ", ".join(f'"{name}"' for name in R_LIBRARIES)
     probe = subprocess.run(
-        [rscript, "-e", "suppressPackageStartupMessages({library(httr2); library(jsonlite)})"],
+        [rscript, "-e", f"stopifnot(all(vapply(c({wanted}), requireNamespace, TRUE, quietly = TRUE)))"],
         capture_output=True,
         timeout=120,
     )
@@ -85,7 +96,7 @@ def _r_ready(rscript: str) -> bool:
 
 @pytest.fixture(scope="session")
 def rscript() -> str:
-    """Path of Rscript with httr2 and jsonlite loadable, installed from Debian when missing."""
+    """Path of Rscript with the R client's packages loadable, installed from Debian when missing."""
     found = shutil.which("Rscript")
     if found and _r_ready(found):
         return found
@@ -93,7 +104,8 @@ def rscript() -> str:
     found = shutil.which("Rscript")
     if reason is not None or not found or not _r_ready(found):
         pytest.skip(
-            f"R with httr2 and jsonlite cannot be installed: {reason or 'Rscript still fails to load them'}"
+            f"R with {', '.join(R_LIBRARIES)} cannot be installed: "
+            f"{reason or 'Rscript still fails to load them'}"
         )
     return found
 

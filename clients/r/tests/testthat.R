@@ -1,0 +1,4 @@
+library(testthat)
+library(wxshock)
+
+test_check("wxshock")
