@@ -229,6 +229,10 @@ def validation_items(errors: list[dict[str, Any]], drop_prefix: tuple[str, ...] 
         if drop_prefix and tuple(loc[: len(drop_prefix)]) == drop_prefix:
             loc = loc[len(drop_prefix) :]
         message = str(error.get("msg", "")).removeprefix("Value error, ")
+        if error.get("type") == "extra_forbidden":
+            from service.suggest import unknown_field_message
+
+            message = unknown_field_message([p for p in loc if isinstance(p, str | int)]) or message
         item: dict[str, Any] = {"pointer": pointer_from_loc(loc), "message": message}
         if "input" in error and isinstance(error["input"], str | int | float | bool | type(None)):
             value = error["input"]

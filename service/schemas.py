@@ -187,7 +187,31 @@ class YearSpan(_Model):
 class MonthsSeason(_Model):
     """A season of whole months, one contiguous run that may cross the new year ([11, 12, 1, 2])."""
 
-    months: list[StrictInt] = Field(min_length=1, max_length=12)
+    months: list[StrictInt] = Field(
+        min_length=1, max_length=12, description="Month numbers 1-12 (English month names are read too)."
+    )
+
+    @field_validator("months", mode="before")
+    @classmethod
+    def _month_names(cls, months: Any) -> Any:
+        """English month names ('May', 'october', 'Sep') become their numbers; other values pass on."""
+        from service.suggest import MONTHS, did_you_mean, month_number
+
+        if not isinstance(months, list):
+            return months
+        numbers = []
+        for month in months:
+            if isinstance(month, str) and not month.strip().isdigit():
+                number = month_number(month)
+                if number is None:
+                    raise ValueError(
+                        f"month {month!r} is not a month name{did_you_mean(month.lower(), MONTHS)}; give "
+                        "numbers 1-12 or English names"
+                    )
+                numbers.append(number)
+            else:
+                numbers.append(month)
+        return numbers
 
     @field_validator("months")
     @classmethod
@@ -433,6 +457,17 @@ class IndicatorRequest(_FeatureRequest):
         default=None, description="Default: all years the baseline and lags allow."
     )
     season: Season = "year"
+
+    @field_validator("season", mode="before")
+    @classmethod
+    def _season_form(cls, season: Any) -> Any:
+        """A season written another way ('MJJASO', 'May-October', [5, 6]) gets the accepted forms and a guess."""
+        from service.suggest import season_message
+
+        if (isinstance(season, str) and season != "year") or isinstance(season, list):
+            raise ValueError(season_message(season))
+        return season
+
     baseline: (
         Annotated[
             Annotated[FixedBaseline, Tag("Fixed")] | Annotated[TrailingBaseline, Tag("Trailing")],

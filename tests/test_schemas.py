@@ -74,7 +74,11 @@ def test_alternative_forms(field: str, value: Any, kind: type) -> None:
     [
         ({"season": {"months": [1, 3]}}, "/season/months", "not one consecutive run"),
         ({"season": {"months": [0, 1]}}, "/season/months", "not in 1..12"),
-        ({"season": "winter"}, "/season", "'year'"),
+        ({"season": "winter"}, "/season", 'give "year", {"months"'),
+        ({"season": "MJJASO"}, "/season", 'did you mean {"months": [5, 6, 7, 8, 9, 10]}?'),
+        ({"season": "November-February"}, "/season", 'did you mean {"months": [11, 12, 1, 2]}?'),
+        ({"season": [6, 7, 8]}, "/season", 'did you mean {"months": [6, 7, 8]}?'),
+        ({"season": {"months": ["May", "Junee"]}}, "/season/months", "did you mean 'june'?"),
         ({"season": {"start": "02-30", "end": "03-01"}}, "/season/start", "no day 30"),
         ({"season": {"start": "2-1", "end": "03-01"}}, "/season/start", "MM-DD"),
         ({"baseline": {"start": 1990, "end": 1980}}, "/baseline", "after its end"),
@@ -99,7 +103,10 @@ def test_alternative_forms(field: str, value: Any, kind: type) -> None:
             "/spells/0/when/0",
             "gives none of",
         ),
-        ({"colour": "red"}, "/colour", "Extra inputs are not permitted"),
+        ({"colour": "red"}, "/colour", "unknown field 'colour'; fields here: dataset, features"),
+        ({"indicator": ["tmean"]}, "/indicator", "unknown field 'indicator'; did you mean 'indicators'?"),
+        ({"lag": [1]}, "/lag", "unknown field 'lag'; did you mean 'lags'?"),
+        ({"baseline": {"strat": 1980, "end": 1990}}, "/baseline/strat", "did you mean 'start'?"),
         ({"features": {"type": "Polygon", "coordinates": []}}, "/features", "FeatureCollection or Feature"),
         ({"features": {"type": "FeatureCollection", "features": []}}, "/features/features", "at least 1"),
     ],
@@ -129,3 +136,8 @@ def test_series_request_defaults() -> None:
     assert request.variables == ["tmax", "tmin", "tmean", "prcp"]
     with pytest.raises(RequestValidationFailed, match="variables"):
         validate_request(SeriesRequest, {"features": COLLECTION, "variables": ["wind"]})
+
+
+def test_month_names_are_read_as_numbers() -> None:
+    request = validate_request(IndicatorRequest, _with(season={"months": ["Nov", "december", "Jan"]}))
+    assert request.season.months == [11, 12, 1]

@@ -233,8 +233,11 @@ class Indicator:
         unknown = sorted(set(given) - set(self.parameters))
         if unknown:
             allowed = sorted(self.parameters) or "none"
+            from service.suggest import did_you_mean
+
             raise UnknownIndicatorError(
-                f"indicator {self.name!r} has no parameter {unknown[0]!r}; its parameters are: {allowed}",
+                f"indicator {self.name!r} has no parameter {unknown[0]!r}"
+                f"{did_you_mean(unknown[0], self.parameters)}; its parameters are: {allowed}",
                 field=f"indicators.{self.name}.{unknown[0]}",
             )
         values: dict[str, ParameterValue] = {}
@@ -283,8 +286,11 @@ def get_indicator(name: str) -> Indicator:
     try:
         return _REGISTRY[name]
     except KeyError:
+        from service.suggest import did_you_mean
+
         raise UnknownIndicatorError(
-            f"unknown indicator {name!r}; known indicators: {', '.join(sorted(_REGISTRY))}",
+            f"unknown indicator {name!r}{did_you_mean(name, _REGISTRY)}; known indicators: "
+            f"{', '.join(sorted(_REGISTRY))}",
             field="indicators",
         ) from None
 
