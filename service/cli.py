@@ -85,8 +85,9 @@ def cmd_describe(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(info, indent=2, sort_keys=True, default=str))
     else:
-        for key, value in info.items():
-            print(f"{key:>14}: {value}")
+        from service.describe_text import describe_text
+
+        sys.stdout.write(describe_text(info))
     return 0
 
 
