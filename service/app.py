@@ -380,7 +380,7 @@ def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
         version=__version__,
         description=DESCRIPTION,
         lifespan=lifespan,
-        docs_url="/docs",
+        docs_url=None,  # /docs and /redoc come from service.routes.docs, with their scripts served locally
         redoc_url=None,
         openapi_tags=[
             {"name": "service", "description": "Liveness and readiness."},

@@ -153,6 +153,11 @@ def chromium() -> Browser:
     return Browser(chromium=str(paths[0]), chromedriver=str(paths[1]))
 
 
+# Chromium with the network closed: every host name fails to resolve except this machine's loopback
+# addresses, so a page that needs anything from the internet shows it.
+OFFLINE_FLAGS = ("--host-resolver-rules=MAP * ~NOTFOUND, EXCLUDE 127.0.0.1, EXCLUDE localhost",)
+
+
 # --- a minimal W3C WebDriver client -------------------------------------------------------------------------
 
 ELEMENT = "element-6066-11e4-a52e-4f735466cecf"  # the W3C WebDriver web element identifier
@@ -161,7 +166,9 @@ ELEMENT = "element-6066-11e4-a52e-4f735466cecf"  # the W3C WebDriver web element
 class WebDriver:
     """One headless Chromium session driven through chromedriver on 127.0.0.1 (W3C protocol, JSON over HTTP)."""
 
-    def __init__(self, browser: Browser, *, size: tuple[int, int] = (1280, 1000)) -> None:
+    def __init__(
+        self, browser: Browser, *, size: tuple[int, int] = (1280, 1000), extra_args: Sequence[str] = ()
+    ) -> None:
         from tests._support_server import free_port
 
         self.port = free_port()
@@ -177,6 +184,7 @@ class WebDriver:
             *CHROMIUM_FLAGS,
             f"--user-data-dir={self._profile.name}",
             f"--window-size={size[0]},{size[1]}",
+            *extra_args,
         ]
         capabilities = {
             "capabilities": {

@@ -11,4 +11,5 @@ ROUTER_MODULES = (
     "service.routes.jobs",
     "service.routes.plots",
     "service.routes.viewer",
+    "service.routes.docs",
 )
