@@ -196,3 +196,97 @@ def test_map_plot_marks_missing_cells_grey_and_takes_points() -> None:
 def test_map_plot_refuses_bad_input(field_shape: tuple[int, int], kwargs: dict, message: str) -> None:
     with pytest.raises(RequestError, match=message):
         map_plot(np.zeros(field_shape), np.arange(6.0), np.arange(5.0), [shapely.box(1, 1, 2, 2)], **kwargs)
+
+
+# --- what the pictures say (issue 14: pictures a researcher would put in a talk) ----------------------------
+
+
+def test_the_series_picture_names_the_community_and_season_and_marks_the_baseline() -> None:
+    from service.plots import series_figure
+
+    fig = series_figure(
+        _frame(),
+        "c-01",
+        community="Vitrou",
+        season="May-Oct",
+        baseline_years=(1993, 1999),
+        spells=["dry_hot"],
+    )
+    assert fig.get_suptitle() == "Vitrou (c-01): seasonal anomalies, season May-Oct, against 1993-1999"
+    panels = fig.axes
+    assert panels[0].get_ylabel() == "season precipitation\nz (SD from normal)"
+    assert panels[1].get_ylabel() == "mean temperature\nz (SD from normal)"
+    assert panels[-1].get_xlabel() == "season-year (the year in which the season ends)"
+    assert [t.get_text() for t in panels[-1].get_yticklabels()] == ["spell dry_hot"]
+    (bar,) = [a for a in panels[-1].get_lines() if a.get_gid() == "baseline-bar"]
+    assert list(bar.get_xdata()) == [1993 - 0.45, 1999 + 0.45]
+    (label,) = [t for t in panels[0].texts if t.get_gid() == "baseline-label"]
+    assert label.get_text() == "baseline 1993-1999"
+    # the band is drawn in every panel over the baseline years only
+    pixels = _pixels(series_plot(_frame(), "c-01", baseline_years=(1993, 1999), spells=["dry_hot"]))
+    slate = _near(pixels, "#5f6b73", 0.05)
+    row = int(np.argmax(slate.sum(axis=1)))  # the bar at the foot of the time axis
+    columns = np.flatnonzero(slate[row])
+    assert row > pixels.shape[0] * 0.8  # at the foot, not in a panel
+    # 7 of the 20 season-years on the axis: about a third of the time axis's width
+    axis_width = pixels.shape[1] * (0.86 - 0.09)
+    assert 0.25 < (columns.max() - columns.min()) / axis_width < 0.42
+    untitled = series_figure(_frame(), "c-01")
+    assert untitled.get_suptitle() == "community c-01: seasonal anomalies"
+
+
+def test_the_series_picture_without_a_fixed_baseline_says_which_one() -> None:
+    from service.plots import series_figure
+
+    fig = series_figure(_frame(), "c-01", season="Nov-Feb", baseline_text="the 10 season-years before each")
+    assert fig.get_suptitle().endswith("season Nov-Feb, against the 10 season-years before each")
+    assert not [t for t in fig.axes[0].texts if t.get_gid() == "baseline-label"]
+
+
+def _crowded() -> tuple[np.ndarray, np.ndarray, np.ndarray, list, list[str]]:
+    """A 20 x 40 cell grid (wide) with 30 small communities, many of them close together."""
+    rng = np.random.default_rng(3)
+    x_edges, y_edges = np.linspace(10.0, 12.0, 41), np.linspace(5.0, 6.0, 21)
+    field = rng.normal(size=(20, 40))
+    field[:3, :5] = np.nan
+    centres = list(zip(rng.uniform(10.1, 10.6, 30), rng.uniform(5.1, 5.4, 30), strict=True))
+    outlines = [shapely.Point(x, y).buffer(0.01) for x, y in centres]
+    return field, x_edges, y_edges, outlines, [f"village-{i:02d}" for i in range(30)]
+
+
+def test_map_labels_never_overlap_and_colliding_ones_are_left_out() -> None:
+    from service.plots import map_figure
+
+    field, x_edges, y_edges, outlines, labels = _crowded()
+    fig = map_figure(field, x_edges, y_edges, outlines, labels=labels, geographic=False)
+    ax = fig.axes[0]
+    renderer = fig.canvas.get_renderer()
+    drawn = [t for t in ax.texts if t.get_text().startswith("village-")]
+    boxes = [t.get_window_extent(renderer) for t in drawn]
+    assert 5 <= len(drawn) < len(labels)  # crowded: some fit, the others are left out
+    assert len({t.get_text() for t in drawn}) == len(drawn)
+    for i, a in enumerate(boxes):
+        for b in boxes[i + 1 :]:
+            assert not a.overlaps(b)
+    frame = ax.get_window_extent(renderer)
+    assert all(frame.x0 <= b.x0 and b.x1 <= frame.x1 for b in boxes)
+
+
+def test_map_shows_no_data_in_the_legend_and_uses_the_figures_width() -> None:
+    from service.plots import map_figure, map_title
+
+    field, x_edges, y_edges, outlines, labels = _crowded()
+    fig = map_figure(field, x_edges, y_edges, outlines, geographic=False, size_px=(1000, 700))
+    (legend,) = fig.legends
+    assert [t.get_text() for t in legend.get_texts()] == ["no data"]
+    assert to_hex(legend.legend_handles[0].get_facecolor()) == to_hex("#d9d9d9")
+    # A map twice as wide as high fills the width left by the margins and the colour bar.
+    left, _, width, height = fig.axes[0].get_position().bounds
+    assert width > 0.75 and abs(width * 1000 / (height * 700) - 2.0) < 0.02
+    # A tall map fills the height instead.
+    tall = map_figure(field.T, y_edges, x_edges, [], geographic=False, size_px=(1000, 700))
+    _, _, width, height = tall.axes[0].get_position().bounds
+    assert height > 0.8
+    assert map_title("prcp_total", "May-Oct", 2010, (1981, 1990), "demo") == (
+        "Season precipitation, May-Oct 2010: z against 1981-1990 (demo)"
+    )

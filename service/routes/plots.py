@@ -95,13 +95,16 @@ def plot_series(
     """PNG of one community's seasonal z-scores over the years: class bands shaded, spells marked."""
     from service import pipeline
     from service.encode import provenance_headers
-    from service.plots import series_plot
+    from service.encode.codebook import season_text
+    from service.plots import community_name, series_plot
 
     check_on_demand(body, settings)
     one, wanted = _one_feature(body, feature_id)
     store = registry.get_dataset(one.dataset)
     result = pipeline.run(_with_plotted(one, precipitation, temperature), store, settings)
     drawn = wanted or str(result.frame["feature_id"].iloc[0])
+    resolved = result.provenance.get("request") or {}
+    baseline = resolved.get("baseline") or {}
     png = series_plot(
         result.frame,
         drawn,
@@ -109,10 +112,27 @@ def plot_series(
         temperature=temperature,
         edges=one.classes.edges,
         spells=[s.name for s in one.spells],
-        title=f"community {drawn}: seasonal anomalies against {_baseline_text(result.provenance)}",
+        community=community_name(_first_properties(one)),
+        season=season_text(resolved.get("season")),
+        baseline_years=(baseline["start"], baseline["end"]) if "start" in baseline else None,
+        baseline_text=_baseline_text(result.provenance),
         size_px=(width, height),
     )
     return Response(png, media_type="image/png", headers=provenance_headers(result.provenance))
+
+
+def _dumped(value: object) -> object:
+    """A request part as plain JSON values (a season model as its dict)."""
+    dump = getattr(value, "model_dump", None)
+    return dump(mode="json") if dump is not None else value
+
+
+def _first_properties(body: IndicatorRequest) -> dict | None:
+    """The properties of the request's (first) feature."""
+    features = getattr(body.features, "features", None)
+    feature = features[0] if features else body.features
+    properties = getattr(feature, "properties", None)
+    return properties if isinstance(properties, dict) else None
 
 
 def _baseline_text(provenance: dict) -> str:
@@ -146,9 +166,10 @@ def plot_map(
 ) -> Response:
     """PNG of one season-year's anomaly (z) over the grid, with the requested communities outlined."""
     from service import pipeline
+    from service.encode.codebook import season_text
     from service.indicators.table import resolve_request
     from service.maps import anomaly_field, mappable, to_grid_crs
-    from service.plots import map_plot
+    from service.plots import map_plot, map_title
 
     check_on_demand(body, settings)
     mappable(indicator)
@@ -180,7 +201,9 @@ def plot_map(
         outlines,
         labels=parsed.ids,
         family=field.family,
-        title=f"{indicator} {field.year}: z against {first}-{last} ({store.name})",
+        title=map_title(
+            indicator, season_text(_dumped(resolved.season)), field.year, (first, last), store.name
+        ),
         geographic=grid.is_geographic,
         size_px=(width, height),
     )
