@@ -141,9 +141,22 @@ def methods_text(provenance: Mapping[str, Any], warnings: list[dict[str, Any]], 
         f"- {rows} rows; {len(warnings)} warnings" + (f" (codes: {', '.join(codes)})" if codes else "") + ".",
         "- Files: table.parquet, table.csv, table.dta (the same table), codebook.csv (every column), "
         "request.json (the resolved request), provenance.json, warnings.csv.",
-        "",
     ]
+    meanings = _code_meanings(codes)
+    if meanings:
+        lines += ["", "## Warning codes in this result (the `notes` column)", ""]
+        lines += [f"- `{code}`: {meaning}" for code, meaning in meanings]
+    lines.append("")
     return "\n".join(lines)
+
+
+def _code_meanings(codes: list[str]) -> list[tuple[str, str]]:
+    """Each warning code with its one-line meaning from the registry (unknown codes are left out)."""
+    try:
+        from service.warning_codes import WARNING_CODES
+    except ImportError:  # pragma: no cover - the registry ships with the package
+        return []
+    return [(code, WARNING_CODES[code]) for code in codes if code in WARNING_CODES]
 
 
 def to_bundle(frame: pd.DataFrame, provenance: dict[str, Any], warnings: list[dict[str, Any]]) -> bytes:

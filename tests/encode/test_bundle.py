@@ -113,3 +113,13 @@ def test_the_same_request_gives_the_same_bytes(
     body = example_body(tiny_communities, count=2)
     bundles = [encode(compute(tiny_demo, body, tmp_path / str(i)), "bundle")[0] for i in range(repeat)]
     assert bundles[0] == bundles[1]
+
+
+def test_methods_explain_the_warning_codes_that_occur(example_result: RunResult) -> None:  # noqa: F811
+    from service.warning_codes import WARNING_CODES
+
+    methods = _open(encode(example_result, "bundle")[0]).read("methods.md").decode()
+    codes = sorted({w["code"] for w in example_result.warnings})
+    assert codes, "the example request leaves some values null"
+    for code in codes:
+        assert f"- `{code}`: {WARNING_CODES[code]}" in methods
