@@ -58,6 +58,10 @@ test_that("an sf data frame gives the same table as its GeoJSON file", {
   from_projected <- do.call(community_shocks, c(list(server, projected, id_column = "id"), request))
   expect_equal(shock_provenance(from_projected)$request$crs, "EPSG:32633")
   expect_equal(from_projected$prcp_total, from_sf$prcp_total, tolerance = 1e-6)
+  skip_if_not_installed("tibble")
+  as_tibble <- do.call(community_shocks, c(list(server, villages, id_column = "id", tibble = TRUE), request))
+  expect_s3_class(as_tibble, "tbl_df")
+  expect_equal(shock_provenance(as_tibble)$request_hash, shock_provenance(from_sf)$request_hash)
 })
 
 test_that("a refusal is a wxshock_problem condition with the server's fields", {
