@@ -9,7 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 from collections.abc import Callable, Mapping
-from dataclasses import fields, replace
+from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
 
@@ -30,6 +30,7 @@ from service.errors import (
 from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
 from service.indicators.base import VARIABLES, DailySeries, snap_daily, snap_decimals
 from service.indicators.table import add_warning_notes, compute_table, plan_indicators, resolve_request
+from service.indicators.windows import ResolvedEvents, compute_event_table, resolve_events
 from service.prepared import Prepared, skipped_of, skipped_warnings, without_shapes
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
@@ -125,15 +126,34 @@ def features_and_weights(
     ``invalid`` 'skip' asks service.geometry to skip, not refuse, features that cannot be computed (their
     weight rows stay empty); the results then list them in ``skipped``.
     """
-    skip_option = _skip_option(invalid)
-    parsed = parse_features(
+    parsed = parse_request_features(request, settings, invalid=invalid)
+    return parsed, weights_for(parsed, request, store, settings, invalid=invalid)
+
+
+def parse_request_features(
+    request: IndicatorRequest | SeriesRequest, settings: Settings, *, invalid: str = "fail"
+) -> ParsedFeatures:
+    """The request's features, parsed and checked (service.geometry.parse_features)."""
+    return parse_features(
         request_text.features_as_dict(request),
         id_property=request.id_property,
         crs=request.crs,
         repair=request.repair,
         max_vertices=settings.max_vertices_per_feature,
-        **skip_option,
+        **_skip_option(invalid),
     )
+
+
+def weights_for(
+    parsed: ParsedFeatures,
+    request: IndicatorRequest | SeriesRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    invalid: str = "fail",
+) -> Weights:
+    """The weights of parsed features on the store's grid under the request's weighting."""
+    skip_option = _skip_option(invalid)
     weighting = request.weighting
     layer = None
     if not isinstance(weighting, str):
@@ -146,7 +166,7 @@ def features_and_weights(
             )
         layer = store.read_layer(weighting.layer)
         weighting = "area"
-    weights = compute_weights(
+    return compute_weights(
         parsed,
         store.grid,
         weighting=weighting,
@@ -156,7 +176,6 @@ def features_and_weights(
         cache_size=settings.weights_cache_size,
         **skip_option,
     )
-    return parsed, weights
 
 
 def _skip_option(invalid: str) -> dict[str, str]:
@@ -273,12 +292,28 @@ def run(
     batch_size: int = DEFAULT_BATCH_FEATURES,
     invalid_features: str = "fail",
     prepared: Prepared | None = None,
+    stores: Mapping[str, Store] | None = None,
 ) -> RunResult:
     """Season indicators for every feature of the request, one row per (feature_id, year).
 
     ``invalid_features`` is what to do with a feature that cannot be computed when the request does not say
     ('fail' on demand, 'skip' for jobs). ``prepared`` reuses the weights of an earlier :func:`prepare`.
+    A request with events gives one row per event instead (:func:`run_events`); one with variants computes
+    every variant, the datasets they name taken from ``stores`` (:func:`run_variants`).
     """
+    if request.variants or request.events is not None:
+        runner = run_variants if request.variants else run_events
+        return runner(
+            request,
+            store,
+            settings,
+            progress=progress,
+            cancelled=cancelled,
+            batch_size=batch_size,
+            invalid_features=invalid_features,
+            prepared=prepared,
+            stores=stores,
+        )
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
     variables = needed_variables(resolved)
@@ -349,6 +384,7 @@ def prepare(
     *,
     invalid_features: str = "fail",
     keep_shapes: bool = False,
+    stores: Mapping[str, Store] | None = None,
 ) -> Prepared:
     """Every check a run makes before reading daily values, and the features' weights: what a job's
     submission runs (so it refuses what the run would refuse) and what its run reuses.
@@ -356,7 +392,13 @@ def prepare(
     Request-level faults raise; per-feature faults raise under 'fail' (one error listing every bad feature)
     and are skipped under 'skip'. A request whose every feature is skipped raises FeatureError (422).
     ``keep_shapes`` keeps the features' geometries (the map draws them); otherwise they are dropped.
+    With events or variants the checks are theirs (:func:`prepare_events`, :func:`prepare_variants`);
+    ``stores`` serves the datasets that variants name.
     """
+    if request.variants:
+        return prepare_variants(request, store, settings, invalid_features=invalid_features, stores=stores)
+    if request.events is not None:
+        return prepare_events(request, store, settings, invalid_features=invalid_features)[0]
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
     prepared = _prepare_resolved(resolved, store, settings, invalid_features, keep_shapes)
@@ -426,6 +468,534 @@ def _prepare_resolved(
             ],
         )
     return Prepared(parsed if keep_shapes else without_shapes(parsed), weights, skipped, mode)
+
+
+# --- events ---------------------------------------------------------------------------------------------------
+
+
+def resolve_events_for(request: IndicatorRequest, store: Store, feature_ids: list[str]) -> ResolvedEvents:
+    """A request with events resolved against ``store``: defaults filled, events planned, baselines made."""
+    return resolve_events(request, feature_ids, store.dates, store.calendar, store.variables)
+
+
+def prepare_events(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
+) -> tuple[Prepared, ResolvedEvents]:
+    """The checks of a request with events (features, weights, events, windows, baseline) and a dry run."""
+    if prepared is None:
+        prepared = _prepare_resolved(request, store, settings, invalid_features)
+    resolved = resolve_events_for(request, store, list(prepared.weights.feature_ids))
+    years = resolved.plan.years
+    _check_years((int(years[0]), int(years[-1])), settings)
+    _dry_run_events(resolved, store, prepared)
+    return prepared, resolved
+
+
+def _dry_run_events(resolved: ResolvedEvents, store: Store, prepared: Prepared) -> None:
+    """The first computable event's windows on missing daily values: raises what the run would raise."""
+    plan = resolved.plan
+    skipped = {e["feature_id"] for e in prepared.skipped}
+    ids = list(prepared.weights.feature_ids)
+    usable = [i for i, row in enumerate(plan.feature_rows.tolist()) if ids[row] not in skipped]
+    if not usable:
+        return
+    event = usable[0]
+    needed = needed_variables(resolved.request)
+    dates = store.dates
+    days = int(dates.year.size)
+
+    def missing(name: str) -> np.ndarray | None:
+        return np.full((1, days), np.nan) if name in needed else None
+
+    daily = DailySeries(
+        tmax=missing("tmax"),
+        tmin=missing("tmin"),
+        prcp=missing("prcp"),
+        year=np.asarray(dates.year),
+        month=np.asarray(dates.month),
+        day=np.asarray(dates.day),
+        dayofyear=np.asarray(dates.dayofyear),
+        calendar=store.calendar,
+        latitude=np.zeros(1),
+    )
+    with np.errstate(all="ignore"):
+        compute_event_table(
+            daily, np.array([0]), np.array([event]), [ids[plan.feature_rows[event]]], resolved
+        )
+
+
+def _event_summary(request: dict[str, Any], resolved: IndicatorRequest) -> dict[str, Any]:
+    """The provenance's request with its events as a count and SHA-256 (as the features are)."""
+    if resolved.events is None:
+        return request
+    digest = hashlib.sha256()
+    digest.update(b"[")
+    for i, event in enumerate(resolved.events):
+        text = json.dumps(
+            event.model_dump(mode="json"), sort_keys=True, separators=(",", ":"), ensure_ascii=False
+        )
+        digest.update((("," if i else "") + text).encode("utf-8"))
+    digest.update(b"]")
+    request["events"] = {"count": len(resolved.events), "sha256": digest.hexdigest()}
+    return request
+
+
+def _event_batches(plan_rows: np.ndarray, weights: Weights, batch_size: int) -> list[np.ndarray]:
+    """Batches of the feature rows that have events, neighbours together (features without events are not read)."""
+    with_events = np.unique(plan_rows)
+    if not with_events.size:
+        return []
+    subset = take_weights(weights, with_events)
+    return [with_events[rows] for rows in feature_batches(subset, batch_size)]
+
+
+def _aggregate_batch(
+    store: Store,
+    weights: Weights,
+    rows: np.ndarray,
+    variables: tuple[str, ...],
+    span: slice,
+    settings: Settings,
+) -> tuple[Weights, DailySeries]:
+    """The weights of a feature batch and its computed daily series over ``span``."""
+    batch = take_weights(weights, rows)
+    # the indicators take tmean from tmax and tmin themselves (see run)
+    daily_lazy = aggregate(store, batch, variables=variables, time=span).drop_vars("tmean", errors="ignore")
+    (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
+    return batch, _daily_series(daily_ds, store, span, np.asarray(batch.latitude))
+
+
+def _event_table(
+    resolved: ResolvedEvents, daily: DailySeries, batch: Weights, rows: np.ndarray, n_features: int
+) -> tuple[Any, np.ndarray] | None:
+    """The event table of a feature batch and, per row, the index of its event (None: no event there)."""
+    plan = resolved.plan
+    position = np.full(n_features, -1, dtype=np.int64)
+    position[rows] = np.arange(rows.size)
+    events = np.flatnonzero(position[plan.feature_rows] >= 0)
+    if not events.size:
+        return None
+    table = compute_event_table(
+        daily, position[plan.feature_rows[events]], events, list(batch.feature_ids), resolved
+    )
+    return table, np.repeat(events, len(table.frame) // events.size)
+
+
+def run_events(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    progress: Progress | None = None,
+    cancelled: Cancelled | None = None,
+    batch_size: int = DEFAULT_BATCH_FEATURES,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
+    stores: Mapping[str, Store] | None = None,
+) -> RunResult:
+    """Event windows: one row per event (wide) or per (event, window, indicator) (long), in request order.
+
+    Each feature's daily series is aggregated once over the whole record, in feature batches, whatever the
+    number of its events; every window of every event is computed from it (service.indicators.windows).
+    Features without events are not read.
+    """
+    if prepared is None:
+        prepared, resolved = prepare_events(request, store, settings, invalid_features=invalid_features)
+    else:
+        resolved = resolve_events_for(request, store, list(prepared.weights.feature_ids))
+    parsed, weights = prepared.parsed, prepared.weights
+    plan = resolved.plan
+    variables = needed_variables(resolved.request)
+    span = slice(0, int(store.dates.year.size))  # the plan is made on the whole record
+    batches = _event_batches(plan.feature_rows, weights, batch_size)
+    total = int(sum(b.size for b in batches))
+    frames: list[pd.DataFrame] = []
+    orders: list[np.ndarray] = []
+    warnings: list[dict[str, Any]] = []
+    done = 0
+    if progress is not None:
+        progress(0, total)
+    for rows in batches:
+        if cancelled is not None and cancelled():
+            raise RunCancelledError(f"cancelled after {done} of {total} features")
+        batch, daily = _aggregate_batch(store, weights, rows, variables, span, settings)
+        made = _event_table(resolved, daily, batch, rows, len(weights.feature_ids))
+        if made is not None:
+            table, order = made
+            frames.append(_feature_columns(table.frame, weights, rows))
+            orders.append(order)
+            warnings.extend(table.warnings)
+        done += rows.size
+        if progress is not None:
+            progress(done, total)
+    frame = pd.concat(frames, ignore_index=True)
+    frame = frame.iloc[np.argsort(np.concatenate(orders), kind="stable")].reset_index(drop=True)
+    warnings = _warnings_in_order(warnings, weights.feature_ids)
+    frame, warnings = _without_skipped(frame, warnings, prepared.skipped)
+    later = [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in parsed.repaired
+    ] + skipped_warnings(prepared.skipped)
+    warnings.extend(later)
+    frame = add_warning_notes(frame, later)
+    document = provenance(resolved.request, store, parsed, prepared.skipped)
+    document["request"] = _event_summary(document["request"], resolved.request)
+    return RunResult(frame=frame, provenance=document, warnings=warnings)
+
+
+# --- variants -------------------------------------------------------------------------------------------------
+
+# The columns _feature_columns adds (per grid, suffixed '_<grid>', where a dataset has several grids).
+FEATURE_COLUMNS = ("coverage", "cells", "area_km2")
+
+
+@dataclass
+class _VariantRun:
+    """One variant of a request: its name, request and dataset, its resolution and the parts computed."""
+
+    index: int
+    name: str
+    request: IndicatorRequest
+    store: Store
+    resolved: IndicatorRequest | None = None  # a season request, resolved
+    events: ResolvedEvents | None = None  # a request with events, resolved
+    skipped: list[dict[str, Any]] = field(default_factory=list)
+    frames: list[pd.DataFrame] = field(default_factory=list)
+    orders: list[np.ndarray] = field(default_factory=list)
+    warnings: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def final(self) -> IndicatorRequest:
+        """The resolved request."""
+        resolved = self.events.request if self.events is not None else self.resolved
+        if resolved is None:
+            raise RuntimeError(f"variant {self.name!r} was not resolved")
+        return resolved
+
+    @property
+    def weights_key(self) -> str:
+        """Variants with equal keys share their weights: same dataset and weighting."""
+        weighting = self.request.weighting
+        text = weighting if isinstance(weighting, str) else json.dumps(weighting.model_dump(), sort_keys=True)
+        return f"{self.store.name}|{text}"
+
+    @property
+    def sharing_key(self) -> str:
+        """Variants with equal keys share one aggregation: same weights and aggregation order."""
+        return f"{self.weights_key}|{getattr(self.request, 'aggregation', 'series')}"
+
+
+def variant_requests(request: IndicatorRequest) -> list[tuple[str, IndicatorRequest]]:
+    """Each variant as a whole request: the request's fields, those the variant gives replaced."""
+    return [
+        (v.name, request.model_copy(update={**v.overrides(), "variants": None}))
+        for v in request.variants or []
+    ]
+
+
+def _variant_runs(
+    request: IndicatorRequest, store: Store, stores: Mapping[str, Store] | None
+) -> list[_VariantRun]:
+    """The variants of a request, each with the store of its dataset (else the request's)."""
+    served = dict(stores) if stores else {store.name: store}
+    runs = []
+    for index, (name, variant) in enumerate(variant_requests(request)):
+        chosen = store
+        if "dataset" in (request.variants or [])[index].model_fields_set and variant.dataset is not None:
+            try:
+                chosen = pick_store(served, variant.dataset)
+            except UnknownDatasetError as exc:
+                raise UnknownDatasetError(
+                    f"variant {name!r}: {exc.detail}",
+                    field="variants.dataset",
+                    pointer=f"/variants/{index}/dataset",
+                ) from None
+        runs.append(_VariantRun(index=index, name=name, request=variant, store=chosen))
+    return runs
+
+
+def _named(exc: Exception, run_: _VariantRun) -> Exception:
+    """A request error of one variant, its message naming the variant."""
+    from service.errors import RequestError
+
+    if isinstance(exc, RequestError) and not str(exc.detail).startswith("variant "):
+        exc.detail = f"variant {run_.name!r} (variants[{run_.index}]): {exc.detail}"
+        exc.args = (exc.detail,)
+    return exc
+
+
+def _resolve_variants(
+    runs: list[_VariantRun], parsed: ParsedFeatures, settings: Settings, mode: str
+) -> dict[str, tuple[Weights, list[dict[str, Any]]]]:
+    """Resolve every variant and weigh the features once per dataset and weighting (each variant named on error).
+
+    Returns the weights and skipped features per weights key.
+    """
+    weights: dict[str, tuple[Weights, list[dict[str, Any]]]] = {}
+    ids = parsed.ids
+    for run_ in runs:
+        try:
+            if run_.request.events is not None:
+                run_.events = resolve_events_for(run_.request, run_.store, ids)
+                years = run_.events.plan.years
+                _check_years((int(years[0]), int(years[-1])), settings)
+            else:
+                run_.resolved = resolve_request(
+                    run_.request, run_.store.dates, run_.store.calendar, run_.store.variables
+                )
+                span = run_.resolved.years
+                _check_years((span.start, span.end), settings)  # type: ignore[union-attr]
+            if run_.weights_key not in weights:
+                made = weights_for(parsed, run_.request, run_.store, settings, invalid=mode)
+                skipped = skipped_of(parsed, made)
+                skipped_ids = {e["feature_id"] for e in skipped}
+                if skipped and all(i in skipped_ids for i in ids):
+                    raise FeatureError(
+                        f"no feature can be computed on dataset {run_.store.name!r} with this weighting: all "
+                        f"{len(skipped)} are invalid or without data there (first: {skipped[0]['reason']})",
+                        pointer=skipped[0]["pointer"],
+                        feature_id=skipped[0]["feature_id"],
+                    )
+                weights[run_.weights_key] = (made, skipped)
+            run_.skipped = weights[run_.weights_key][1]
+            prepared = Prepared(parsed, weights[run_.weights_key][0], run_.skipped, mode)
+            if run_.events is not None:
+                _dry_run_events(run_.events, run_.store, prepared)
+            elif run_.resolved is not None:
+                _dry_run(run_.resolved, run_.store, prepared)
+        except Exception as exc:
+            raise _named(exc, run_) from None
+    return weights
+
+
+def prepare_variants(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    invalid_features: str = "fail",
+    stores: Mapping[str, Store] | None = None,
+) -> Prepared:
+    """The checks of every variant (a job's submission); the features' and the request's own weights."""
+    mode = request.invalid_features or invalid_features
+    runs = _variant_runs(request, store, stores)
+    parsed = without_shapes(parse_request_features(request, settings, invalid=mode))
+    weights = _resolve_variants(runs, parsed, settings, mode)
+    skipped = skipped_of(parsed, *(w for w, _ in weights.values()))
+    first = weights[runs[0].weights_key][0]
+    return Prepared(parsed, first, skipped, mode)
+
+
+def run_variants(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    progress: Progress | None = None,
+    cancelled: Cancelled | None = None,
+    batch_size: int = DEFAULT_BATCH_FEATURES,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
+    stores: Mapping[str, Store] | None = None,
+) -> RunResult:
+    """Every variant of the request in one table, with one provenance listing them all.
+
+    Variants on the same dataset, weighting and aggregation order share one aggregation: each feature batch
+    is aggregated once (the union of their variables, over the longest span any of them needs) and every
+    variant's table is computed from it. Variants on another dataset or weighting get their own. The long
+    layout gets a ``variant`` column (rows variant after variant); the wide one prefixes every column but the
+    keys with ``<variant>__``.
+    """
+    mode = request.invalid_features or invalid_features
+    runs = _variant_runs(request, store, stores)
+    parsed = (
+        prepared.parsed if prepared is not None else parse_request_features(request, settings, invalid=mode)
+    )
+    weights = _resolve_variants(runs, parsed, settings, mode)
+    groups: dict[str, list[_VariantRun]] = {}
+    for run_ in runs:
+        groups.setdefault(run_.sharing_key, []).append(run_)
+    work = []
+    for members in groups.values():
+        group_weights = weights[members[0].weights_key][0]
+        work.append((members, group_weights, _variant_batches(members, group_weights, batch_size)))
+    total = int(sum(rows.size for _, _, batches in work for rows in batches))
+    done = 0
+    if progress is not None:
+        progress(0, total)
+    properties = [f.properties for f in parsed.features]
+    for members, group_weights, batches in work:
+        for rows in batches:
+            if cancelled is not None and cancelled():
+                raise RunCancelledError(f"cancelled after {done} of {total} feature computations")
+            _variant_batch(members, group_weights, rows, properties, settings)
+            done += rows.size
+            if progress is not None:
+                progress(done, total)
+    return _combine_variants(request, runs, parsed, store)
+
+
+def _variant_batches(members: list[_VariantRun], weights: Weights, batch_size: int) -> list[np.ndarray]:
+    """The feature batches of a group: all features, or only those with events when the variants have events."""
+    if members[0].events is not None:  # variants cannot add or drop events: all of them have events, or none
+        return _event_batches(members[0].events.plan.feature_rows, weights, batch_size)
+    return feature_batches(weights, batch_size)
+
+
+def _variant_batch(
+    members: list[_VariantRun],
+    weights: Weights,
+    rows: np.ndarray,
+    properties: list[dict | None],
+    settings: Settings,
+) -> None:
+    """Aggregate one feature batch once, then compute every member variant's table from it."""
+    store = members[0].store
+    used = {v for m in members for v in needed_variables(m.final)}
+    variables = tuple(v for v in VARIABLES if v in used)
+    if members[0].events is not None:
+        span = slice(0, int(store.dates.year.size))
+    else:
+        last_year = max(
+            max(m.final.years.end, getattr(m.final.baseline, "end", m.final.years.end))  # type: ignore[union-attr]
+            for m in members
+        )
+        span = time_span(store, last_year)
+    batch, daily = _aggregate_batch(store, weights, rows, variables, span, settings)
+    for m in members:
+        if m.events is not None:
+            made = _event_table(m.events, daily, batch, rows, len(weights.feature_ids))
+            if made is None:
+                continue
+            table, order = made
+            m.orders.append(order)
+        else:
+            table = compute_table(daily, list(batch.feature_ids), [properties[i] for i in rows], m.final)
+        m.frames.append(_feature_columns(table.frame, weights, rows))
+        m.warnings.extend(table.warnings)
+
+
+def _variant_frame(run_: _VariantRun, parsed: ParsedFeatures) -> tuple[pd.DataFrame, list[dict[str, Any]]]:
+    """One variant's rows in request order and its warnings, each reason naming the variant."""
+    ids = [f.id for f in parsed.features]
+    frame = pd.concat(run_.frames, ignore_index=True)
+    if run_.events is not None:
+        frame = frame.iloc[np.argsort(np.concatenate(run_.orders), kind="stable")].reset_index(drop=True)
+    else:
+        frame = _in_feature_order(frame, ids)
+    warnings = _warnings_in_order(run_.warnings, ids)
+    frame, warnings = _without_skipped(frame, warnings, run_.skipped)
+    later = [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in parsed.repaired
+    ] + skipped_warnings(run_.skipped)
+    frame = add_warning_notes(frame, later)
+    return frame, [{**w, "reason": f"variant {run_.name!r}: {w['reason']}"} for w in warnings + later]
+
+
+def _is_feature_column(name: str) -> bool:
+    """A column _feature_columns adds (coverage, cells, area_km2, or one of their per-grid forms)."""
+    return name in FEATURE_COLUMNS or any(name.startswith(f"{c}_") for c in ("coverage", "cells"))
+
+
+def _combine_variants(
+    request: IndicatorRequest, runs: list[_VariantRun], parsed: ParsedFeatures, store: Store
+) -> RunResult:
+    """One table and one provenance for every variant."""
+    parts = [_variant_frame(r, parsed) for r in runs]
+    keys = ["event_id", "feature_id", "date"] if request.events is not None else ["feature_id", "year"]
+    warnings = [w for _, part_warnings in parts for w in part_warnings]
+    if request.layout == "long":
+        frames = []
+        names = [r.name for r in runs]
+        for run_, (frame, _) in zip(runs, parts, strict=True):
+            frame = frame.copy()
+            frame.insert(len(keys), "variant", pd.Categorical([run_.name] * len(frame), categories=names))
+            frames.append(frame)
+        frame = pd.concat(frames, ignore_index=True)
+    else:
+        frame = _wide_variants(runs, [p[0] for p in parts], keys, parsed, request.events is not None)
+    return RunResult(
+        frame=frame, provenance=_variants_provenance(request, runs, parsed, store), warnings=warnings
+    )
+
+
+def _wide_variants(
+    runs: list[_VariantRun], frames: list[pd.DataFrame], keys: list[str], parsed: ParsedFeatures, events: bool
+) -> pd.DataFrame:
+    """The wide table: the keys, each variant's columns prefixed '<variant>__', then the row's notes.
+
+    Feature columns (coverage, cells, area_km2) come once, unprefixed, when every variant has the same
+    dataset and weighting, else once per variant. Rows: every key any variant has, in request order.
+    """
+    indexed = [f.set_index(keys) for f in frames]
+    index = indexed[0].index
+    for other in indexed[1:]:
+        index = index.union(other.index, sort=False)
+    if not events:
+        position = {fid: i for i, fid in enumerate(parsed.ids)}
+        order = np.lexsort(
+            (
+                index.get_level_values("year").to_numpy(),
+                index.get_level_values("feature_id").map(position).to_numpy(),
+            )
+        )
+        index = index[order]
+    shared = len({r.weights_key for r in runs}) == 1
+    pieces = []
+    for run_, frame in zip(runs, indexed, strict=True):
+        own = [c for c in frame.columns if not (shared and _is_feature_column(c))]
+        pieces.append(frame.reindex(index)[own].add_prefix(f"{run_.name}__"))
+    if shared:  # the same values in every variant; a row one variant lacks takes another's
+        feature_part = None
+        for frame in indexed:
+            part = frame.reindex(index)[[c for c in frame.columns if _is_feature_column(c)]]
+            feature_part = part if feature_part is None else feature_part.combine_first(part)
+        pieces.append(feature_part)
+    combined = pd.concat(pieces, axis=1).reset_index()
+    notes = [combined[f"{r.name}__notes"].fillna("").astype(str).tolist() for r in runs]
+    combined["notes"] = pd.array(
+        [" ".join(sorted(set(" ".join(texts).split()))) for texts in zip(*notes, strict=True)], dtype="string"
+    )
+    return combined
+
+
+def _variants_provenance(
+    request: IndicatorRequest, runs: list[_VariantRun], parsed: ParsedFeatures, store: Store
+) -> dict[str, Any]:
+    """The request's provenance with every variant: its dataset, fingerprint, request hash and request."""
+    entries = []
+    for run_ in runs:
+        document = provenance(run_.final, run_.store, parsed, run_.skipped)
+        own = {k: v for k, v in document["request"].items() if k not in ("features", "events")}
+        own["features"] = {"skipped": document["request"]["features"]["skipped"]}
+        entries.append(
+            {
+                "name": run_.name,
+                "dataset": run_.store.name,
+                "fingerprint": run_.store.fingerprint,
+                "request_hash": document["request_hash"],
+                "request": own,
+            }
+        )
+    base = provenance(request, store, parsed, skipped_of(*[_Skipped(r.skipped) for r in runs]))
+    base["request"] = _event_summary(base["request"], request)
+    combined = json.dumps([[e["name"], e["request_hash"]] for e in entries], separators=(",", ":"))
+    base["request_hash"] = "sha256:" + hashlib.sha256(combined.encode("utf-8")).hexdigest()
+    base["variants"] = entries
+    return base
+
+
+@dataclass
+class _Skipped:
+    """A holder of skipped entries, as skipped_of reads them."""
+
+    skipped: list[dict[str, Any]]
 
 
 def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFrame:

@@ -401,6 +401,163 @@ Weighting = Annotated[
 ]
 
 
+# The forms of a baseline and of one requested indicator, shared by the request and its variants.
+BaselineSpec = Annotated[
+    Annotated[FixedBaseline, Tag("Fixed")] | Annotated[TrailingBaseline, Tag("Trailing")],
+    Discriminator(
+        _by_keys(trailing="Trailing", start="Fixed", end="Fixed"),
+        custom_error_type="baseline",
+        custom_error_message='baseline must be {"start": YEAR, "end": YEAR} or {"trailing": N}',
+    ),
+]
+IndicatorChoice = Annotated[
+    Annotated[Text, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
+    Discriminator(
+        _by_keys(name="Spec"),
+        custom_error_type="indicator",
+        custom_error_message='an indicator is a name or {"name": NAME, PARAMETER: VALUE, ...}',
+    ),
+]
+
+
+# --- events, windows and variants ----------------------------------------------------------------------------
+
+# Window and variant names prefix output columns (`<name>__<column>`): short, lower case, starting with a
+# letter so that every output format (Stata and R names included) can carry the prefixed column.
+_PREFIX_NAME = re.compile(r"^[a-z][a-z0-9_]{0,11}$")
+_EVENT_DATE = re.compile(r"^([0-9]{4})-([0-9]{2})-([0-9]{2})$")
+MAX_EVENTS = 1_000_000
+
+
+def _prefix_name(kind: str, name: str) -> str:
+    """A window or variant name: at most 12 of [a-z0-9_], starting with a letter, no '__' (the separator)."""
+    if not _PREFIX_NAME.match(name) or "__" in name:
+        raise ValueError(
+            f"{kind} name {name!r} must be 1 to 12 characters of a-z, 0-9 and '_', start with a letter and "
+            f"hold no '__' (it prefixes columns as {name or 'NAME'}__COLUMN), e.g. 'prior_year'"
+        )
+    return name
+
+
+def _field_error(model: str, loc: tuple[str | int, ...], message: str, value: Any = None) -> ValidationError:
+    """A validation error located at ``loc`` (so the problem document points at that field)."""
+    return ValidationError.from_exception_data(
+        model,
+        [InitErrorDetails(type=PydanticCustomError("value_error", message), loc=loc, input=value)],
+    )
+
+
+class Event(_Model):
+    """One interview, birth or other dated event of a community; its windows are anchored on its date."""
+
+    id: str = Field(min_length=1, max_length=MAX_TEXT, description="The event's id (unique in the request).")
+    feature_id: str = Field(
+        min_length=1, max_length=MAX_TEXT, description="The id of the community (feature) it belongs to."
+    )
+    date: str = Field(
+        description="'YYYY-MM-DD' in the dataset's calendar (so '2004-02-30' is a date of a 360_day dataset)."
+    )
+
+    @field_validator("id", "feature_id", mode="before")
+    @classmethod
+    def _whole_numbers_as_text(cls, value: object) -> object:
+        """Ids read from a table may be whole numbers: they become text (ids are always text)."""
+        if isinstance(value, int) and not isinstance(value, bool):
+            return str(value)
+        return value
+
+    @field_validator("date")
+    @classmethod
+    def _date(cls, value: str) -> str:
+        """'YYYY-MM-DD' with a month 1..12 and a day 1..31 (whether the day exists is the calendar's call)."""
+        match = _EVENT_DATE.match(value)
+        if not match or not 1 <= int(match[2]) <= 12 or not 1 <= int(match[3]) <= 31 or int(match[1]) < 1:
+            raise ValueError(f"{value!r} is not a date written 'YYYY-MM-DD', e.g. '2004-03-14'")
+        return value
+
+
+class WindowOffset(_Model):
+    """A day relative to the event's date: whole days, or whole calendar months (give exactly one)."""
+
+    days: StrictInt | None = Field(default=None, ge=-3660, le=3660, description="Days after (negative: before).")
+    months: StrictInt | None = Field(
+        default=None,
+        ge=-120,
+        le=120,
+        description="Calendar months after (negative: before): the same day of that month; where the month "
+        "is shorter, a start moves to the first day of the next month and an end to the month's last day "
+        "(29 February - 12 months starts on 1 March).",
+    )
+
+    @model_validator(mode="after")
+    def _one_unit(self) -> WindowOffset:
+        """Exactly one of days and months."""
+        if (self.days is None) == (self.months is None):
+            raise ValueError('give exactly one of "days" and "months", e.g. {"months": -12} or {"days": -1}')
+        return self
+
+    def text(self) -> str:
+        """'-12 months', '-1 days'."""
+        return f"{self.months} months" if self.months is not None else f"{self.days} days"
+
+
+class EventWindow(_Model):
+    """A named exposure window from ``start`` to ``end`` (both inclusive) relative to each event's date."""
+
+    name: str = Field(description="At most 12 of a-z, 0-9, '_'; prefixes the window's columns.")
+    start: WindowOffset
+    end: WindowOffset
+
+    @field_validator("name")
+    @classmethod
+    def _name(cls, name: str) -> str:
+        """A column prefix."""
+        return _prefix_name("window", name)
+
+    @model_validator(mode="after")
+    def _order_and_length(self) -> EventWindow:
+        """With both bounds in one unit: start not after end, and at most one year from start to end."""
+        for unit, most, what in (("days", 365, "366 days"), ("months", 12, "12 months")):
+            first, last = getattr(self.start, unit), getattr(self.end, unit)
+            if first is None or last is None:
+                continue
+            if first > last:
+                raise ValueError(
+                    f"window {self.name!r} starts ({first} {unit}) after it ends ({last} {unit}); swap them"
+                )
+            if last - first >= most + (unit == "days"):
+                raise ValueError(
+                    f"window {self.name!r} from {first} to {last} {unit} is longer than one year; a window "
+                    f"spans at most one year (e.g. months -12 to days -1), so that the same window exists once "
+                    f"in every year; split it into windows of up to {what}"
+                )
+        return self
+
+
+class Variant(_Model):
+    """A named specification: the fields it gives replace the request's own, the rest are the request's."""
+
+    name: str = Field(description="At most 12 of a-z, 0-9, '_'; the `variant` column or the column prefix.")
+    dataset: Text | None = Field(default=None, description="Another served dataset (product).")
+    baseline: BaselineSpec | None = None
+    season: Season | None = None
+    classes: Classes | None = None
+    indicators: list[IndicatorChoice] | None = Field(default=None, min_length=1)
+    weighting: Weighting | None = None
+    partial_seasons: Literal["scale", "null", "as_is"] | None = None
+    max_missing_share: Number | None = Field(default=None, ge=0.0, le=1.0)
+
+    @field_validator("name")
+    @classmethod
+    def _name(cls, name: str) -> str:
+        """A column prefix."""
+        return _prefix_name("variant", name)
+
+    def overrides(self) -> dict[str, Any]:
+        """The fields this variant gives (name aside), as a request would hold them."""
+        return {k: getattr(self, k) for k in self.model_fields_set if k != "name"}
+
+
 class _FeatureRequest(_Model):
     """Fields shared by every request that sends communities."""
 
@@ -468,34 +625,12 @@ class IndicatorRequest(_FeatureRequest):
             raise ValueError(season_message(season))
         return season
 
-    baseline: (
-        Annotated[
-            Annotated[FixedBaseline, Tag("Fixed")] | Annotated[TrailingBaseline, Tag("Trailing")],
-            Discriminator(
-                _by_keys(trailing="Trailing", start="Fixed", end="Fixed"),
-                custom_error_type="baseline",
-                custom_error_message='baseline must be {"start": YEAR, "end": YEAR} or {"trailing": N}',
-            ),
-        ]
-        | None
-    ) = Field(
+    baseline: BaselineSpec | None = Field(
         default=None,
         description="Default: the first 30 season-years of data (all of them when the data hold fewer, at "
         "least 3): the 30 years WMO-No. 1090 asks for to fit SPI, and the length of a WMO climate normal.",
     )
-    indicators: (
-        list[
-            Annotated[
-                Annotated[Text, Tag("Name")] | Annotated[IndicatorSpec, Tag("Spec")],
-                Discriminator(
-                    _by_keys(name="Spec"),
-                    custom_error_type="indicator",
-                    custom_error_message='an indicator is a name or {"name": NAME, PARAMETER: VALUE, ...}',
-                ),
-            ]
-        ]
-        | None
-    ) = Field(default=None, description="Default: the default set.")
+    indicators: list[IndicatorChoice] | None = Field(default=None, description="Default: the default set.")
     classes: Classes = Field(default_factory=Classes)
     lags: list[StrictInt] = Field(default_factory=lambda: [0], min_length=1, max_length=50)
     pairs: list[tuple[Text, Text]] = Field(default_factory=list, max_length=20)
@@ -514,6 +649,34 @@ class IndicatorRequest(_FeatureRequest):
         "'scale' multiplies them by expected days / days present, 'null' leaves them null, 'as_is' keeps "
         "the sum over the days present. Means, extremes and run lengths always use the days present; "
         "the row's notes say partial_season.",
+    )
+    events: list[Event] | None = Field(
+        default=None,
+        min_length=1,
+        max_length=MAX_EVENTS,
+        description="Dated events (interviews, births) of the communities: with events the result has one row "
+        "per event (wide) or per (event, window, indicator) (long) instead of season-years; 'years' and "
+        "'season' are then refused. Needs 'windows'.",
+    )
+    windows: list[EventWindow] | None = Field(
+        default=None,
+        min_length=1,
+        max_length=20,
+        description="Exposure windows relative to each event's date; each is compared with the same calendar "
+        "window in the baseline years (docs/methods.md, 'Event windows').",
+    )
+    variants: list[Variant] | None = Field(
+        default=None,
+        min_length=1,
+        max_length=20,
+        description="Named specifications computed in one request: each overrides some of dataset, baseline, "
+        "season, classes, indicators, weighting, partial_seasons, max_missing_share. The result holds every "
+        "variant (a 'variant' column in the long layout, '<variant>__' column prefixes in the wide one).",
+    )
+    lag_values: StrictBool = Field(
+        default=False,
+        description="Also give each indicator's value at every lag k > 0, as <column>_lag<k> "
+        "(value_lag<k> in the long layout).",
     )
 
     @field_validator("lags")
@@ -553,6 +716,59 @@ class IndicatorRequest(_FeatureRequest):
             raise ValidationError.from_exception_data(type(self).__name__, problems)
         return self
 
+    @model_validator(mode="after")
+    def _events_windows_variants(self) -> IndicatorRequest:
+        """Events need windows and exclude years and season; names and event ids are unique."""
+        given = self.model_fields_set
+        if self.events is not None:
+            if self.windows is None:
+                raise _field_error(
+                    "IndicatorRequest",
+                    ("windows",),
+                    'events need "windows", e.g. [{"name": "prior_year", "start": {"months": -12}, '
+                    '"end": {"days": -1}}]',
+                )
+            for name in ("years", "season"):
+                if name in given:
+                    raise _field_error(
+                        "IndicatorRequest",
+                        (name,),
+                        f"'{name}' cannot be given with 'events': each event's windows replace season-years; "
+                        f"drop '{name}'",
+                        getattr(self, name) if isinstance(getattr(self, name), str) else None,
+                    )
+            seen: dict[str, int] = {}
+            for i, event in enumerate(self.events):
+                if event.id in seen:
+                    raise _field_error(
+                        "IndicatorRequest",
+                        ("events", i, "id"),
+                        f"event id {event.id!r} is used by events {seen[event.id]} and {i}; event ids must be "
+                        f"unique (the result is merged onto records by event id)",
+                        event.id,
+                    )
+                seen[event.id] = i
+        elif self.windows is not None:
+            raise _field_error(
+                "IndicatorRequest", ("windows",), "'windows' need 'events' to anchor them on; add events"
+            )
+        for field, items in (("windows", self.windows), ("variants", self.variants)):
+            names = [item.name for item in items or []]
+            dupes = sorted({n for n in names if names.count(n) > 1})
+            if dupes:
+                raise _field_error(
+                    "IndicatorRequest", (field,), f"{field[:-1]} names {dupes!r} are used more than once"
+                )
+        for i, variant in enumerate(self.variants or []):
+            if self.events is not None and "season" in variant.model_fields_set:
+                raise _field_error(
+                    "IndicatorRequest",
+                    ("variants", i, "season"),
+                    f"variant {variant.name!r} gives a season, but the request has events (whose windows "
+                    f"replace seasons); drop its 'season'",
+                )
+        return self
+
 
 class SeriesRequest(_FeatureRequest):
     """A request for the daily area-weighted series themselves: POST /v1/series."""
@@ -574,6 +790,11 @@ class Provenance(BaseModel):
     software: str
     request_hash: str
     request: dict[str, Any]
+    variants: list[dict[str, Any]] | None = Field(
+        default=None,
+        description="With variants: each variant's name, dataset, fingerprint, request hash and resolved "
+        "request (features and events as in the request).",
+    )
 
 
 class ResultWarning(BaseModel):

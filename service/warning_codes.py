@@ -36,6 +36,9 @@ WARNING_CODES: dict[str, str] = {
     "zero_rain_spi": "a season without precipitation: SPI is the published Phi^-1(q), q the baseline's share "
     "of dry seasons, which is near normal or positive when dry seasons are common",
     "spei_upper_bound": "the SPEI fit has no positive skew, so the generalized logistic used is bounded above",
+    # event windows
+    "window_outside_data": "part of the event's window lies outside the data, and this indicator (computed on "
+    "whole windows: percentile indices, r95ptot) needs all of it: its value is null",
     # sequences and spells
     "spell_unknown": "a season in the spell's window has a null class or z: the spell count is null",
     "spell_before_baseline": "the spell's window reaches seasons before the first one with the whole "

@@ -7,7 +7,8 @@ Columns of the wide layout, in this order (the same request gives the same colum
   ``<col>`` (float64, the indicator's unit), ``<col>_z`` (float64), ``<col>_class`` (Int64),
   ``<col>_label`` (ordered categorical, our plain words), ``<col>_pct_normal`` (float64 %, precipitation
   amounts only), ``<col>_category`` (ordered categorical, the WMO SPI category; SPI and SPEI only), then for
-  each lag k > 0 ``<col>_z_lag<k>`` (float64) and ``<col>_class_lag<k>`` (Int64), then for each sequence
+  each lag k > 0 ``<col>_z_lag<k>`` (float64), ``<col>_class_lag<k>`` (Int64) and, with ``lag_values``,
+  ``<col>_lag<k>`` (float64, the value of season t - k), then for each sequence
   (a, b) ``<col>_seq<a>_<b>`` (categorical "<label at t-a> after <label at t-b>");
 - for each pair (a, b): ``<a>_and_<b>`` (categorical, e.g. "drier and much warmer");
 - for each spell: ``<name>_run`` and ``<name>_count`` (Int64);
@@ -20,7 +21,8 @@ The same indicator may be requested with different parameters; the same paramete
 Pairs and spells name indicators by column name, or by plain name when that indicator is requested once.
 
 The long layout has one row per (feature_id, year, indicator) with columns feature_id, year, indicator,
-value, z, class, label, pct_normal, category, z_lag<k>, class_lag<k>, seq<a>_<b>, then the pair and spell
+value, z, class, label, pct_normal, category, z_lag<k>, class_lag<k>, value_lag<k> (with lag_values),
+seq<a>_<b>, then the pair and spell
 columns and season_complete of that (feature_id, year), repeated on each of its indicator rows.
 """
 
@@ -413,6 +415,8 @@ def indicator_columns(p: PlannedIndicator, request: IndicatorRequest) -> list[st
     for k in request.lags:
         if k > 0:
             cols += [f"{c}_z_lag{k}", f"{c}_class_lag{k}"]
+            if request.lag_values:
+                cols.append(f"{c}_lag{k}")
     cols += [f"{c}_{_sequence_suffix(a, b)}" for a, b in request.sequences]
     return cols
 
@@ -752,6 +756,8 @@ def _column_kinds(planned: Sequence[PlannedIndicator], request: IndicatorRequest
             if k > 0:
                 kinds[f"{c}_z_lag{k}"] = _ColumnKind(_FLOAT)
                 kinds[f"{c}_class_lag{k}"] = _ColumnKind(_INT)
+                if request.lag_values:
+                    kinds[f"{c}_lag{k}"] = _ColumnKind(_FLOAT)
         for a, b in request.sequences:
             kinds[f"{c}_{_sequence_suffix(a, b)}"] = _ColumnKind(
                 _CATEGORY, tuple(classes.joint_categories(labels[c], labels[c], "after"))
@@ -813,6 +819,8 @@ def derive_columns(
             if k > 0:
                 out[f"{c}_z_lag{k}"] = sequences.lag(block.z, k)[:, out_cols]
                 out[f"{c}_class_lag{k}"] = sequences.lag(block.cls, k)[:, out_cols]
+                if request.lag_values:
+                    out[f"{c}_lag{k}"] = sequences.lag(block.value, k)[:, out_cols]
         for a, b in request.sequences:
             codes = classes.joint_codes(
                 sequences.lag_codes(block.codes, a), sequences.lag_codes(block.codes, b), n_class
@@ -1196,6 +1204,8 @@ def _long_frame(
         if k > 0:
             data[f"z_lag{k}"] = stack(f"_z_lag{k}").ravel()
             data[f"class_lag{k}"] = _pandas_column(stack(f"_class_lag{k}"), _ColumnKind(_INT))
+            if request.lag_values:
+                data[f"value_lag{k}"] = stack(f"_lag{k}").ravel()
     for a, b in request.sequences:
         data[_sequence_suffix(a, b)] = stack_category(f"_{_sequence_suffix(a, b)}")
     shared = [_pair_column(a, b) for a, b in request.pairs]
