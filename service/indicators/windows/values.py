@@ -105,8 +105,13 @@ def window_values(
     planned: Sequence[PlannedIndicator],
     request: IndicatorRequest,
     groups: Sequence[BaselineGroup],
+    *,
+    use_kernels: bool = True,
 ) -> RawValues:
     """Each planned indicator for every key over the plan's window-years, as the season table's RawValues.
+
+    ``use_kernels=False`` computes every indicator on season cubes of the windows (the reference the
+    kernels are tested against).
 
     Values of windows incomplete for the indicator's variables are null (incomplete_season); partial ones
     follow request.partial_seasons for sums, counts and the totals SPI/SPEI standardize (partial_season);
@@ -123,8 +128,8 @@ def window_values(
     expected = plan.expected_days[keys.range]
     first = np.clip(first, 0, n_days)  # a window without a day of the record gets last < first below
     last = np.clip(last, -1, n_days - 1)
-    fast = [p for p in planned if has_kernel(p)]
-    slow = [p for p in planned if not has_kernel(p)]
+    fast = [p for p in planned if use_kernels and has_kernel(p)]
+    slow = [p for p in planned if not (use_kernels and has_kernel(p))]
     variable_sets = {seasons.variable_set(p.indicator.variables) for p in planned}
     union = seasons.variable_set({v for p in planned for v in p.indicator.variables})
     variable_sets.add(union)
