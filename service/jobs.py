@@ -405,6 +405,7 @@ def run_with_pipeline(
         cancelled=cancelled,
         invalid_features=JOB_INVALID_FEATURES,
         prepared=prepared,
+        stores=registry,  # variants may name other datasets
     )
     return encode.encode(result, fmt)
 
@@ -866,4 +867,4 @@ def check_job_request(request: IndicatorRequest, registry: StoreRegistry, settin
     from service import pipeline
 
     store = registry.get_dataset(request.dataset)
-    return pipeline.prepare(request, store, settings, invalid_features=JOB_INVALID_FEATURES)
+    return pipeline.prepare(request, store, settings, invalid_features=JOB_INVALID_FEATURES, stores=registry)

@@ -96,5 +96,6 @@ def compute_indicators(
     fmt = encode.format_from(request.headers.get("accept"), format)
     check_on_demand(body, settings)
     store = registry.get_dataset(body.dataset)
-    content, media_type, headers = encode.encode(pipeline.run(body, store, settings), fmt)
+    result = pipeline.run(body, store, settings, stores=registry)  # variants may name other datasets
+    content, media_type, headers = encode.encode(result, fmt)
     return Response(content, media_type=media_type, headers=headers)

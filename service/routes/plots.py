@@ -56,6 +56,18 @@ def _one_feature(body: IndicatorRequest, feature_id: str | None) -> tuple[Indica
     return body.model_copy(update={"features": collection}), feature_id
 
 
+def _seasons_only(body: IndicatorRequest) -> None:
+    """Pictures draw season-years of one specification: events and variants go to POST /v1/indicators."""
+    for field in ("events", "variants"):
+        if getattr(body, field):
+            raise RequestError(
+                f"pictures draw season-years of one specification; a request with '{field}' is not drawn: "
+                "drop it here, or send it to POST /v1/indicators for the table",
+                field=field,
+                pointer=f"/{field}",
+            )
+
+
 def _with_plotted(body: IndicatorRequest, *drawn: str) -> IndicatorRequest:
     """The request in the wide layout, with the drawn indicators added to those it names.
 
@@ -99,6 +111,7 @@ def plot_series(
     from service.plots import community_name, series_plot
 
     check_on_demand(body, settings)
+    _seasons_only(body)
     one, wanted = _one_feature(body, feature_id)
     store = registry.get_dataset(one.dataset)
     result = pipeline.run(_with_plotted(one, precipitation, temperature), store, settings)
@@ -172,6 +185,7 @@ def plot_map(
     from service.plots import map_plot, map_title
 
     check_on_demand(body, settings)
+    _seasons_only(body)
     mappable(indicator)
     store = registry.get_dataset(body.dataset)
     # The table's own checks of the whole request (indicators, parameters, pairs, sequences, spells, years,
