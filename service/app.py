@@ -248,14 +248,11 @@ def install_error_handlers(app: FastAPI) -> None:
         }
         return ProblemResponse(doc, status_code=status, headers=getattr(exc, "headers", None))
 
-    async def unexpected(request: Request, exc: Exception) -> JSONResponse:
-        log.exception("unexpected failure on %s %s", request.method, request.url.path, exc_info=exc)
-        return problem_response(exc, request)
-
     app.add_exception_handler(WxshockError, wxshock_error)
     app.add_exception_handler(RequestValidationError, request_invalid)
     app.add_exception_handler(StarletteHTTPException, http_error)
-    app.add_exception_handler(Exception, unexpected)
+    # Anything else is answered by UnexpectedErrors (below), not by an Exception handler: Starlette re-raises
+    # after such a handler, and uvicorn then drops the client's keep-alive connection.
 
 
 _HTTP_PROBLEMS = {
@@ -265,6 +262,39 @@ _HTTP_PROBLEMS = {
     413: ("limit-exceeded", "Limit exceeded"),
     415: ("unsupported-media-type", "Unsupported media type"),
 }
+
+
+class UnexpectedErrors:
+    """ASGI middleware answering an unexpected failure with a 500 problem document, logged, not re-raised.
+
+    A failure that Starlette's outermost error middleware sees is re-raised to the server, which then closes
+    the connection; answered here, the client keeps its keep-alive connection. A failure after the response
+    has started (a streamed body) cannot be answered and is re-raised.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def tracking_send(message: Message) -> None:
+            nonlocal started
+            if message["type"] == "http.response.start":
+                started = True
+            await send(message)
+
+        try:
+            await self.app(scope, receive, tracking_send)
+        except Exception as exc:
+            log.exception("unexpected failure on %s %s", scope.get("method"), scope.get("path"), exc_info=exc)
+            if started:
+                raise
+            status, doc = problem_for(exc, instance=scope.get("path"))
+            await ProblemResponse(doc, status_code=status)(scope, receive, send)
 
 
 class BodySizeLimit:
@@ -394,6 +424,7 @@ def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
     install_error_handlers(app)
     for router in routers():
         app.include_router(router)
+    app.add_middleware(UnexpectedErrors)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     if settings.cors_origins:
         app.add_middleware(

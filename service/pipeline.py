@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
@@ -1026,8 +1026,27 @@ def _warnings_in_order(warnings: list[dict[str, Any]], feature_ids: list[str]) -
     return sorted(unique.values(), key=key)
 
 
-def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunResult:
-    """The daily area-weighted series of every feature: one row per (feature_id, date)."""
+@dataclass
+class SeriesTable:
+    """A daily series table made piece by piece: its columns, provenance and warnings, then its frames."""
+
+    columns: list[str]
+    provenance: dict[str, Any]
+    warnings: list[dict[str, Any]]
+    frames: Iterator[pd.DataFrame]
+
+
+# Rows of the series made at a time (features x days); the encoders cut them finer.
+SERIES_PIECE_ROWS = 200_000
+
+
+def series_table(request: SeriesRequest, store: Store, settings: Settings) -> SeriesTable:
+    """The daily area-weighted series of every feature, one row per (feature_id, date), made lazily.
+
+    Everything that can fail for the request (years, features, weights) and the aggregation itself run
+    here, before the first row; the frames then only build rows from the computed (feature, day) arrays,
+    a few features at a time, so that memory stays flat in features x days x id length.
+    """
     dates = store.dates
     first, last = int(dates.year[0]), int(dates.year[-1])
     years = (request.years.start, request.years.end) if request.years else (first, last)
@@ -1043,22 +1062,54 @@ def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunR
     span = slice(start, stop)
     daily_lazy = aggregate(store, weights, time=span).drop_vars("tmean", errors="ignore")  # made below
     (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
-    labels = [
-        f"{y:04d}-{m:02d}-{d:02d}"
-        for y, m, d in zip(dates.year[span], dates.month[span], dates.day[span], strict=True)
-    ]
-    n_feature, n_time = len(weights.feature_ids), len(labels)
-    columns: dict[str, Any] = {
-        "feature_id": np.repeat(np.asarray(weights.feature_ids, dtype=object), n_time),
-        "date": np.tile(np.asarray(labels, dtype=object), n_feature),
-    }
     # the same snapped daily means the indicators use (daily_values), so sums of the series match the table
-    snapped = {v: daily_values(daily_ds, store, v) for v in ("tmax", "tmin", "prcp") if v in daily_ds}
-    for variable in request.variables:
-        values = (snapped["tmax"] + snapped["tmin"]) / 2 if variable == "tmean" else snapped[variable]
-        columns[variable] = np.asarray(values, dtype=np.float64).reshape(-1)
-    frame = pd.DataFrame(columns)
-    return RunResult(frame=frame, provenance=provenance(request, store, parsed), warnings=[])
+    values = {v: daily_values(daily_ds, store, v) for v in ("tmax", "tmin", "prcp") if v in daily_ds}
+    labels = np.asarray(
+        [
+            f"{y:04d}-{m:02d}-{d:02d}"
+            for y, m, d in zip(dates.year[span], dates.month[span], dates.day[span], strict=True)
+        ],
+        dtype=object,
+    )
+    feature_ids = list(weights.feature_ids)
+    variables = list(request.variables)
+
+    def frames() -> Iterator[pd.DataFrame]:
+        step = max(1, SERIES_PIECE_ROWS // max(len(labels), 1))
+        for first_row in range(0, len(feature_ids), step):
+            rows = slice(first_row, first_row + step)
+            ids = np.asarray(feature_ids[rows], dtype=object)
+            columns: dict[str, Any] = {
+                "feature_id": np.repeat(ids, len(labels)),  # references to one str per feature, not copies
+                "date": np.tile(labels, len(ids)),
+            }
+            for variable in variables:
+                block = (
+                    (values["tmax"][rows] + values["tmin"][rows]) / 2
+                    if variable == "tmean"
+                    else values[variable][rows]
+                )
+                columns[variable] = block.reshape(-1)
+            yield pd.DataFrame(columns)
+
+    return SeriesTable(
+        columns=["feature_id", "date", *variables],
+        provenance=provenance(request, store, parsed),
+        warnings=[],
+        frames=frames(),
+    )
+
+
+def run_series(request: SeriesRequest, store: Store, settings: Settings) -> RunResult:
+    """The daily area-weighted series of every feature as one table (see series_table for large ones)."""
+    return series_result(series_table(request, store, settings))
+
+
+def series_result(table: SeriesTable) -> RunResult:
+    """A series table's frames joined into one RunResult."""
+    frames = list(table.frames)
+    frame = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=table.columns)
+    return RunResult(frame=frame, provenance=table.provenance, warnings=table.warnings)
 
 
 # --- the CLI's local run --------------------------------------------------------------------------------------

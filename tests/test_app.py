@@ -6,6 +6,7 @@ from __future__ import annotations
 import copy
 import hashlib
 import json
+import os
 import statistics
 import threading
 import time
@@ -212,20 +213,59 @@ def test_a_job_with_more_features_than_the_job_limit_is_refused(
 # --- bearer tokens and CORS -----------------------------------------------------------------------------------
 
 
+DIGEST = hashlib.sha256(b"file-token-0002-xy").hexdigest()
+
+
 @pytest.mark.parametrize(
     ("content", "message"),
     [
         ("# tokens\nnot-a-digest\n", "token file line 2 is not a SHA-256 hex digest"),
-        (hashlib.sha256(b"x").hexdigest()[:60] + "\n", "token file line 1 is not a SHA-256 hex digest"),
+        (DIGEST[:60] + "\n", "token file line 1 is not a SHA-256 hex digest"),
+        (
+            f"{DIGEST} alice superuser\n",
+            "token file line 1: after the digest and the owner only the word 'admin'",
+        ),
+        (f"{DIGEST} alice admin extra\n", "only the word 'admin' may follow"),
+        (f"{DIGEST} al/ice\n", "owner name 'al/ice' is not allowed"),
+        (f"{DIGEST} token-12345678\n", "owner name 'token-12345678' is not allowed"),
+        (f"{DIGEST} alice\n{DIGEST} bob\n", "token file line 2: this token is configured twice"),
     ],
 )
-def test_a_token_file_that_is_not_digests_stops_the_start(tmp_path: Path, content: str, message: str) -> None:
+def test_a_token_file_that_is_not_well_formed_stops_the_start(
+    tmp_path: Path, content: str, message: str
+) -> None:
     from service.errors import WxshockError
 
     token_file = tmp_path / "tokens"
     token_file.write_text(content, encoding="utf-8")
     with pytest.raises(WxshockError, match=message):
         create_app(Settings(data_dir=tmp_path, token_file=token_file))
+
+
+def test_a_token_in_both_the_settings_and_the_file_stops_the_start(tmp_path: Path) -> None:
+    from service.errors import WxshockError
+
+    token_file = tmp_path / "tokens"
+    token_file.write_text(f"{DIGEST} alice\n", encoding="utf-8")
+    with pytest.raises(WxshockError, match="configured twice"):
+        create_app(Settings(data_dir=tmp_path, token_file=token_file, tokens=["file-token-0002-xy"]))
+
+
+def test_token_owners_come_from_the_file_or_from_the_digest(tmp_path: Path) -> None:
+    from service.routes.deps import load_tokens
+
+    other = hashlib.sha256(b"another-token-0123456").hexdigest()
+    token_file = tmp_path / "tokens"
+    token_file.write_text(
+        f"# group\n{DIGEST} alice  # a student\n{other.upper()}   lead admin\n", encoding="utf-8"
+    )
+    tokens = load_tokens(Settings(data_dir=tmp_path, token_file=token_file, tokens=["plain-token-0001-x"]))
+    plain = hashlib.sha256(b"plain-token-0001-x").hexdigest()
+    assert {d: (p.owner, p.admin) for d, p in tokens.items()} == {
+        DIGEST: ("alice", False),
+        other: ("lead", True),
+        plain: (f"token-{plain[:8]}", False),
+    }
 
 
 @pytest.fixture(scope="module")
@@ -400,3 +440,157 @@ def test_on_demand_requests_are_served_without_errors_while_a_batch_job_runs(
     print(
         f"on-demand under load: median {statistics.median(t for _, t in results):.3f} s; job {state_during}"
     )
+
+
+# --- keep-alive after an error (issue 12, finding 11) ---------------------------------------------------------
+
+
+def _exchange(sock: Any, path: str) -> tuple[int, bytes]:
+    """Send one GET on an open HTTP/1.1 connection and read its whole response: (status, body)."""
+    sock.sendall(f"GET {path} HTTP/1.1\r\nHost: 127.0.0.1\r\n\r\n".encode())
+    data = b""
+    while b"\r\n\r\n" not in data:
+        chunk = sock.recv(65536)
+        if not chunk:
+            return 0, b""  # the server closed the connection
+        data += chunk
+    head, _, body = data.partition(b"\r\n\r\n")
+    length = int(
+        next(h.split(b":")[1] for h in head.split(b"\r\n") if h.lower().startswith(b"content-length"))
+    )
+    while len(body) < length:
+        body += sock.recv(65536)
+    return int(head.split(b" ")[1]), body
+
+
+def test_an_unexpected_failure_is_a_500_problem_and_the_connection_stays_open(tmp_path: Path) -> None:
+    import socket
+
+    import uvicorn
+
+    app = create_app(Settings(data_dir=tmp_path), open_stores=False)
+
+    def boom() -> None:
+        raise RuntimeError("a bug, not the user's mistake; the detail must not leak /secret/path")
+
+    app.add_api_route("/boom", boom)
+    port = server_support.free_port()
+    server = uvicorn.Server(uvicorn.Config(app, host="127.0.0.1", port=port, log_level="critical"))
+    thread = threading.Thread(target=server.run, daemon=True)
+    thread.start()
+    try:
+        deadline = time.monotonic() + 30
+        while not server.started and time.monotonic() < deadline:
+            time.sleep(0.02)
+        with socket.create_connection(("127.0.0.1", port), timeout=10) as sock:
+            status, body = _exchange(sock, "/boom")
+            assert status == 500 and b"internal-error" in body and b"/secret/path" not in body
+            # Before: uvicorn closed the keep-alive connection after a 500; now the same connection serves on.
+            assert _exchange(sock, "/health")[0] == 200
+            assert _exchange(sock, "/v1/nothing")[0] == 404
+            assert _exchange(sock, "/health")[0] == 200
+    finally:
+        server.should_exit = True
+        thread.join(10)
+
+
+# --- /health during the largest request, concurrent requests and a job, under a memory cap --------------------
+
+
+def _points(store_path: Path, count: int) -> dict[str, Any]:
+    """``count`` small buffered points at the centres of cells with data."""
+    import numpy as np
+
+    from service.store import open_store
+
+    store = open_store(store_path)
+    rows, cols = np.nonzero(store.data_mask())
+    pick = np.random.default_rng(5).integers(0, len(rows), count)
+    xy = np.column_stack([np.asarray(store.grid.x)[cols[pick]], np.asarray(store.grid.y)[rows[pick]]]).round(
+        6
+    )
+    features = [
+        {"type": "Feature", "id": f"p{i:06d}", "properties": {"buffer_m": 500},
+         "geometry": {"type": "Point", "coordinates": [float(x), float(y)]}}
+        for i, (x, y) in enumerate(xy)
+    ]  # fmt: skip
+    return {"type": "FeatureCollection", "features": features}
+
+
+def _circles(count: int, vertices: int) -> dict[str, Any]:
+    """``count`` polygons of ``vertices`` vertices inside the tiny demo's grid."""
+    import math
+
+    features = []
+    for k in range(count):
+        cx, cy = -39.8 + 0.03 * (k % 20), 14.2 + 0.05 * (k // 20)
+        ring = [
+            [round(cx + 0.01 * math.cos(2 * math.pi * i / vertices), 7),
+             round(cy + 0.01 * math.sin(2 * math.pi * i / vertices), 7)]
+            for i in range(vertices)
+        ]  # fmt: skip
+        features.append({"type": "Feature", "id": f"c{k}", "properties": {},
+                         "geometry": {"type": "Polygon", "coordinates": [[*ring, ring[0]]]}})  # fmt: skip
+    return {"type": "FeatureCollection", "features": features}
+
+
+@pytest.mark.slow
+def test_health_answers_within_a_second_during_the_largest_request_a_job_and_concurrent_requests(
+    tiny_demo: Path, tmp_path: Path
+) -> None:
+    # The attack: a 47.7 MB body was parsed on the event loop and /health timed out for 32 s. This is the
+    # bounded version (a 12 MB limit, 200 polygons of 2,100 vertices, a 5,000-point job); bench/
+    # bench_hardening.py runs the full one (50 MB, 8,900 vertices, 50,000 points).
+    from tests import _support_memory as memory
+
+    if os.getloadavg()[0] > 4 * (os.cpu_count() or 1):
+        pytest.skip(f"the machine is too busy for a latency figure (load {os.getloadavg()[0]:.0f})")
+    env = {
+        "WXSHOCK_MAX_BODY_BYTES": str(12_000_000),
+        "WXSHOCK_JOB_WORKERS": "1",
+        "WXSHOCK_MIN_FREE_BYTES": "0",
+    }
+    server = memory.start_capped(stores=[tiny_demo], data_dir=tmp_path, cap_bytes=3 << 30, env=env)
+    base = server.server.base_url
+    largest = json.dumps({"features": _circles(200, 2100), "indicators": ["prcp_total"],
+                          "years": {"start": 2000, "end": 2001}}).encode()  # fmt: skip
+    assert 10_000_000 < len(largest) < 12_000_000
+    small = json.dumps({"features": _circles(5, 40), "indicators": INDICATORS}).encode()
+    job = json.dumps({"features": _points(tiny_demo, 5_000), "indicators": INDICATORS}).encode()
+    headers = {"Content-Type": "application/json"}
+    latencies: list[float] = []
+    stop = threading.Event()
+
+    def probe() -> None:
+        with httpx.Client(base_url=base, timeout=30) as own:
+            while not stop.is_set():
+                start = time.perf_counter()
+                assert own.get("/health").status_code == 200
+                latencies.append(time.perf_counter() - start)
+                server.sample()
+                stop.wait(0.1)
+
+    def on_demand(content: bytes) -> int:
+        with httpx.Client(base_url=base, timeout=300) as own:
+            return own.post("/v1/indicators", content=content, headers=headers).status_code
+
+    prober = threading.Thread(target=probe, daemon=True)
+    prober.start()
+    try:
+        with httpx.Client(base_url=base, timeout=300) as client:
+            submitted = client.post("/v1/jobs", content=job, headers=headers)
+            assert submitted.status_code == 202, submitted.text[:300]
+            with ThreadPoolExecutor(max_workers=9) as pool:
+                statuses = list(pool.map(on_demand, [largest] + [small] * 8))
+            state = client.get(submitted.headers["Location"]).json()
+            client.delete(submitted.headers["Location"])  # bounded: the job need not finish here
+    finally:
+        stop.set()
+        prober.join(60)
+        server.stop()
+    report = server.report()
+    print(f"/health max {max(latencies):.3f} s over {len(latencies)} probes; peak RSS "
+          f"{report['peak_rss_bytes'] / 1e6:.0f} MB ({report['cap']})")  # fmt: skip
+    assert statuses == [200] * 9 and state["state"] in ("queued", "running", "succeeded")
+    assert max(latencies) < 1.0, sorted(latencies)[-5:]
+    assert report["oom_kills"] in (0, None) and report["peak_rss_bytes"] < 3 << 30

@@ -6,6 +6,7 @@ import copy
 import json
 import threading
 import time
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -13,12 +14,20 @@ import httpx
 import pytest
 
 from service import encode, pipeline
-from service.errors import ClusterUnavailableError, JobNotFoundError, JobStateError, RequestError
+from service.errors import (
+    ClusterUnavailableError,
+    JobNotFoundError,
+    JobStateError,
+    RequestError,
+    StorageFullError,
+)
 from service.jobs import (
+    ANONYMOUS,
     MAX_ATTEMPTS,
     Job,
     JobDatabase,
     JobRunner,
+    Principal,
     feature_count,
     request_digest,
     run_with_pipeline,
@@ -373,3 +382,172 @@ def test_a_job_killed_mid_way_reruns_after_restart_and_gives_identical_bytes(tmp
         server.stop()
     assert "re-queued 1 interrupted job" in server.log_path.read_text()  # type: ignore[union-attr]
     assert (demo / "zarr.json").stat().st_mtime == built_at  # the demo is built once, not on every start
+
+
+# --- a full disk (issue 12, finding 6) ------------------------------------------------------------------------
+
+
+@pytest.fixture
+def small_disk(tmp_path: Path):
+    """A 16 MB tmpfs mounted as the data directory (skipped, with the reason, where mounting is refused)."""
+    import subprocess
+
+    mount = tmp_path / "disk"
+    mount.mkdir()
+    done = subprocess.run(
+        ["mount", "-t", "tmpfs", "-o", "size=16m", "tmpfs", str(mount)], capture_output=True, text=True
+    )
+    if done.returncode != 0:
+        pytest.skip(
+            f"cannot mount a tmpfs as the data directory here: {done.stderr.strip() or done.returncode}"
+        )
+    try:
+        yield mount
+    finally:
+        subprocess.run(["umount", "-l", str(mount)], capture_output=True)
+
+
+def _fill(directory: Path, leave: int = 0) -> Path:
+    """Fill the file system of ``directory`` up to ``leave`` bytes free; returns the filler file."""
+    import shutil
+
+    filler = directory / "filler.bin"
+    with open(filler, "ab") as handle:
+        while True:
+            free = shutil.disk_usage(directory).free
+            if free <= leave:
+                break
+            try:
+                handle.write(b"\0" * min(free - leave, 1 << 20))
+                handle.flush()
+            except OSError:
+                break
+    return filler
+
+
+def test_a_full_disk_fails_the_job_with_507_keeps_the_worker_and_refuses_new_jobs(
+    small_disk: Path, tiny_demo: Path, tiny_communities: dict
+) -> None:
+    # The attack: with the data directory full, a failed ROLLBACK killed the worker thread, the job stayed
+    # 'running' forever, every POST /v1/jobs was a 500, and a 1 GB .partial file was left behind.
+    started, release = threading.Event(), threading.Event()
+
+    def gated(request, registry, settings, fmt, *, progress, cancelled, **kwargs):  # noqa: ANN001, ANN202
+        def progress_then_wait(done: int, total: int) -> None:
+            progress(done, total)
+            started.set()
+            release.wait(60)
+
+        return run_with_pipeline(
+            request, registry, settings, fmt, progress=progress_then_wait, cancelled=cancelled, **kwargs
+        )
+
+    store = open_store(tiny_demo)
+    settings = Settings(data_dir=small_disk, min_free_bytes=1 << 20)
+    runner = JobRunner(settings, StoreRegistry({store.name: store}), run_job=gated, poll_seconds=0.05)
+    runner.start()
+    try:
+        job, _ = runner.submit(_request(_many(tiny_communities, 60)), "json")
+        assert started.wait(60)
+        filler = _fill(small_disk)  # nothing left: neither the result nor the database can grow
+        release.set()
+        failed = _wait(runner, job.id, {"succeeded", "failed"})
+        assert failed.state == "failed" and failed.error is not None
+        assert failed.error["status"] == 507 and "full" in failed.error["detail"], failed.error
+        assert runner.alive, "the worker must outlive a full disk"
+        assert not list(runner.results.glob("*.partial")) and not list(runner.results.iterdir())
+        with pytest.raises(StorageFullError, match="min_free_bytes"):
+            runner.check_space()
+        # Space comes back: the failure is on record, and the next job runs.
+        filler.unlink()
+        deadline = time.monotonic() + 30
+        while runner.db.get(job.id).state != "failed" and time.monotonic() < deadline:  # type: ignore[union-attr]
+            time.sleep(0.05)
+        assert runner.db.get(job.id).error["status"] == 507  # type: ignore[union-attr,index]
+        again, _ = runner.submit(_request(tiny_communities, 2), "json")
+        assert _wait(runner, again.id, {"succeeded", "failed"}).state == "succeeded"
+    finally:
+        release.set()
+        runner.stop()
+
+
+def test_submission_is_refused_with_507_while_the_disk_stays_full(
+    small_disk: Path, tiny_demo: Path, tiny_communities: dict
+) -> None:
+    settings = Settings(stores=[str(tiny_demo)], data_dir=small_disk, min_free_bytes=2 << 20)
+    with server_support.thread_server(settings) as server, server.client() as client:
+        filler = _fill(small_disk, leave=1 << 20)
+        body = {
+            "features": dict(tiny_communities, features=tiny_communities["features"][:2]),
+            "indicators": INDICATORS,
+        }
+        refused = client.post("/v1/jobs", json=body)
+        assert refused.status_code == 507 and refused.headers["content-type"] == "application/problem+json"
+        assert refused.json()["type"].endswith("/storage-full") and "free" in refused.json()["detail"]
+        assert client.get("/ready").json()["job_worker"] == "alive"
+        filler.unlink()
+        assert client.post("/v1/jobs", json=body).status_code == 202
+
+
+def test_a_failed_write_leaves_no_partial_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import errno
+
+    from service import jobs
+
+    def full(fd: int) -> None:
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(jobs.os, "fsync", full)
+    with pytest.raises(OSError, match="No space"):
+        jobs.write_atomically(tmp_path / "result.parquet", b"x" * 1000)
+    assert list(tmp_path.iterdir()) == []
+
+
+# --- retention checked when a result is read (issue 12, finding 9) --------------------------------------------
+
+
+def test_a_result_past_its_retention_is_not_served_even_before_the_clean_up_runs(tmp_path: Path) -> None:
+    # The attack: clean-up ran only at start and every 600 s, so an expired result was still served.
+    runner = JobRunner(Settings(data_dir=tmp_path, job_retention_hours=1.0), StoreRegistry({}))
+    for name, finished in (("old", time.time() - 3700.0), ("young", time.time() - 600.0)):
+        runner.db.insert(_job(name), "{}")
+        runner.db.claim_next(0.0)
+        (runner.results / f"{name}.parquet").write_bytes(b"x")
+        runner.db.finish(name, "succeeded", finished, result_file=f"{name}.parquet")
+    assert runner.result_path("young")[1].read_bytes() == b"x"
+    for read in (runner.result_path, runner.status):
+        with pytest.raises(JobNotFoundError, match="finished more than 1 hours ago"):
+            read("old")
+    assert not (runner.results / "old.parquet").exists() and runner.db.get("old") is None
+    assert [j.id for j in runner.list_jobs(ANONYMOUS)] == ["young"]
+
+
+def test_jobs_are_listed_newest_first_per_owner(tmp_path: Path) -> None:
+    runner = JobRunner(Settings(data_dir=tmp_path), StoreRegistry({}))
+    for i, owner in enumerate(["alice", "bob", "alice"]):
+        runner.db.insert(replace(_job(f"j{i}", created=float(i)), owner=owner), "{}")
+    assert [j.id for j in runner.list_jobs(Principal("alice"))] == ["j2", "j0"]
+    assert [j.id for j in runner.list_jobs(Principal("bob"))] == ["j1"]
+    assert [j.id for j in runner.list_jobs(Principal("lead", admin=True), limit=2)] == ["j2", "j1"]
+    with pytest.raises(JobNotFoundError, match="of yours"):
+        runner.status("j1", Principal("alice"))
+
+
+def test_an_old_database_gains_owners_and_keeps_its_jobs(tmp_path: Path) -> None:
+    import sqlite3
+
+    from service.jobs import _SCHEMA
+
+    path = tmp_path / "jobs.sqlite"
+    with sqlite3.connect(path) as old:
+        old.executescript(_SCHEMA)
+        old.execute(
+            "INSERT INTO jobs (id, state, dataset, format, request, request_hash, features_total, created_at) "
+            "VALUES ('before', 'succeeded', 'demo', 'csv', '{}', 'h', 1, 1.0)"
+        )
+    db = JobDatabase(path)
+    job = db.get("before")
+    assert job is not None and job.owner == "" and job.skipped == []
+    assert not Principal("alice").sees(job) and Principal("lead", admin=True).sees(job)
+    db.close()
+    assert JobDatabase(path).get("before") is not None  # opening again migrates nothing twice

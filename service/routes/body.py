@@ -1,8 +1,10 @@
-"""Request bodies read off the event loop: JSON parsed feature by feature in a worker thread.
+"""Request bodies read off the event loop: JSON parsed feature by feature and validated in a worker thread.
 
-FastAPI parses a JSON body with one ``json.loads`` on the event loop; a 50 MB body held the loop (and /health)
-for many seconds. Routes built with :class:`OffLoopRoute` parse it with service.request_text in the thread
-pool instead, with positions in every parse error.
+FastAPI parses a JSON body with one ``json.loads`` and validates it on the event loop; a 50 MB body held the
+loop (and /health) for many seconds. Routes built with :class:`OffLoopRoute` parse it with
+service.request_text and validate it against the route's body model in the thread pool instead, with positions
+in every parse error. FastAPI then receives the validated model, which it passes through without validating
+it again; an invalid body is handed over as parsed, so FastAPI reports its errors as usual.
 """
 
 from __future__ import annotations
@@ -38,15 +40,26 @@ def parse_body(raw: bytes) -> Any:
         raise ProblemException(exc) from None
 
 
+def parse_and_validate(raw: bytes, body_field: Any, scope: dict[str, Any]) -> Any:
+    """The body validated against the route's model (or, when it fails validation, as parsed)."""
+    parsed = parse_body(raw)
+    scope[BODY_SCOPE_KEY] = parsed
+    if body_field is None:
+        return parsed
+    validated, errors = body_field.validate(parsed, {}, loc=("body",))
+    return parsed if errors else validated
+
+
 class OffLoopRequest(Request):
-    """A request whose JSON body is parsed in the thread pool."""
+    """A request whose JSON body is parsed and validated in the thread pool."""
+
+    body_field: Any = None
 
     async def json(self) -> Any:
-        """The parsed body (parsed once)."""
+        """The validated body (or the parsed one, when invalid), made once."""
         if not hasattr(self, "_json"):
             body = await self.body()
-            self._json = await run_in_threadpool(parse_body, body)
-            self.scope[BODY_SCOPE_KEY] = self._json
+            self._json = await run_in_threadpool(parse_and_validate, body, self.body_field, self.scope)
         return self._json
 
 
@@ -54,11 +67,14 @@ class OffLoopRoute(APIRoute):
     """An APIRoute whose handler reads JSON bodies with OffLoopRequest."""
 
     def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
-        """The route's handler, given an OffLoopRequest."""
+        """The route's handler, given an OffLoopRequest that knows the route's body model."""
         handler = super().get_route_handler()
+        body_field = self.body_field
 
         async def off_loop(request: Request) -> Response:
-            return await handler(OffLoopRequest(request.scope, request.receive))
+            own = OffLoopRequest(request.scope, request.receive)
+            own.body_field = body_field
+            return await handler(own)
 
         return off_loop
 

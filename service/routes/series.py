@@ -5,8 +5,10 @@ from __future__ import annotations
 from typing import Annotated
 
 from fastapi import APIRouter, Depends, Query, Request, Response
+from fastapi.responses import StreamingResponse
 
 from service.encode.formats import SeriesFormat
+from service.encode.stream import STREAMED_FORMATS, stream
 from service.routes.body import OffLoopRoute
 from service.routes.deps import (
     AppSettings,
@@ -47,5 +49,13 @@ def compute_series(
     )
     check_on_demand(body, settings)
     store = registry.get_dataset(body.dataset)
-    content, media_type, headers = encode.encode(pipeline.run_series(body, store, settings), fmt)
-    return Response(content, media_type=media_type, headers=headers)
+    # Every check and the aggregation run before the first byte; the rows are then encoded and sent piece
+    # by piece (a 200-feature series over decades is millions of rows). A Stata file is written whole.
+    table = pipeline.series_table(body, store, settings)
+    if fmt not in STREAMED_FORMATS:
+        content, media_type, headers = encode.encode(pipeline.series_result(table), fmt)
+        return Response(content, media_type=media_type, headers=headers)
+    body_bytes = stream(table.frames, table.columns, table.provenance, table.warnings, fmt)
+    return StreamingResponse(
+        body_bytes, media_type=encode.FORMATS[fmt], headers=encode.provenance_headers(table.provenance)
+    )

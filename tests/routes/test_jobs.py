@@ -260,3 +260,109 @@ def test_a_plain_token_owns_its_jobs_under_a_name_made_from_its_digest(
     with shared_server.client(token=PLAIN) as plain:
         listed = plain.get("/v1/jobs", params={"limit": 5}).json()["jobs"]
     assert {j["owner"] for j in listed} == {owner}
+
+
+# --- per-feature faults: invalid_features (issue 12, findings 4 and 5) ----------------------------------------
+
+
+def _skip_api() -> bool:
+    """Whether service.geometry can skip bad features (i11-geometry's invalid='skip')."""
+    import inspect
+
+    from service.geometry import parse_features
+
+    return "invalid" in inspect.signature(parse_features).parameters
+
+
+needs_skip = pytest.mark.skipif(
+    not _skip_api(), reason="service.geometry has no invalid='skip' yet (i11-geometry)"
+)
+
+
+def _with_bad(communities: dict[str, Any], n: int = 4) -> dict[str, Any]:
+    """n demo communities, the second moved off the grid and the fourth with its coordinates swapped."""
+    body = _body(communities, n)
+    features = body["features"]["features"]
+    features[1] = {**features[1], "geometry": {"type": "Polygon", "coordinates": [
+        [[10.0, 10.0], [10.05, 10.0], [10.05, 10.05], [10.0, 10.05], [10.0, 10.0]]]}}  # fmt: skip
+    ring = features[3]["geometry"]["coordinates"][0]
+    if features[3]["geometry"]["type"] == "Polygon":
+        features[3] = {
+            **features[3],
+            "geometry": {"type": "Polygon", "coordinates": [[[y, x] for x, y in ring]]},
+        }
+    return body
+
+
+def test_on_demand_one_422_lists_every_bad_feature(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    body = _with_bad(tiny_communities)
+    with live_server.client() as client:
+        problem = _problem(client.post("/v1/indicators", json=body), 422)
+    bad = {body["features"]["features"][1]["id"], body["features"]["features"][3]["id"]}
+    assert {e["feature_id"] for e in problem["errors"]} == bad, problem
+
+
+@needs_skip
+def test_a_job_skips_bad_features_keeps_their_rows_and_lists_them(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    body = _with_bad(tiny_communities)
+    ids = [f["id"] for f in body["features"]["features"]]
+    with live_server.client() as client:
+        accepted = client.post("/v1/jobs", json=body, params={"format": "json"})
+        assert accepted.status_code == 202, accepted.text
+        status = accepted.json()
+        assert status["features_skipped"] == 2 and {s["feature_id"] for s in status["skipped"]} == {
+            ids[1],
+            ids[3],
+        }
+        assert all(s["code"] and s["reason"] and s["pointer"] for s in status["skipped"])
+        done = _follow(client, accepted.headers["Location"], {"succeeded", "failed"})
+        assert done["state"] == "succeeded", done
+        document = client.get(done["links"]["result"]).json()
+        good = client.post(
+            "/v1/indicators",
+            json={
+                **body,
+                "features": {
+                    **body["features"],
+                    "features": [body["features"]["features"][i] for i in (0, 2)],
+                },
+            },
+            params={"format": "json"},
+        ).json()
+    rows = document["rows"]
+    assert [r["feature_id"] for r in rows[:: len(rows) // 4]] == ids  # every feature keeps its rows, in order
+    skipped_rows = [r for r in rows if r["feature_id"] in (ids[1], ids[3])]
+    assert skipped_rows and all(r["prcp_total"] is None and r["tmean_z"] is None for r in skipped_rows)
+    kept = [r for r in rows if r["feature_id"] in (ids[0], ids[2])]
+    assert kept == good["rows"]  # the other features' rows are unchanged
+    listed = document["provenance"]["request"]["features"]["skipped"]
+    assert {e["feature_id"] for e in listed} == {ids[1], ids[3]}
+    codes = {
+        (w["feature_id"], w.get("code")) for w in document["warnings"] if w["feature_id"] in (ids[1], ids[3])
+    }
+    assert codes == {(ids[1], "feature_skipped"), (ids[3], "feature_skipped")}
+
+
+def test_a_job_in_which_no_feature_can_be_computed_is_refused(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    body = _with_bad(tiny_communities)
+    body["features"]["features"] = body["features"]["features"][1:2]
+    with live_server.client() as client:
+        problem = _problem(client.post("/v1/jobs", json=body), 422)
+    assert problem.get("feature_id") == body["features"]["features"][0]["id"]
+
+
+def test_a_job_asking_to_fail_on_bad_features_is_refused_at_submission(
+    live_server: server_support.LiveServer, tiny_communities: dict
+) -> None:
+    body = {**_with_bad(tiny_communities), "invalid_features": "fail"}
+    with live_server.client() as client:
+        before = client.get("/ready").json()["jobs_queued"]
+        problem = _problem(client.post("/v1/jobs", json=body), 422)
+        assert len(problem["errors"]) == 2
+        assert client.get("/ready").json()["jobs_queued"] <= before
