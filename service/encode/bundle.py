@@ -109,9 +109,15 @@ def methods_text(provenance: Mapping[str, Any], warnings: list[dict[str, Any]], 
         if any(k > 0 for k in lags)
         else ""
     )
+    partial_words = {
+        "scale": "; in a season missing fewer, sums and counts were scaled to the whole season (expected days / "
+        "days present) and means, extremes and run lengths taken over the days present",
+        "null": "; a season missing any day was left null as well",
+        "as_is": "; in a season missing fewer, every value was taken over the days present as they are",
+    }
     missing_text = (
         f" A season missing more than {float(missing) * 100:g}% of its days was left null"
-        + (f" (partial seasons: {partial})" if partial else "")
+        + (partial_words.get(str(partial), f" (partial seasons: {partial})") if partial else "")
         + "."
         if missing is not None
         else ""

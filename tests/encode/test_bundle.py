@@ -80,6 +80,7 @@ def test_methods_are_written_from_the_resolved_request(example_result: RunResult
         "edges at -2, -1, 1, 2 standard deviations",
         "lags 1, 2",
         "more than 10% of its days",
+        "sums and counts were scaled to the whole season",  # partial_seasons "scale", the default
         "growing degree days (gdd)",
         "Vicente-Serrano",  # SPEI's source
     ):
