@@ -211,7 +211,8 @@ def _series_title(feature_id: str, community: str | None, season: str | None, ba
     who = f"{community} ({feature_id})" if community else f"community {feature_id}"
     parts = [f"{who}: seasonal anomalies"]
     if season:
-        parts.append(f"season {season}")
+        # 'season May-Oct', but 'the calendar year' and "each community's own season" as they are
+        parts.append(season if season.startswith(("the ", "each ")) else f"season {season}")
     if baseline:
         parts.append(f"against {baseline}")
     return ", ".join(parts)
@@ -399,6 +400,7 @@ def _points(geometry: Any) -> list[tuple[float, float]]:
 
 def map_title(indicator: str, season: str, year: int, baseline: tuple[int, int], dataset: str) -> str:
     """'Season precipitation, May-Oct 2010: z against 1981-1990 (demo)'."""
+    season = season.removeprefix("the ")  # 'calendar year 2010'
     return f"{indicator_words(indicator).capitalize()}, {season} {year}: z against {baseline[0]}-{baseline[1]} ({dataset})"
 
 

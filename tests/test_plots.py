@@ -290,3 +290,13 @@ def test_map_shows_no_data_in_the_legend_and_uses_the_figures_width() -> None:
     assert map_title("prcp_total", "May-Oct", 2010, (1981, 1990), "demo") == (
         "Season precipitation, May-Oct 2010: z against 1981-1990 (demo)"
     )
+
+
+def test_titles_read_for_a_whole_year_season() -> None:
+    from service.plots import map_title, series_figure
+
+    fig = series_figure(_frame(), "c-01", season="the calendar year", baseline_years=(1993, 1999))
+    assert fig.get_suptitle() == "community c-01: seasonal anomalies, the calendar year, against 1993-1999"
+    assert map_title("tmean", "the calendar year", 2010, (1981, 1990), "demo") == (
+        "Mean temperature, calendar year 2010: z against 1981-1990 (demo)"
+    )
