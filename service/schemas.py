@@ -507,7 +507,9 @@ class Event(_Model):
 class WindowOffset(_Model):
     """A day relative to the event's date: whole days, or whole calendar months (give exactly one)."""
 
-    days: StrictInt | None = Field(default=None, ge=-3660, le=3660, description="Days after (negative: before).")
+    days: StrictInt | None = Field(
+        default=None, ge=-3660, le=3660, description="Days after (negative: before)."
+    )
     months: StrictInt | None = Field(
         default=None,
         ge=-120,

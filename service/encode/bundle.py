@@ -91,6 +91,23 @@ def _aggregation_text(request: Mapping[str, Any]) -> str:
     )
 
 
+def _period_text(request: Mapping[str, Any]) -> str:
+    """Over which days the values were taken: the season, or the windows around each event."""
+    events = request.get("events")
+    if events:
+        count = events.get("count") if isinstance(events, Mapping) else len(events)
+        windows = [w.get("name") for w in request.get("windows") or [] if isinstance(w, Mapping)]
+        return (
+            f"Values were taken over windows of days relative to each of {count} events "
+            f"({', '.join(str(w) for w in windows) or 'the windows of the request'}; see request.json), and "
+            "each was compared with the same window in the baseline years."
+        )
+    return (
+        f"The season was {season_text(request.get('season'))}; a season that crosses the new year belongs to "
+        "the year in which it ends."
+    )
+
+
 def methods_text(provenance: Mapping[str, Any], warnings: list[dict[str, Any]], rows: int) -> str:
     """methods.md: a paragraph a researcher can paste, then the indicators and their sources."""
     request = provenance.get("request") or {}
@@ -102,7 +119,13 @@ def methods_text(provenance: Mapping[str, Any], warnings: list[dict[str, Any]], 
     partial = request.get("partial_seasons")
     indicators = _indicator_sources(provenance)
     names = ", ".join(f"{title.lower()} ({column})" for column, title, _, _ in indicators) or "the indicators"
-    span = f"{years.get('start')}-{years.get('end')}" if years else "every season-year the data allow"
+    span = (
+        ""
+        if request.get("events")
+        else f" and the season-years {years.get('start')}-{years.get('end')}"
+        if years
+        else " and every season-year the data allow"
+    )
     lag_text = (
         f" Lagged z-scores and classes were added for lags {', '.join(str(k) for k in lags if k > 0)} "
         "season-years."
@@ -125,9 +148,8 @@ def methods_text(provenance: Mapping[str, Any], warnings: list[dict[str, Any]], 
     paragraph = (
         f"Weather shocks were computed with {provenance.get('software', 'wxshock')} from the gridded daily "
         f"dataset '{provenance.get('dataset')}' (fingerprint {provenance.get('fingerprint')}) for "
-        f"{features.get('count', 'the')} communities and the season-years {span}. For each community, "
-        f"{_aggregation_text(request)}. The season was {season_text(request.get('season'))}; a season that "
-        "crosses the new year belongs to the year in which it ends. The indicators were "
+        f"{features.get('count', 'the')} communities{span}. For each community, "
+        f"{_aggregation_text(request)}. {_period_text(request)} The indicators were "
         f"{names}. Each value was compared with the community's own normal over "
         f"{baseline_text(request.get('baseline'))}: z = (value - baseline mean) / baseline sample standard "
         "deviation (SPI and SPEI are standard-normal deviates already), and z was classed with edges at "

@@ -37,6 +37,20 @@ _FEATURE_COLUMNS: dict[str, tuple[str, str, str]] = {
 }
 
 
+# Columns of the event table (issue 13): the event itself, and each window's span and completeness.
+_EVENT_COLUMNS: dict[str, tuple[str, str, str]] = {
+    "event_id": ("event id", "", "The event's id as sent in the request's events."),
+    "date": ("event date", "date", "The event's date (YYYY-MM-DD) in the dataset's calendar."),
+    "start": ("first day of the window", "date", "The window's first day for this event."),
+    "end": ("last day of the window", "date", "The window's last day for this event."),
+    "window_complete": (
+        "share of the window's days with data",
+        "1",
+        "Share (0 to 1) of the window's days with the variables present.",
+    ),
+}
+
+
 @dataclass(frozen=True)
 class ColumnInfo:
     """One column of a result, described for a codebook and for Stata's variable labels."""
@@ -316,6 +330,9 @@ def _describe(
             "The codes of the row's warnings, sorted and separated by spaces; empty when none. The full "
             "warnings are in the result's warnings (warnings.csv in a bundle).",
         )
+    if name in _EVENT_COLUMNS:
+        label, unit, definition = _EVENT_COLUMNS[name]
+        return ColumnInfo(name, label, unit, definition, "the request's events")
     if name == "season_complete":
         return ColumnInfo(
             name,

@@ -43,3 +43,15 @@ def test_words_for_the_request() -> None:
     assert short_title("Number of days in the season with at least 10 mm of precipitation.") == (
         "Number of days in the season with at least 10 mm"
     )
+
+
+def test_event_tables_are_described_too() -> None:
+    infos = describe_columns(
+        ["event_id", "date", "prior_year__start", "prior_year__window_complete"], {"request": {"events": {}}}
+    )
+    assert [i.label for i in infos] == [
+        "event id",
+        "event date",
+        "prior_year: first day of the window",
+        "prior_year: share of the window's days with data",
+    ]

@@ -402,7 +402,9 @@ def test_360_day_window_sums_against_a_plain_loop() -> None:
 # --- kernels against season cubes -------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("calendar", "policy"), [("standard", "scale"), ("360_day", "as_is"), ("standard", "null")])
+@pytest.mark.parametrize(
+    ("calendar", "policy"), [("standard", "scale"), ("360_day", "as_is"), ("standard", "null")]
+)
 def test_every_kernel_equals_the_indicator_on_cubes(calendar: str, policy: str) -> None:
     """Each kernel gives the indicator's own season function on the window's days, gaps and partial windows included."""
     end = "2009-12-30" if calendar == "360_day" else "2009-12-31"
