@@ -313,3 +313,27 @@ def test_a_community_inside_one_rotated_cell_gets_that_cells_values(tmp_path: Pa
     request = SeriesRequest(features=feature, variables=["tmax"])
     result = run_series(request, open_store(tmp_path / "rot.zarr"), Settings(data_dir=str(tmp_path)))
     assert np.max(np.abs(result.frame["tmax"].to_numpy() - written.values["tmax"][:, 2, 3])) <= HALF_STEP
+
+
+def test_running_totals_through_the_day_are_refused(tmp_path: Path) -> None:
+    # Some land reanalyses accumulate precipitation from 00 UTC through the day (from memory); summing such
+    # running totals would count each hour many times. Per-step amounts of the same rain pass.
+    files, _, tp, _ = hourly_reanalysis(tmp_path / "in", "2001-01-01", 4, 1)
+    with xr.open_dataset(files[0]) as ds:
+        running = ds.load()
+    # the total since 00 UTC: the value stamped h hours after midnight holds hours 1..h (24 at the next midnight)
+    day = (np.arange(tp.shape[0]) - 1) // 24
+    totals = np.zeros_like(tp)
+    for d in np.unique(day):
+        totals[day == d] = np.cumsum(tp[day == d], axis=0)
+    running["tp"].values[:] = totals
+    running.to_netcdf(files[0])
+    with pytest.raises(IngestError, match=r"prcp from 'tp': the precipitation amounts look like running totals .* "
+                                          r"Difference them into amounts per time step first"):  # fmt: skip
+        ingest_files(files, tmp_path / "x.zarr", progress=False)
+    # the same under days at another offset from UTC, where the restart falls inside the day
+    with pytest.raises(IngestError, match=r"look like running totals"):
+        ingest_files(files, tmp_path / "x.zarr", utc_offset="+05:00", progress=False)
+    # and the per-step amounts themselves pass
+    files2, *_ = hourly_reanalysis(tmp_path / "in2", "2001-01-01", 4, 1)
+    ingest_files(files2, tmp_path / "ok.zarr", progress=False)

@@ -356,6 +356,7 @@ def _from_sub_daily(
         reducer, words = np.min, "minimum"
     elif conversion.kind == "amount":
         reducer, words = np.sum, "total"
+        _refuse_running_totals(block, spd, where)
     else:
         reducer, words = np.mean, "mean rate"
     # numpy's max, min, sum and mean give NaN for a day with any missing step: such a day is missing
@@ -392,6 +393,38 @@ def _from_sub_daily(
 
 
 _PLACED = {"end": "ending at", "start": "starting at", "middle": "centred on"}
+
+# Days read to tell running totals from amounts per time step, and the share of wet cell-days whose values fall at
+# most once within the day (at the running total's reset) above which the amounts are taken for running totals
+RUNNING_TOTAL_DAYS = 4
+RUNNING_TOTAL_SHARE = 0.8
+
+
+def _refuse_running_totals(block: da.Array, steps_per_day: int, where: str) -> None:
+    """Refuse precipitation amounts that accumulate through the day (totals since a forecast's start) instead of
+    being amounts per time step: summing them would multiply the daily total many times over.
+
+    Amounts per step rise and fall within a wet day; running totals only rise, except once where they restart
+    (which need not be the day's boundary, e.g. under --utc-offset). Among the cell-days of the first few days with
+    at least three wet steps, more than RUNNING_TOTAL_SHARE that fall at most once mark running totals.
+    """
+    days = min(RUNNING_TOTAL_DAYS, block.shape[0] // steps_per_day)
+    if days == 0 or steps_per_day < 4:
+        return
+    sample = np.asarray(block[: days * steps_per_day].compute(), dtype=np.float64)
+    cube = sample.reshape(days, steps_per_day, -1)
+    wet = (np.nan_to_num(cube) > 0).sum(axis=1) >= 3
+    if wet.sum() < 10:
+        return  # too few wet cell-days to tell
+    falls = (np.diff(cube, axis=1) < 0).sum(axis=1)
+    share = float((falls <= 1)[wet].mean())
+    if share > RUNNING_TOTAL_SHARE:
+        raise IngestError(
+            f"{where}: the precipitation amounts look like running totals accumulated through the day (in "
+            f"{share:.0%} of {int(wet.sum())} wet cell-days of the first {days} days they fall at most once, where "
+            "a running total restarts), not amounts per time step; summing them would count each hour's rain many times. Difference "
+            "them into amounts per time step first"
+        )
 
 
 def _same_daily_source_twice(result: dict[str, DailyVariable]) -> None:
