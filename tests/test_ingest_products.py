@@ -173,6 +173,9 @@ def test_hourly_packed_int16_with_fill_values(tmp_path: Path) -> None:
         raw = ds.load()
     assert raw["t2m"].encoding["dtype"] == np.int16
     raw["t2m"][30, 1, 1] = np.nan  # one missing hour on 2 January: that day is missing in that cell
+    # CF valid_range, in the packed type: a value beyond it (packed 32500, 350 K) is missing too
+    raw["t2m"][40, 2, 2] = 285.0 + 0.002 * 32500
+    raw["t2m"].attrs["valid_range"] = np.array([-32000, 32000], dtype=np.int16)
     raw = raw.drop_vars("tp")
     raw.to_netcdf(files[0], encoding={"t2m": {k: raw["t2m"].encoding[k] for k in ("dtype", "scale_factor",
                                                                                  "add_offset", "_FillValue")}})  # fmt: skip
@@ -183,8 +186,10 @@ def test_hourly_packed_int16_with_fill_values(tmp_path: Path) -> None:
     got = stored(tmp_path / "packed.zarr", "tmax")
     t2m = decoded["t2m"].values.astype(np.float64)
     want = t2m.reshape(2, 24, *t2m.shape[1:]).max(axis=1) - 273.15  # numpy max: NaN when any hour is NaN
+    want[1, 2, 2] = np.nan  # 350 K at 16:00 on 2 January lies beyond valid_range
     assert_close(got, want[:, :, [3, 4, 5, 0, 1, 2]])
     assert np.isnan(got[1, 1, 4]) and not np.isnan(got[0, 1, 4])
+    assert np.isnan(got[1, 2, 5]) and not np.isnan(got[0, 2, 5])  # the out-of-range hour makes its day missing
 
 
 def test_hourly_files_with_a_missing_hour_between_them(tmp_path: Path) -> None:

@@ -379,12 +379,51 @@ def variable_data(path: Path, ds: xr.Dataset, name: str, grid: FileGrid, time_na
         )
     if extra:
         var = var.isel({d: 0 for d in extra})
+    bounds = valid_bounds(var)
+    if bounds is not None:
+        lo, hi = bounds
+        # CF: values outside the valid range are missing; xarray's decoding applies only _FillValue/missing_value
+        var = var.where((var >= lo) & (var <= hi))
     data = var.transpose(time_name, grid.y_dim, grid.x_dim)
     data = data.rename({time_name: "time", grid.y_dim: "y", grid.x_dim: "x"})
     data = data.reset_coords(drop=True).drop_vars(["time", "y", "x"], errors="ignore")
     if grid.x_order is not None:
         data = data.isel(x=grid.x_order)
     return data
+
+
+def valid_bounds(var: xr.DataArray) -> tuple[float, float] | None:
+    """(lowest, highest) valid value of a variable in its decoded units from valid_range, valid_min, valid_max.
+
+    CF gives them in the packed type for packed data: integer bounds of an integer-packed variable are unpacked
+    with its scale_factor and add_offset; floating bounds are taken as already in the decoded units.
+    """
+    attrs = var.attrs
+    lo, hi = -np.inf, np.inf
+    raw: list[Any] = []
+    if "valid_range" in attrs and np.size(attrs["valid_range"]) == 2:
+        lo, hi = (np.asarray(attrs["valid_range"]).ravel()[k] for k in (0, 1))
+        raw = [lo, hi]
+    if "valid_min" in attrs:
+        lo = np.asarray(attrs["valid_min"]).ravel()[0]
+        raw.append(lo)
+    if "valid_max" in attrs:
+        hi = np.asarray(attrs["valid_max"]).ravel()[0]
+        raw.append(hi)
+    if not raw:
+        return None
+    scale = var.encoding.get("scale_factor")
+    offset = var.encoding.get("add_offset")
+    packed = (scale is not None or offset is not None) and np.issubdtype(
+        np.dtype(var.encoding.get("dtype", "f8")), np.integer
+    )
+    if packed and all(np.issubdtype(np.asarray(v).dtype, np.integer) for v in raw):
+        factor = float(scale) if scale is not None else 1.0
+        shift = float(offset) if offset is not None else 0.0
+        lo, hi = (float(v) * factor + shift if np.isfinite(v) else float(v) for v in (lo, hi))
+        if factor < 0:
+            lo, hi = hi, lo
+    return float(lo), float(hi)
 
 
 # --- rasters for weight layers --------------------------------------------------------------------------------
