@@ -102,6 +102,24 @@ def cmd_verify(args: argparse.Namespace) -> int:
     return 0 if result.ok else 1
 
 
+def cmd_migrate(args: argparse.Namespace) -> int:
+    """Migrate a layout-1 store to layout 2 in place (recoverably), keeping its old fingerprint beside the new."""
+    from service.store import migrate_store, open_store
+
+    settings = _settings(args)
+    options = settings.storage_options() if str(args.store).startswith("s3://") else None
+    fingerprint = migrate_store(args.store, storage_options=options, progress=not args.quiet)
+    store = open_store(args.store, storage_options=options)
+    if fingerprint is None:
+        print(f"{args.store}: already layout {store.layout_version}; fingerprint {store.fingerprint}")
+    else:
+        old = (store.migrated_from or {}).get("fingerprint")
+        print(
+            f"{args.store}: migrated to layout {store.layout_version}; fingerprint {fingerprint} (was {old})"
+        )
+    return 0
+
+
 def cmd_compute(args: argparse.Namespace) -> int:
     """Run the whole chain locally: weights, aggregation, indicators, encoding."""
     from service.pipeline import compute_to_file
@@ -199,6 +217,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("verify", help="recompute a store's fingerprint")
     p.add_argument("store")
     p.set_defaults(func=cmd_verify)
+
+    p = sub.add_parser("migrate", help="migrate a store written by an older wxshock to today's layout")
+    p.add_argument("store")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_migrate)
 
     p = sub.add_parser("compute", help="compute indicators locally, without a server")
     p.add_argument("--store", required=True, help="store directory or s3:// URL")

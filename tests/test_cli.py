@@ -18,6 +18,7 @@ from service.cli import build_parser, main
         ["ingest", "a.nc", "b.nc", "--out", "s3://bucket/x.zarr", "--var", "tmax=tasmax"],
         ["describe", "x.zarr", "--json"],
         ["verify", "x.zarr"],
+        ["migrate", "x.zarr", "--quiet"],
         ["compute", "--store", "x.zarr", "--request", "r.json", "--out", "o.parquet"],
         ["submit", "--server", "http://127.0.0.1:8000", "--request", "r.json", "--out", "o.csv"],
         ["openapi", "--out", "-"],
@@ -44,3 +45,15 @@ def test_a_missing_store_exits_2_with_its_reason(tmp_path: Path, capsys: pytest.
     assert main(["describe", str(tmp_path / "nowhere.zarr")]) == 2
     err = capsys.readouterr().err
     assert err.startswith("wxshock describe: ") and "nowhere.zarr" in err
+
+
+def test_migrate_a_layout1_store(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import shutil
+
+    path = tmp_path / "old.zarr"
+    shutil.copytree(Path(__file__).parent / "data" / "store_layout1.zarr", path)
+    assert main(["migrate", str(path), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "migrated to layout 2; fingerprint sha256:" in out and "(was sha256:c8ac7e3a" in out
+    assert main(["migrate", str(path), "--quiet"]) == 0
+    assert "already layout 2" in capsys.readouterr().out

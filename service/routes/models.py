@@ -62,16 +62,35 @@ class Dataset(BaseModel):
     variables: dict[str, dict[str, Any]] = Field(
         description="Per variable: units, standard_name, cell_methods."
     )
-    crs: dict[str, Any] = Field(description="name, epsg, is_geographic and the WKT of the grid's CRS.")
+    layout_version: int = Field(default=2, description="Store layout: 1 (one grid), 2 (one group per grid).")
+    grids: dict[str, dict[str, Any]] = Field(
+        default_factory=dict,
+        description=(
+            "Every grid by name, the main grid first: crs, coordinates ('longitude-latitude', 'projected' or "
+            "'rotated'), shape, resolution, bounds (CRS units), lonlat_bounds (its outline transformed to "
+            "longitude-latitude; west > east across the antimeridian), variables, layers, cells_with_data."
+        ),
+    )
+    crs: dict[str, Any] = Field(description="name, epsg, is_geographic and the WKT of the main grid's CRS.")
     resolution: dict[str, Any]
-    bounds: dict[str, float] = Field(description="Outer cell edges in CRS units.")
-    lonlat_bounds: dict[str, float] | None = None
+    bounds: dict[str, float] = Field(description="Outer cell edges of the main grid in its CRS units.")
+    lonlat_bounds: dict[str, float] | None = Field(
+        default=None, description="The main grid's outline as a longitude-latitude box (degrees, WGS 84)."
+    )
     time: dict[str, Any] = Field(description="First and last day, number of days, calendar.")
     years: list[int] = Field(description="First and last year with data.")
     calendar: str
-    layers: list[str] = Field(description="Weight layers for {'weighting': {'layer': NAME}}.")
+    layers: list[str] = Field(
+        description="Weight layers for {'weighting': {'layer': NAME}} (those present on every grid)."
+    )
     fingerprint: str = Field(
-        description="Hash over the store's metadata and contents, recorded at write time."
+        description=(
+            "Hash over the store's decoded values (in a fixed tiling: chunks, shards and codecs do not change "
+            "it) and the metadata that changes them, recorded at write time."
+        )
+    )
+    migrated_from: dict[str, Any] | None = Field(
+        default=None, description="Layout and fingerprint of the store this one was migrated from."
     )
 
 

@@ -23,12 +23,13 @@ and URLs, opening the zarr group, aside locations), ``fingerprint``, ``read`` (S
 
 from __future__ import annotations
 
-from service.store.fingerprint import VerifyResult, compute_fingerprint, verify_store
-from service.store.grids import Grid
+from service.store.fingerprint import CANONICAL_TILE, VerifyResult, compute_fingerprint, verify_store
+from service.store.grids import Grid, is_lonlat_crs
 from service.store.layout import (
     ADD_OFFSET,
     COMPRESSOR_LEVEL,
     COMPRESSOR_NAME,
+    DEFAULT_GRID,
     DEFAULT_LAYOUT,
     ELEVATION_LAYER,
     FILL_VALUE,
@@ -45,15 +46,31 @@ from service.store.layout import (
     VARIABLES,
     Layout,
     RawEncoding,
+    check_grid_name,
     decode,
+    default_grid_name,
 )
-from service.store.location import _exists, _normalise_location
+from service.store.location import _normalise_location
+from service.store.migrate import migrate_store
 from service.store.read import Store, open_store
+from service.store.swap import recover, store_exists
 from service.store.timeaxis import DateTable, _daily_numbers, _date_table, _iso
-from service.store.write import append_store, write_store
+from service.store.write import (
+    add_variables,
+    append_store,
+    find_grid,
+    open_for_check,
+    update_store,
+    write_layer,
+    write_store,
+)
+
+_exists = store_exists  # the name ingest imported before store_exists existed
 
 __all__ = [
     "ADD_OFFSET",
+    "CANONICAL_TILE",
+    "DEFAULT_GRID",
     "COMPRESSOR_LEVEL",
     "COMPRESSOR_NAME",
     "DEFAULT_LAYOUT",
@@ -81,10 +98,21 @@ __all__ = [
     "_exists",
     "_iso",
     "_normalise_location",
+    "add_variables",
     "append_store",
+    "check_grid_name",
     "compute_fingerprint",
     "decode",
+    "default_grid_name",
+    "find_grid",
+    "is_lonlat_crs",
+    "migrate_store",
+    "open_for_check",
     "open_store",
+    "recover",
+    "store_exists",
+    "update_store",
     "verify_store",
+    "write_layer",
     "write_store",
 ]

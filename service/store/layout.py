@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
@@ -53,12 +55,23 @@ COMPRESSOR_LEVEL = 5
 
 TIME_UNITS = "days since 1970-01-01"
 TIME_COORD_CHUNK = 36_525  # a century of day numbers per chunk of the time coordinate, however long the store
-LAYOUT_VERSION = 1
+LAYOUT_VERSION = 2  # 1: one grid, every array at the root; 2: one group per grid, the time axis at the root
+VERSION_ATTR = "wxshock_layout_version"
 FINGERPRINT_ATTR = "wxshock_fingerprint"
+GRIDS_ATTR = "wxshock_grids"  # root attribute: the grid names in their order (the first is the main grid)
+MIGRATED_ATTR = (
+    "wxshock_migrated_from"  # root attribute: {"layout_version": 1, "fingerprint": ...} after migration
+)
+DIGESTS_ATTR = "wxshock_array_digests"  # root attribute: each array's digest at the last write (not hashed)
+DAYS_ATTR = "wxshock_days"  # daily variable attribute: [first, last] day numbers it was given (inclusive)
 MASK_LAYER = "data_mask"
 ELEVATION_LAYER = "elevation"
 GRID_MAPPING = "crs"
-_STATIC_NAMES = {MASK_LAYER, GRID_MAPPING, "x", "y", "time"}
+LATITUDE, LONGITUDE = "lat", "lon"  # optional 2-D (y, x) cell-centre latitudes and longitudes of a grid
+_STATIC_NAMES = {MASK_LAYER, GRID_MAPPING, "x", "y", "time", LATITUDE, LONGITUDE}
+DEFAULT_GRID = "grid"
+GRID_NAME = re.compile(r"[a-z][a-z0-9_]{0,15}")
+_RESERVED_GRID_NAMES = {"time", *VARIABLES, *_STATIC_NAMES, ELEVATION_LAYER}
 _DEFAULT_CALENDARS = ("standard", "gregorian", "proleptic_gregorian")
 
 
@@ -78,22 +91,98 @@ def decode(raw: np.ndarray, enc: RawEncoding) -> np.ndarray:
     return values
 
 
-def _check_layout(group: zarr.Group, location: str) -> None:
-    """Fail clearly when a zarr store is not laid out as wxshock writes it."""
-    names = set(group.array_keys())
-    missing = [n for n in ("x", "y", "time", GRID_MAPPING, MASK_LAYER) if n not in names]
-    if missing or not any(v in names for v in VARIABLES):
+def check_grid_name(name: object) -> str:
+    """A grid name as given, or StoreFormatError saying what a grid name may be."""
+    if not isinstance(name, str) or not GRID_NAME.fullmatch(name) or name in _RESERVED_GRID_NAMES:
         raise StoreFormatError(
-            f"store {location!r} is not a wxshock store: it lacks {missing or list(VARIABLES)!r}; "
-            "write it with 'wxshock ingest'"
+            f"grid name {name!r} is not allowed: a grid name is 1 to 16 characters of a-z, 0-9 and _, starting "
+            f"with a letter, and not one of {sorted(_RESERVED_GRID_NAMES)!r}; give another name"
         )
-    for v in VARIABLES:
-        if v in names:
-            dims = tuple(group[v].metadata.dimension_names or ())
+    return name
+
+
+def default_grid_name(taken: Iterable[str]) -> str:
+    """The first free default grid name: 'grid', then 'grid2', 'grid3', ..."""
+    used = set(taken)
+    if DEFAULT_GRID not in used:
+        return DEFAULT_GRID
+    k = 2
+    while f"{DEFAULT_GRID}{k}" in used:
+        k += 1
+    return f"{DEFAULT_GRID}{k}"
+
+
+@dataclass(frozen=True)
+class StoreLayout:
+    """Where a store's arrays are: layout version, each grid's group path ("" for a v1 store's root), and the
+    grid of each daily variable (in the order of VARIABLES)."""
+
+    version: int
+    grids: dict[str, str]
+    variables: dict[str, str]
+
+    def path(self, grid: str, name: str) -> str:
+        """The array path of ``name`` in grid ``grid``'s group."""
+        prefix = self.grids[grid]
+        return f"{prefix}/{name}" if prefix else name
+
+
+def read_layout(group: zarr.Group, location: str) -> StoreLayout:
+    """The layout of an opened store; StoreFormatError naming what is missing when it is not a wxshock store."""
+    version = group.attrs.get(VERSION_ATTR, 1)
+    if version not in (1, 2):
+        raise StoreFormatError(
+            f"store {location!r} has layout version {version!r}; this wxshock reads versions 1 and 2, "
+            "upgrade wxshock"
+        )
+    if version == 1:
+        grids = {DEFAULT_GRID: ""}
+        members = {DEFAULT_GRID: group}
+    else:
+        names = group.attrs.get(GRIDS_ATTR)
+        if not isinstance(names, list) or not names:
+            raise StoreFormatError(
+                f"store {location!r} (layout 2) has no {GRIDS_ATTR!r} list of grids; rewrite it with wxshock"
+            )
+        grids = {str(n): str(n) for n in names}
+        members = {}
+        subgroups = dict(group.groups())
+        for name in grids:
+            if name not in subgroups:
+                raise StoreFormatError(
+                    f"store {location!r} lists grid {name!r} but has no group {name!r}; rewrite it with wxshock"
+                )
+            members[name] = subgroups[name]
+        if "time" not in set(group.array_keys()):
+            raise StoreFormatError(
+                f"store {location!r} is not a wxshock store: it lacks the time axis 'time'"
+            )
+    variables: dict[str, str] = {}
+    for grid, member in members.items():
+        names_here = set(member.array_keys())
+        required = ("x", "y", GRID_MAPPING, MASK_LAYER) + (("time",) if version == 1 else ())
+        missing = [n for n in required if n not in names_here]
+        here = [v for v in VARIABLES if v in names_here]
+        if missing or not here:
+            where = f"store {location!r}" if version == 1 else f"grid {grid!r} of store {location!r}"
+            raise StoreFormatError(
+                f"{where} is not a wxshock store: it lacks {missing or list(VARIABLES)!r}; "
+                "write it with 'wxshock ingest'"
+            )
+        for v in here:
+            if v in variables:
+                raise StoreFormatError(
+                    f"store {location!r} holds variable {v!r} on two grids ({variables[v]!r} and {grid!r}); "
+                    "a variable lies on one grid; rewrite the store"
+                )
+            dims = tuple(member[v].metadata.dimension_names or ())
             if dims != ("y", "x", "time"):
                 raise StoreFormatError(
                     f"store {location!r}: variable {v!r} has dims {dims!r}, expected ('y', 'x', 'time')"
                 )
+            variables[v] = grid
+    ordered = {v: variables[v] for v in VARIABLES if v in variables}
+    return StoreLayout(version=int(version), grids=grids, variables=ordered)
 
 
 @dataclass(frozen=True)
