@@ -224,8 +224,8 @@ def test_a_real_sigkill_of_an_ingest_leaves_a_store_that_opens_whole(tmp_path: P
 @pytest.mark.s3
 def test_an_object_store_swap_interrupted_after_its_commit_is_finished_on_open(
     tmp_path: Path,
-    s3_server,
-    monkeypatch,  # noqa: F811 - fixture from _support_cluster
+    s3_server,  # noqa: F811 - fixture from _support_cluster
+    monkeypatch,
 ) -> None:
     """S3 has no rename: the old objects are deleted, then the new ones copied. An interruption between the two
     (here an error raised at that step) leaves no store until the next open copies the committed new one in."""

@@ -17,8 +17,8 @@ from service.store.layout import GRID_MAPPING, VARIABLES
 class Grid:
     """A grid of a store: cell centres as 1-D arrays in the grid's CRS (degrees or metres).
 
-    ``is_geographic`` is True only when x and y are longitude and latitude (a geographic CRS that is not
-    derived: rotated-pole coordinates are degrees, but not longitude and latitude). ``lat``/``lon`` are the
+    ``is_geographic`` is the CRS's own (True for a rotated pole too, whose degrees are not longitude and
+    latitude: :func:`is_lonlat_crs` tells those apart). ``lat``/``lon`` are the
     optional (ny, nx) cell-centre latitudes and longitudes a file carried (curvilinear or rotated grids);
     equality ignores them.
     """
@@ -39,12 +39,12 @@ class Grid:
         lat: np.ndarray | None = None,
         lon: np.ndarray | None = None,
     ) -> Grid:
-        """A grid from a pyproj CRS and its cell centres (is_geographic decided by :func:`is_lonlat_crs`)."""
+        """A grid from a pyproj CRS and its cell centres."""
         return cls(
             crs_wkt=crs.to_wkt(),
             x=np.asarray(x, dtype=np.float64),
             y=np.asarray(y, dtype=np.float64),
-            is_geographic=is_lonlat_crs(crs),
+            is_geographic=bool(crs.is_geographic),
             lat=None if lat is None else np.asarray(lat, dtype=np.float64),
             lon=None if lon is None else np.asarray(lon, dtype=np.float64),
         )

@@ -135,7 +135,7 @@ class Store:
                 crs_wkt=crs_wkt,
                 x=np.asarray(arrays["x"][:], dtype=np.float64),
                 y=np.asarray(arrays["y"][:], dtype=np.float64),
-                is_geographic=is_lonlat_crs(pyproj.CRS.from_wkt(crs_wkt)),
+                is_geographic=bool(pyproj.CRS.from_wkt(crs_wkt).is_geographic),
             )
         return out
 
@@ -355,13 +355,10 @@ class Store:
         crs = g.crs()
         arrays = self._grid_arrays[grid]
         xmin, ymin, xmax, ymax = g.bounds()
-        if g.is_geographic:
+        if is_lonlat_crs(crs):
             kind, unit = "longitude-latitude", "degree"
-        elif crs.is_geographic:
-            kind, unit = (
-                "rotated" if "rotated" in crs.to_wkt().lower() or crs.is_derived else "geographic-derived",
-                "degree",
-            )
+        elif crs.is_geographic:  # a derived geographic CRS: CF's rotated pole is the one in use
+            kind, unit = "rotated", "degree"
         else:
             kind = "projected"
             unit = crs.axis_info[0].unit_name if crs.axis_info else "metre"
@@ -375,7 +372,7 @@ class Store:
             "crs": {
                 "name": crs.name,
                 "epsg": crs.to_epsg(),
-                "is_geographic": g.is_geographic,
+                "is_geographic": is_lonlat_crs(crs),  # x and y are longitude and latitude
                 "wkt": g.crs_wkt,
             },
             "coordinates": kind,
