@@ -59,8 +59,15 @@ def _crash_at(step: str, write: Callable[[], object]) -> int:
         except BaseException:  # noqa: BLE001 - any failure is reported by the status
             code = 1
         os._exit(code)
-    _, status = os.waitpid(pid, 0)
-    return os.waitstatus_to_exitcode(status)
+    deadline = time.monotonic() + 300  # bounded: a child stuck after the fork fails the test, not the suite
+    while time.monotonic() < deadline:
+        done, status = os.waitpid(pid, os.WNOHANG)
+        if done:
+            return os.waitstatus_to_exitcode(status)
+        time.sleep(0.02)
+    os.kill(pid, signal.SIGKILL)
+    os.waitpid(pid, 0)
+    raise AssertionError(f"the forked write did not end within 300 s (crash step {step!r})")
 
 
 def _siblings(path: Path) -> list[str]:
