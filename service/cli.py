@@ -1,4 +1,4 @@
-"""The wxshock command: serve, demo, ingest, describe, verify, compute, submit, openapi."""
+"""The wxshock command: serve, demo, ingest, layer, describe, verify, compute, submit, openapi."""
 
 from __future__ import annotations
 
@@ -63,6 +63,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
         [Path(f) for f in args.files],
         args.out,
         variables=list(args.var),
+        grids=list(args.grid),
         utc_offset=args.utc_offset,
         period_stamp=args.period_stamp,
         storage_options=settings.storage_options() if str(args.out).startswith("s3://") else None,
@@ -72,6 +73,26 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     for note in notes:
         print(f"note: {note}", file=sys.stderr)
     print(f"{args.out}: fingerprint {fingerprint}")
+    return 0
+
+
+def cmd_layer(args: argparse.Namespace) -> int:
+    """Remap a raster onto every grid of a store as a named weight layer."""
+    from service.ingest.layers import add_layer
+
+    settings = _settings(args)
+    report = add_layer(
+        args.store,
+        args.name,
+        Path(args.file),
+        args.kind,
+        variable=args.variable,
+        storage_options=settings.storage_options() if str(args.store).startswith("s3://") else None,
+        progress=not args.quiet,
+    )
+    for line in report.lines(args.name):
+        print(line, file=sys.stderr)
+    print(f"{args.store}: fingerprint {report.fingerprint}")
     return 0
 
 
@@ -195,6 +216,14 @@ def build_parser() -> argparse.ArgumentParser:
         "give the daily maximum and minimum of one field)",
     )
     p.add_argument(
+        "--grid",
+        action="append",
+        default=[],
+        metavar="NAME | VARIABLE=NAME",
+        help="name the files' grid in the store (a-z, 0-9, _), or the grid of one variable when the files lie on "
+        "several grids, e.g. prcp=satellite (repeatable; default: the store's equal grid, else grid, grid2, ...)",
+    )
+    p.add_argument(
         "--utc-offset",
         metavar="+HH:MM",
         help="sub-daily data: days run midnight to midnight at this offset from UTC (default UTC)",
@@ -208,6 +237,21 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_ingest)
+
+    p = sub.add_parser("layer", help="add a weight layer to a store from a raster (GeoTIFF, NetCDF, any CRS)")
+    p.add_argument("store", help="store directory or s3:// URL")
+    p.add_argument("name", help='the layer\'s name, e.g. population (then "weighting": {"layer": NAME})')
+    p.add_argument("file", help="a raster GDAL reads: GeoTIFF, NetCDF, ... in any CRS and resolution")
+    p.add_argument(
+        "--kind",
+        required=True,
+        choices=["count", "share"],
+        help="count: a number per raster cell (people), shared among grid cells by overlap area; share: a fraction "
+        "(cropland share), averaged over each grid cell by area",
+    )
+    p.add_argument("--variable", help="the NetCDF variable to read, when the file holds several")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_layer)
 
     p = sub.add_parser("describe", help="print what a store holds")
     p.add_argument("store")

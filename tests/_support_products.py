@@ -305,3 +305,40 @@ def rotated_pole_file(directory: Path, *, pole: dict | None = None, lonlat_pole:
     path = directory / "rotated.nc"
     ds.to_netcdf(path)
     return Written(files=[path], values=values, times=times)
+
+
+def temperature_product(
+    directory: Path, years: tuple[int, ...], *, origin: tuple[float, float] = (30.0, -10.0), cell: float = 0.2,
+    ny: int = 2, nx: int = 2, seed: int = 6, with_precipitation: bool = False,
+) -> Written:  # fmt: skip
+    """Daily tmax and tmin from another product on a coarser latitude-longitude grid: files tmax_YEAR.nc and
+    tmin_YEAR.nc with tasmax/tasmin in K and CF cell_methods (CMIP-style names, from memory); with
+    ``with_precipitation`` also prcp_YEAR.nc (pr in kg m-2 s-1)."""
+    directory.mkdir(parents=True, exist_ok=True)
+    lon = origin[0] + cell * (np.arange(nx) + 0.5)
+    lat = origin[1] + cell * (np.arange(ny) + 0.5)
+    times = pd.date_range(f"{years[0]}-01-01", f"{years[-1]}-12-31", freq="D").values
+    fields = _fields(times.size, ny, nx, seed)
+    values = {"tmax": fields["tmax"], "tmin": fields["tmin"]}
+    kinds = [("tmax", "tasmax", "time: maximum"), ("tmin", "tasmin", "time: minimum")]
+    if with_precipitation:
+        values["prcp"] = fields["prcp"]
+        kinds.append(("prcp", "pr", "time: mean"))
+    files = []
+    for year in years:
+        mask = pd.DatetimeIndex(times).year == year
+        for variable, name, methods in kinds:
+            precipitation = variable == "prcp"
+            ds = xr.Dataset(
+                {name: (("time", "lat", "lon"),
+                        values[variable][mask] / 86400.0 if precipitation else values[variable][mask] + 273.15,
+                        {"units": "kg m-2 s-1" if precipitation else "K",
+                         "standard_name": "precipitation_flux" if precipitation else "air_temperature",
+                         "cell_methods": methods})},
+                coords={"time": times[mask], "lat": ("lat", lat, {"units": "degrees_north", "standard_name": "latitude"}),
+                        "lon": ("lon", lon, {"units": "degrees_east", "standard_name": "longitude"})},
+            )  # fmt: skip
+            path = directory / f"{variable}_{year}.nc"
+            ds.to_netcdf(path)
+            files.append(path)
+    return Written(files=files, values=values, times=times)

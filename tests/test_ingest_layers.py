@@ -236,3 +236,73 @@ def test_raster_reading_refusals(tmp_path: Path) -> None:
         dst.write(np.ones((1, 2, 2), dtype=np.float32))
     with pytest.raises(IngestError, match=r"has no CRS"):
         open_raster(tmp_path / "nocrs.tif")
+
+
+# --- into a store ---------------------------------------------------------------------------------------------------
+
+
+def test_a_layer_on_every_grid_of_a_store(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from service.cli import main as wxshock
+    from service.ingest import ingest_files
+    from service.store import open_store, verify_store
+    from tests._support_products import precipitation_only_product, temperature_product
+
+    rain = precipitation_only_product(tmp_path / "rain", (2001,), origin=(-150.0, -40.0), ny=8)  # 0.05 degree
+    heat = temperature_product(tmp_path / "heat", (2001,), origin=(-150.0, -40.0))  # 0.2 degree
+    store_path = tmp_path / "S.zarr"
+    ingest_files(rain.files + heat.files, store_path, progress=False)
+    # people on a 0.01-degree raster over the whole region, all of them in its western half
+    people = np.zeros((40, 40))
+    people[:, :20] = 5.0
+    raster = write_geotiff(tmp_path / "people.tif", people, WGS84, -150.0, -39.6, 0.01)
+    before = open_store(store_path).fingerprint
+    assert wxshock(["layer", str(store_path), "population", str(raster), "--kind", "count", "--quiet"]) == 0
+    captured = capsys.readouterr()
+    assert "layer 'population' on grid 'grid': count, 4,000 in all" in captured.err
+    assert "fingerprint sha256:" in captured.out
+    store = open_store(store_path)
+    assert store.fingerprint != before and verify_store(store_path).ok  # the layer is part of the fingerprint
+    for grid in store.grids:
+        counts = store.read_layer("population", grid) * ground_areas(store.grids[grid])
+        assert np.nansum(counts) == pytest.approx(4000.0, rel=1e-6)
+        assert np.all(counts[:, counts.shape[1] // 2 :] == 0)  # nobody in the eastern half
+    with pytest.raises(SystemExit):  # argparse refuses the kind and exits 2
+        wxshock(["layer", str(store_path), "population", str(raster), "--kind", "people", "--quiet"])
+    assert "invalid choice: 'people'" in capsys.readouterr().err
+    far = write_geotiff(tmp_path / "far.tif", people, WGS84, 10.0, 50.0, 0.01)
+    assert wxshock(["layer", str(store_path), "farms", str(far), "--kind", "share", "--quiet"]) == 2
+    assert "does not cover any cell of store" in capsys.readouterr().err
+
+
+def test_a_layer_weights_a_request(tmp_path: Path) -> None:
+    # The layer as the request's weighting: a community over a whole region whose people all live in its western
+    # column takes the western cells' values only.
+    from service.ingest import ingest_files
+    from service.ingest.layers import add_layer
+    from service.pipeline import run_series
+    from service.schemas import SeriesRequest
+    from service.settings import Settings
+    from service.store import open_store
+    from tests._support_products import temperature_product
+
+    heat = temperature_product(tmp_path / "heat", (2001,), origin=(-150.0, -40.0), with_precipitation=True)
+    store_path = tmp_path / "T.zarr"
+    ingest_files(heat.files, store_path, progress=False)
+    people = np.zeros((40, 40))
+    people[:, :20] = 5.0
+    report = add_layer(str(store_path), "population", write_geotiff(tmp_path / "p.tif", people, WGS84, -150.0, -39.6,
+                                                                    0.01), "count")  # fmt: skip
+    assert report.grids["grid"].total == pytest.approx(4000.0, rel=1e-6)
+    ring = [[-150.0, -40.0], [-149.6, -40.0], [-149.6, -39.6], [-150.0, -39.6], [-150.0, -40.0]]
+    feature = {
+        "type": "Feature",
+        "id": "all",
+        "properties": {},
+        "geometry": {"type": "Polygon", "coordinates": [ring]},
+    }
+    request = SeriesRequest(features=feature, variables=["tmax"], weighting={"layer": "population"})
+    frame = run_series(request, open_store(store_path), Settings(data_dir=str(tmp_path))).frame
+    # the western column's two cells, weighted by their people (their areas differ by cos(latitude))
+    area = ground_areas(open_store(store_path).grids["grid"])[::-1, 0]  # the file's rows run south to north
+    west = (heat.values["tmax"][:, :, 0] * area).sum(axis=1) / area.sum()
+    assert np.max(np.abs(frame["tmax"].to_numpy() - west)) < 0.06

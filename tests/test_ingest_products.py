@@ -53,7 +53,7 @@ def test_lambert_1km_product_with_its_365_day_leap_years(tmp_path: Path) -> None
     store = open_store(tmp_path / "lcc.zarr")
     assert store.calendar == "standard" and store.n_times == 365 + 366
     assert store.describe()["time"]["end"] == "2004-12-31"
-    assert store._group.attrs["wxshock_time_convention"] == "leap_years_drop_dec31"  # noqa: SLF001
+    assert store.describe()["notes"]["wxshock_note_time_convention"] == "leap_years_drop_dec31"
     assert any("31 December dropped in leap years: 1 day(s) stored as missing" in n for n in notes)
     assert store.grid.crs().equals(pyproj.CRS.from_cf(PRODUCT_LCC))
     np.testing.assert_allclose(store.grid.x, 1_200_000.0 + 1000.0 * np.arange(5))  # km -> m
@@ -144,10 +144,10 @@ def test_hourly_reanalysis_becomes_daily(tmp_path: Path, explicit: bool) -> None
     assert_close(stored(tmp_path / "era.zarr", "tmax"), tmax[:, :, order])
     assert_close(stored(tmp_path / "era.zarr", "tmin"), tmin[:, :, order])
     assert_close(stored(tmp_path / "era.zarr", "prcp"), prcp[:3][:, :, order])
-    record = store._group.attrs["wxshock_ingest_prcp"]  # noqa: SLF001
+    record = store._array("prcp").attrs["wxshock_ingest"]  # noqa: SLF001
     assert "daily total of 24 hourly values of 'tp' ('m')" in record and "midnight to midnight UTC" in record
     assert "ending at its stamp" in record
-    assert "daily maximum of 24 hourly values of 't2m' ('K')" in store._group.attrs["wxshock_ingest_tmax"]  # noqa: SLF001
+    assert "daily maximum of 24 hourly values of 't2m' ('K')" in store._array("tmax").attrs["wxshock_ingest"]  # noqa: SLF001
 
 
 def test_hourly_days_at_a_fixed_offset_from_utc(tmp_path: Path) -> None:
@@ -163,7 +163,7 @@ def test_hourly_days_at_a_fixed_offset_from_utc(tmp_path: Path) -> None:
     ny, nx = t2m.shape[1:]
     want = daily_reference(stamps, t2m, "max", 6).to_numpy().reshape(-1, ny, nx) - 273.15
     assert_close(stored(tmp_path / "local.zarr", "tmax"), want[:, :, [3, 4, 5, 0, 1, 2]])
-    assert "UTC+06:00" in store._group.attrs["wxshock_ingest_tmax"]  # noqa: SLF001
+    assert "UTC+06:00" in store._array("tmax").attrs["wxshock_ingest"]  # noqa: SLF001
 
 
 def test_hourly_packed_int16_with_fill_values(tmp_path: Path) -> None:
@@ -189,7 +189,9 @@ def test_hourly_packed_int16_with_fill_values(tmp_path: Path) -> None:
     want[1, 2, 2] = np.nan  # 350 K at 16:00 on 2 January lies beyond valid_range
     assert_close(got, want[:, :, [3, 4, 5, 0, 1, 2]])
     assert np.isnan(got[1, 1, 4]) and not np.isnan(got[0, 1, 4])
-    assert np.isnan(got[1, 2, 5]) and not np.isnan(got[0, 2, 5])  # the out-of-range hour makes its day missing
+    assert np.isnan(got[1, 2, 5]) and not np.isnan(
+        got[0, 2, 5]
+    )  # the out-of-range hour makes its day missing
 
 
 def test_hourly_files_with_a_missing_hour_between_them(tmp_path: Path) -> None:

@@ -381,3 +381,94 @@ def _unwrap_rings(rx: np.ndarray, raster: Raster) -> np.ndarray:
     centre = unwrapped.mean(axis=1, keepdims=True)
     turns = np.floor((centre - west) / 360.0)
     return unwrapped - 360.0 * turns
+
+
+# --- into a store -------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class LayerReport:
+    """What ``wxshock layer`` did on each grid of a store."""
+
+    fingerprint: str
+    grids: dict[str, Remapped]
+
+    def lines(self, name: str) -> list[str]:
+        """One line per grid, for the command's output."""
+        out = []
+        for grid, result in self.grids.items():
+            text = f"layer {name!r} on grid {grid!r}: {result.kind}"
+            if result.kind == "count":
+                text += f", {result.total:,.6g} in all on the grid (kept as a density per km2)"
+            if result.cells_partly_outside:
+                text += f"; {result.cells_partly_outside} cell(s) only partly under the raster left unknown"
+            if result.cells_without_data:
+                text += f"; {result.cells_without_data} cell(s) without raster data"
+            out.append(text)
+        return out
+
+
+def add_layer(
+    location: str,
+    name: str,
+    raster_path: Any,
+    kind: str,
+    *,
+    variable: str | None = None,
+    storage_options: dict | None = None,
+    progress: bool = False,
+) -> LayerReport:
+    """Remap a raster onto every grid of a store and write it there as the weight layer ``name``."""
+    import hashlib
+    from pathlib import Path
+
+    from service.errors import StoreError
+    from service.ingest.readers import open_raster
+    from service.store import open_store, write_layer
+
+    if kind not in KINDS:
+        raise IngestError(f"--kind {kind!r} is not one of {list(KINDS)!r}: say count (people) or share (fraction)",
+                          field="kind")  # fmt: skip
+    path = Path(raster_path)
+    raster = open_raster(path, variable)
+    try:
+        store = open_store(location, storage_options=storage_options)
+        grids = dict(store.grids)
+    except StoreError as exc:
+        raise IngestError(f"store {str(location)!r} cannot take a layer: {exc.detail}") from exc
+    results = {grid_name: remap_layer(raster, grid, kind) for grid_name, grid in grids.items()}
+    empty = [g for g, r in results.items() if np.isnan(r.values).all()]
+    if len(empty) == len(results):
+        raise IngestError(
+            f"raster {str(path)!r} does not cover any cell of store {str(location)!r} with data (raster CRS "
+            f"{raster.crs.name!r}); check that it is the right raster and that its CRS is right"
+        )
+    hasher = hashlib.sha256()
+    with path.open("rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            hasher.update(block)
+    digest = hasher.hexdigest()
+    units = raster.units.strip()
+    attrs = {
+        "long_name": f"weight layer {name} ({kind})",
+        "units": (f"{units} km-2" if units else "km-2") if kind == "count" else (units or "1"),
+        "wxshock_layer_kind": kind,
+        "wxshock_layer_source": f"{path.name} (sha256 {digest[:16]})",
+        "wxshock_layer_method": "count shared by overlap area, per km2 of ground"
+        if kind == "count"
+        else "mean weighted by ground area of overlap",
+    }
+    try:
+        fingerprint = write_layer(
+            location,
+            name,
+            {g: r.values for g, r in results.items()},
+            attrs=attrs,
+            storage_options=storage_options,
+            progress=progress,
+        )
+    except StoreError as exc:
+        raise IngestError(
+            f"layer {name!r} could not be written, the store is unchanged: {exc.detail}"
+        ) from exc
+    return LayerReport(fingerprint=fingerprint, grids=results)
