@@ -344,3 +344,24 @@ def test_running_totals_through_the_day_are_refused(tmp_path: Path) -> None:
     # and the per-step amounts themselves pass
     files2, *_ = hourly_reanalysis(tmp_path / "in2", "2001-01-01", 4, 1)
     ingest_files(files2, tmp_path / "ok.zarr", progress=False)
+
+
+def test_hourly_batches_append_when_each_repeats_the_last_file_of_the_one_before(tmp_path: Path) -> None:
+    # An hour-ending accumulation splits the day between two files; a batch that starts again with the previous
+    # batch's last file makes that day whole, and the days the store already holds are left out.
+    files, t2m, tp, stamps = hourly_reanalysis(tmp_path / "in", "2001-01-01", 2, 3)
+    store_path = tmp_path / "era.zarr"
+    ingest_files(files[:2], store_path, progress=False)
+    assert open_store(store_path).describe()["time"]["end"] == "2001-01-03"
+    notes: list[str] = []
+    ingest_files(files[1:], store_path, progress=False, notes=notes)
+    # batch 1 (1-4 January) stored 1-3 January; batch 2 (3-6 January) holds 3-5 January whole
+    assert "prcp: left out 2001-01-03, which the store already holds" in notes
+    store = open_store(store_path)
+    assert store.describe()["time"]["end"] == "2001-01-05"
+    ny, nx = t2m.shape[1:]
+    prcp = daily_reference(stamps, tp, "sum", -1).to_numpy().reshape(-1, ny, nx) * 1000.0
+    assert_close(stored(store_path, "prcp"), prcp[:5][:, :, [3, 4, 5, 0, 1, 2]])
+    once = tmp_path / "once.zarr"
+    ingest_files(files, once, progress=False)
+    assert open_store(once).fingerprint == store.fingerprint  # the same store as ingesting all files at once
