@@ -275,6 +275,19 @@ def test_rotated_pole_grid(tmp_path: Path) -> None:
     np.testing.assert_allclose(to_lonlat.transform(0.0, 0.0), (18.0, 50.75), atol=1e-9)  # the rotated origin
     np.testing.assert_allclose(store.grid.x, -0.33 + 0.11 * np.arange(6))  # rotated longitudes, as written
     assert_close(stored(tmp_path / "rot.zarr", "tmax"), written.values["tmax"])
+    # describe gives the outline in longitude/latitude, never the rotated coordinates: the cell corners carried by
+    # the independent rotation bound it
+    from tests._support_products import rotate_to_geographic
+
+    edges_x, edges_y = np.meshgrid(-0.385 + 0.11 * np.arange(7), -0.275 + 0.11 * np.arange(6))
+    lon, lat = rotate_to_geographic(edges_x, edges_y, -162.0, 39.25)
+    box = store.describe()["lonlat_bounds"]
+    assert box["west"] == pytest.approx(lon.min(), abs=1e-3) and box["east"] == pytest.approx(
+        lon.max(), abs=1e-3
+    )
+    assert box["south"] == pytest.approx(lat.min(), abs=1e-3) and box["north"] == pytest.approx(
+        lat.max(), abs=1e-3
+    )
 
 
 def test_rotated_pole_that_its_own_latitude_longitude_contradict(tmp_path: Path) -> None:
