@@ -28,6 +28,11 @@ from tests import _support_server as server_support  # noqa: E402
 
 RESULTS = ROOT / "bench" / "RESULTS.md"
 HEADING = "## `wxshock submit` start-up (issue 14, `bench/bench_submit.py`)"
+# `wxshock` itself, after saying which tree's service package it runs (imports nothing else first).
+_WRAPPER = (
+    "import sys, importlib.util; print(importlib.util.find_spec('service').origin, flush=True); "
+    "from service.cli import main; sys.argv[0] = 'wxshock'; raise SystemExit(main(sys.argv[1:]))"
+)
 
 
 def one_submit(tree: Path, server: str, store_dir: Path, out: Path) -> tuple[float, float]:
@@ -35,14 +40,20 @@ def one_submit(tree: Path, server: str, store_dir: Path, out: Path) -> tuple[flo
     env = {k: v for k, v in os.environ.items() if not k.startswith("WXSHOCK_")}
     env["PYTHONPATH"] = str(tree)
     args = [
-        sys.executable, "-m", "service.cli", "submit", "--server", server,
+        sys.executable, "-c", _WRAPPER, "submit", "--server", server,
         "--request", str(ROOT / "examples" / "request.json"),
         "--features", str(store_dir / "communities.geojson"), "--out", str(out),
     ]  # fmt: skip
     start = time.perf_counter()
-    process = subprocess.Popen(args, env=env, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    # Run from outside every tree: `python -m` puts the working directory before PYTHONPATH.
+    process = subprocess.Popen(
+        args, env=env, cwd=out.parent, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True
+    )
     accepted = float("nan")
     assert process.stdout is not None
+    first = process.stdout.readline()  # the tree the code came from (printed by the wrapper below)
+    if not first.startswith(str(tree)):
+        raise RuntimeError(f"the submit ran {first.strip()!r}, not the code of {tree}")
     for line in process.stdout:
         if "accepted" in line and accepted != accepted:
             accepted = time.perf_counter() - start

@@ -601,7 +601,7 @@ def submit_files(
     ``.provenance.json`` beside it.
     """
     # Not service.pipeline (dask, zarr, xarray: 5 s of imports): the server's bytes are written as they come.
-    from service.encode.files import write_atomically
+    from service.files import write_atomically
 
     fmt = job_format_from_suffix(out_path.suffix)
     try:
