@@ -20,8 +20,11 @@ Usage::
 
 from __future__ import annotations
 
+import contextlib
 import fcntl
+import functools
 import hashlib
+import http.server
 import json
 import os
 import re
@@ -30,6 +33,7 @@ import signal
 import subprocess
 import tarfile
 import tempfile
+import threading
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -39,14 +43,15 @@ import httpx
 import pytest
 
 from service import __version__
-from tests._support_packaging import REPO, clean_env, host_pins
+from tests._support_packaging import CACHE, REPO, clean_env, fill_wheelhouse, host_pins, requirements
 from tests._support_tools import apt_install
 
 DOCKERD = "/usr/sbin/dockerd"
 DOCKER = "/usr/bin/docker"  # Debian's client, the same release as its engine (a newer client may lie on PATH)
 COMPOSE = "/usr/bin/docker-compose"  # Debian's docker-compose 1.29
 PACKAGES = ("docker.io", "docker-compose", "debootstrap")
-CACHE = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache") / "wxshock-tests"
+# A loopback address of the tests' own for the wheelhouse server (see serve_wheelhouse).
+WHEELHOUSE_ADDRESS = ("127.14.0.14", 8014)
 BASE_TAG = "wxshock-test-base:bookworm"
 BASE_TAR = "bookworm-python3.tar"
 CA_LABEL = "org.wxshock.ca-sha256"
@@ -334,18 +339,59 @@ def base_image(engine: Engine) -> str:
     return BASE_TAG
 
 
+@contextlib.contextmanager
+def serve_wheelhouse(directory: Path) -> Iterator[str]:
+    """The wheelhouse as a find-links page over HTTP on the loopback, for pip inside the build.
+
+    The address stays the same from run to run (a loopback address of its own), because the URL is a build
+    argument of the dependency layer: a new port each time would rebuild that layer every time.
+    """
+    handler = functools.partial(_QuietFiles, directory=str(directory))
+    try:
+        server = http.server.ThreadingHTTPServer(WHEELHOUSE_ADDRESS, handler)
+    except OSError:  # taken (another session builds right now): any free port, at the cost of the layer cache
+        server = http.server.ThreadingHTTPServer((WHEELHOUSE_ADDRESS[0], 0), handler)
+    thread = threading.Thread(target=server.serve_forever, name="wheelhouse", daemon=True)
+    thread.start()
+    try:
+        host, port = server.server_address[:2]
+        yield f"http://{host}:{port}/"
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join(10)
+
+
+class _QuietFiles(http.server.SimpleHTTPRequestHandler):
+    """Static files without a log line per request."""
+
+    def log_message(self, format: str, *args: object) -> None:  # noqa: A002 - the base class's name
+        """Say nothing."""
+
+
 def build_image(engine: Engine, base: str, tag: str = IMAGE_TAG) -> str:
-    """docker/Dockerfile built from the repository on ``base``, pinned to the host's versions."""
+    """docker/Dockerfile built from the repository on ``base``, pinned to the host's versions.
+
+    pip inside the build takes every wheel from the tests' wheelhouse (filled from the package index once per
+    machine), not from the index: a rebuild of the dependency layer then costs the install, not the download.
+    """
+    pins = host_pins()
     started = time.monotonic()
-    done = engine.docker(
-        "build", "--progress=plain", "--network", "host", "--file", str(REPO / "docker" / "Dockerfile"),
-        "--build-arg", f"BASE={base}", "--build-arg", "CONSTRAINTS=" + " ".join(host_pins()),
-        "--tag", tag, str(REPO),
-        timeout=1500, check=False,
-    )  # fmt: skip
-    (CACHE / "last-build.log").write_text(done.stdout + done.stderr)  # which steps ran, which came from cache
+    wheels = fill_wheelhouse(requirements(build=True), pins)
+    engine.timings["wheelhouse_s"] = time.monotonic() - started
+    started = time.monotonic()
+    log = CACHE / "last-build.log"  # written as the build goes: which steps ran, which came from the cache
+    with serve_wheelhouse(wheels) as url, open(log, "w") as out:
+        done = subprocess.run(
+            [DOCKER, "build", "--progress=plain", "--network", "host", "--file", str(REPO / "docker" / "Dockerfile"),
+             "--build-arg", f"BASE={base}", "--build-arg", "CONSTRAINTS=" + " ".join(pins),
+             "--build-arg", "PIP_NO_INDEX=1", "--build-arg", f"PIP_FIND_LINKS={url}",
+             "--tag", tag, str(REPO)],
+            env=engine.env, stdout=out, stderr=subprocess.STDOUT, timeout=1500,
+        )  # fmt: skip
     if done.returncode != 0:
-        raise RuntimeError(f"docker build failed ({done.returncode}):\n{done.stderr[-4000:]}")
+        tail = "\n".join(log.read_text(errors="replace").splitlines()[-60:])
+        raise RuntimeError(f"docker build failed ({done.returncode}); the end of {log}:\n{tail}")
     engine.timings["build_s"] = time.monotonic() - started
     return tag
 

@@ -11,6 +11,7 @@ for byte with the host's.
 
 from __future__ import annotations
 
+import fcntl
 import importlib.metadata
 import os
 import re
@@ -23,6 +24,9 @@ from pathlib import Path
 from packaging.requirements import Requirement
 
 REPO = Path(__file__).resolve().parents[1]
+# Kept between test sessions on this machine: the wheelhouse below, the container tests' engine and base image.
+CACHE = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache") / "wxshock-tests"
+WHEELHOUSE = CACHE / "wheels"
 # What a wheel is built from: pyproject.toml names README.md as the readme, MANIFEST.in grafts the data files.
 PACKAGE_SOURCES = ("pyproject.toml", "README.md", "MANIFEST.in", "service")
 # Distributions of the service extra that the light client install must not bring (pyproject.toml).
@@ -45,10 +49,7 @@ def host_pins(extras: tuple[str, ...] = ("service",)) -> list[str]:
     Walks pyproject.toml's requirements and, through the installed metadata, theirs in turn, so the pins change
     only when one of those does (not when someone installs an unrelated package on the machine).
     """
-    project = tomllib.loads((REPO / "pyproject.toml").read_text(encoding="utf-8"))["project"]
-    pending = [Requirement(line) for line in project["dependencies"]]
-    for extra in extras:
-        pending += [Requirement(line) for line in project["optional-dependencies"][extra]]
+    pending = [Requirement(line) for line in requirements(extras, build=True)]
     pins: dict[str, str] = {}
     while pending:
         requirement = pending.pop()
@@ -67,6 +68,46 @@ def host_pins(extras: tuple[str, ...] = ("service",)) -> list[str]:
             if needed.marker is None or any(needed.marker.evaluate({"extra": e}) for e in wanted):
                 pending.append(needed)
     return sorted(pins.values())
+
+
+def requirements(extras: tuple[str, ...] = ("service",), *, build: bool = False) -> list[str]:
+    """pyproject.toml's requirement lines: the base install, the extras, and (``build``) what builds the wheel."""
+    document = tomllib.loads((REPO / "pyproject.toml").read_text(encoding="utf-8"))
+    project = document["project"]
+    lines = list(project["dependencies"])
+    for extra in extras:
+        lines += project["optional-dependencies"][extra]
+    if build:
+        lines += [*document["build-system"]["requires"], "wheel"]
+    return lines
+
+
+def fill_wheelhouse(lines: list[str], pins: list[str]) -> Path:
+    """The wheels of ``lines`` at the pinned versions, with theirs, in the wheelhouse; only missing ones fetched.
+
+    Fresh environments and the image's build install from it (``--no-index --find-links``), so a run
+    downloads each wheel once per machine rather than once per install.
+    """
+    WHEELHOUSE.mkdir(parents=True, exist_ok=True)
+    constraints = WHEELHOUSE.parent / f"pins-{os.getpid()}.txt"
+    constraints.write_text("\n".join(pins) + "\n", encoding="utf-8")
+    base = [sys.executable, "-m", "pip", "download", "--quiet", "--only-binary=:all:", "--dest", str(WHEELHOUSE),
+            "--find-links", str(WHEELHOUSE), "--constraint", str(constraints), *lines]  # fmt: skip
+    try:
+        with open(WHEELHOUSE.parent / "wheels.lock", "w") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX)  # one session fills it at a time
+            local = subprocess.run(
+                [*base, "--no-index"], capture_output=True, text=True, timeout=PIP_TIMEOUT_S
+            )
+            if local.returncode != 0:  # something is missing: the package index brings it
+                fetched = subprocess.run(
+                    base, capture_output=True, text=True, timeout=PIP_TIMEOUT_S, env=clean_env()
+                )
+                if fetched.returncode != 0:
+                    raise RuntimeError(f"pip download failed:\n{fetched.stderr[-3000:]}")
+    finally:
+        constraints.unlink(missing_ok=True)
+    return WHEELHOUSE
 
 
 def package_files(root: Path) -> set[str]:
