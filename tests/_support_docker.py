@@ -2,9 +2,11 @@
 
 The registry's base images cannot be pulled here, so the base is made locally: debootstrap lays out Debian
 bookworm with python3 and python3-venv (once per machine: the tree is kept as a tar file in the cache), and
-``docker import`` turns it into an image that carries this machine's CA bundle, so that pip inside the build
-reaches the package registry as the host's pip does. The image is then built from docker/Dockerfile with
-``--build-arg BASE=`` that base and the host's installed versions as pins.
+``docker import`` turns it into an image that carries this machine's CA bundle, so that pip inside a build
+reaches the package index as the host's pip does. The image is then built from docker/Dockerfile with
+``--build-arg BASE=`` that base, the host's installed versions as pins, and the wheels from the tests'
+wheelhouse (tests/_support_packaging.py), served on the loopback: the host's pip fetches each wheel once per
+machine, and a rebuild of the dependency layer costs the install only.
 
 The engine is Debian's ``dockerd`` (package docker.io), started by the session fixture on a socket and state
 directories of its own, with no default bridge and no iptables rules: builds use the host's network, and
