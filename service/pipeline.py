@@ -15,6 +15,8 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import pyproj
+from scipy import sparse
 
 from service import __version__, cluster, request_text
 from service.aggregate import aggregate
@@ -29,7 +31,19 @@ from service.errors import (
 )
 from service.geometry import ParsedFeatures, Weights, compute_weights, parse_features
 from service.indicators.base import VARIABLES, DailySeries, snap_daily, snap_decimals
-from service.indicators.table import add_warning_notes, compute_table, plan_indicators, resolve_request
+from service.indicators.table import (
+    IndicatorTable,
+    RawValues,
+    add_warning_notes,
+    cell_groups,
+    compute_cell_values,
+    compute_table,
+    compute_table_from_cells,
+    concat_raw,
+    methods_statement,
+    plan_indicators,
+    resolve_request,
+)
 from service.indicators.windows import ResolvedEvents, compute_event_table, resolve_events
 from service.prepared import Prepared, skipped_of, skipped_warnings, without_shapes
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
@@ -92,13 +106,21 @@ def provenance(
         "skipped": list(skipped or []),
     }
     request["dataset"] = store.name
-    return {
+    document = {
         "dataset": store.name,
         "fingerprint": store.fingerprint,
         "software": f"wxshock {__version__}",
         "request_hash": request_hash(resolved, store.fingerprint),
         "request": request,
     }
+    if isinstance(resolved, IndicatorRequest):
+        document["methods"] = methods_statement(resolved, snap_places(store, needed_variables(resolved)))
+    return document
+
+
+def snap_places(store: Store, variables: tuple[str, ...]) -> dict[str, int]:
+    """The decimals each variable's daily means are snapped to (service.indicators.base.snap_decimals)."""
+    return {v: snap_decimals(store.encoding(v).scale_factor, store.encoding(v).add_offset) for v in variables}
 
 
 def _check_years(years: tuple[int, int], settings: Settings) -> None:
@@ -333,14 +355,14 @@ def run(
         if cancelled is not None and cancelled():
             raise RunCancelledError(f"cancelled after {done} of {total} features")
         batch = take_weights(weights, rows)
-        # The indicators take tmean from tmax and tmin themselves; not computing the Dataset's tmean saves a
-        # quarter of the series moved back from a dask cluster (and the work of making it).
-        daily_lazy = aggregate(store, batch, variables=variables, time=span).drop_vars(
-            "tmean", errors="ignore"
-        )
-        (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
-        daily = _daily_series(daily_ds, store, span, np.asarray(batch.latitude))
-        table = compute_table(daily, list(batch.feature_ids), [properties[i] for i in rows], resolved)
+        batch_properties = [properties[i] for i in rows]
+        if resolved.aggregation == "cells":
+            table = cells_table(
+                store, batch, batch_properties, resolved, span, variables, settings, batch_size
+            )
+        else:
+            daily = _aggregated_daily(store, batch, span, variables, settings)
+            table = compute_table(daily, list(batch.feature_ids), batch_properties, resolved)
         frames.append(_feature_columns(table.frame, weights, rows))
         warnings.extend(table.warnings)
         done += len(rows)
@@ -996,6 +1018,79 @@ class _Skipped:
     """A holder of skipped entries, as skipped_of reads them."""
 
     skipped: list[dict[str, Any]]
+
+
+def _aggregated_daily(
+    store: Store, weights: Weights, span: slice, variables: tuple[str, ...], settings: Settings
+) -> DailySeries:
+    """The weighted daily means of the rows of ``weights`` over ``span``, computed, snapped, as a DailySeries."""
+    # The indicators take tmean from tmax and tmin themselves; not computing the Dataset's tmean saves a
+    # quarter of the series moved back from a dask cluster (and the work of making it).
+    daily_lazy = aggregate(store, weights, variables=variables, time=span).drop_vars("tmean", errors="ignore")
+    (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
+    return _daily_series(daily_ds, store, span, np.asarray(weights.latitude))
+
+
+def cell_centres_lonlat(store: Store, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Longitude and latitude (degrees, WGS84) of the centres of grid cells ``cells`` (iy * nx + ix)."""
+    grid = store.grid
+    iy, ix = np.divmod(np.asarray(cells, dtype=np.int64), grid.shape[1])
+    x, y = np.asarray(grid.x)[ix], np.asarray(grid.y)[iy]
+    if grid.is_geographic:
+        return x.astype(np.float64), y.astype(np.float64)
+    to_lonlat = pyproj.Transformer.from_crs(grid.crs(), pyproj.CRS.from_epsg(4326), always_xy=True)
+    lon, lat = to_lonlat.transform(x, y)
+    return np.asarray(lon, dtype=np.float64), np.asarray(lat, dtype=np.float64)
+
+
+def cells_table(
+    store: Store,
+    batch: Weights,
+    properties: list[dict | None],
+    resolved: IndicatorRequest,
+    span: slice,
+    variables: tuple[str, ...],
+    settings: Settings,
+    cells_per_batch: int = DEFAULT_BATCH_FEATURES,
+) -> IndicatorTable:
+    """Aggregation "cells": each cell the features touch gets its own daily series and indicator values
+    (cells in batches of ``cells_per_batch``), then each feature's values are the weighted means of its cells'.
+
+    A cell's series is the aggregation of a pseudo-feature with weight 1 on that cell alone, so it is the
+    stored value (snapped as every daily mean); SPEI's radiation uses the cell centre's latitude. The
+    features' weights (area, or area times a layer) weigh the cell values: see
+    service.indicators.table.combine_cells for cells without a value.
+    """
+    matrix = batch.matrix.tocsr()
+    cells = np.unique(matrix.indices[matrix.data > 0]).astype(np.int64)
+    if not cells.size:  # no feature of the batch has a cell (skipped features): their rows stay null
+        daily = _aggregated_daily(store, batch, span, variables, settings)
+        return compute_table(daily, list(batch.feature_ids), [p or {} for p in properties], resolved)
+    ny, nx = store.grid.shape
+    groups = cell_groups(batch.feature_ids, properties, resolved)
+    parts: list[list[RawValues]] = [[] for _ in groups]
+    for start in range(0, cells.size, cells_per_batch):
+        chunk = cells[start : start + cells_per_batch]
+        lon, lat = cell_centres_lonlat(store, chunk)
+        one = np.ones(chunk.size)
+        pseudo = Weights(
+            matrix=sparse.csr_matrix((one, (np.arange(chunk.size), chunk)), shape=(chunk.size, ny * nx)),
+            feature_ids=[f"cell-{c}" for c in chunk],
+            area_km2=one,
+            n_cells=np.ones(chunk.size, dtype=np.int64),
+            coverage=one,
+            latitude=lat,
+            longitude=lon,
+            key=f"cells:{hashlib.sha256(chunk.tobytes()).hexdigest()[:24]}",
+            weighting=batch.weighting,
+        )
+        daily = _aggregated_daily(store, pseudo, span, variables, settings)
+        for values, raw in zip(parts, compute_cell_values(daily, resolved, groups), strict=True):
+            values.append(raw)
+    cell_values = [concat_raw(p) for p in parts]
+    return compute_table_from_cells(
+        cell_values, matrix[:, cells], list(batch.feature_ids), [p or {} for p in properties], resolved
+    )
 
 
 def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFrame:

@@ -673,6 +673,13 @@ class IndicatorRequest(_FeatureRequest):
         le=1.0,
         description="Share of missing days above which a season is not reported.",
     )
+    aggregation: Literal["series", "cells"] = Field(
+        default="series",
+        description="'series': every indicator on the community's area-weighted (or layer-weighted) daily "
+        "series. 'cells': every indicator on each grid cell's own daily series, then the weighted mean of the "
+        "cell values; z, classes and lags on that mean. The two are different estimators (e.g. degree days "
+        "or wet days of a mean series differ from the mean of the cells').",
+    )
     partial_seasons: Literal["scale", "null", "as_is"] = Field(
         default="scale",
         description="Sums and counts of a season that misses some days (within max_missing_share): "
@@ -824,6 +831,11 @@ class Provenance(BaseModel):
         default=None,
         description="With variants: each variant's name, dataset, fingerprint, request hash and resolved "
         "request (features and events as in the request).",
+    )
+    methods: dict[str, Any] | None = Field(
+        default=None,
+        description="What was computed, in words: daily values, aggregation, seasons, baseline, anomalies, "
+        "classes, and per indicator its definition, source, parameters and method details (biases included).",
     )
 
 

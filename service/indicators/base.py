@@ -191,6 +191,11 @@ class IndicatorValues:
     flags: Mapping[str, np.ndarray] = field(default_factory=dict)
 
 
+def values_of(result: np.ndarray | IndicatorValues) -> np.ndarray:
+    """The (feature, year) values of a compute function's result, whichever form it took."""
+    return result.values if isinstance(result, IndicatorValues) else result
+
+
 ComputeFn = Callable[[SeasonCube, Baseline, Mapping[str, ParameterValue]], "np.ndarray | IndicatorValues"]
 
 

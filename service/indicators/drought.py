@@ -33,7 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special, stats
 
-from service.indicators.base import Baseline, Indicator, SeasonCube, register
+from service.indicators.base import Baseline, Indicator, IndicatorValues, Parameter, SeasonCube, register
 from service.indicators.basic import reduce_in_blocks, season_sum
 
 SOLAR_CONSTANT = 0.0820  # MJ m-2 min-1, FAO-56 eq. 21
@@ -341,39 +341,81 @@ def _baseline_rows(baseline: Baseline) -> tuple[np.ndarray, np.ndarray]:
     return rows, inverse.reshape(-1)
 
 
-def standardize_against_baseline(values: np.ndarray, baseline: Baseline, kind: str) -> np.ndarray:
-    """SPI-type index of ``values`` (feature, year) against each season-year's baseline seasons.
+SPEI_DISTRIBUTIONS = ("generalized_logistic", "log_logistic")
 
-    ``kind`` is "gamma" (SPI) or "log-logistic" (SPEI: the log-logistic, extended by the generalized
-    logistic where a baseline's skew is not positive). One fit per distinct baseline row, vectorised over
-    features; NaN where the fit is not usable or the value is NaN.
+
+def standardize_against_baseline(
+    values: np.ndarray, baseline: Baseline, kind: str, distribution: str = "generalized_logistic"
+) -> IndicatorValues:
+    """SPI-type index of ``values`` (feature, year) against each season-year's baseline seasons, with flags.
+
+    ``kind`` "gamma" (SPI) fits a gamma with a probability of zero; "water balance" (SPEI) fits by
+    L-moments the ``distribution``: "generalized_logistic" (the log-logistic where the baseline's
+    L-skewness is positive, its extension otherwise, bounded above when the skew is negative) or
+    "log_logistic" (only where the L-skewness is positive; null elsewhere). One fit per distinct baseline
+    row, vectorised over features. Flags: no_fit (a value without a usable fit), zero_rain_spi (SPI of a
+    zero total), spei_upper_bound (an SPEI fit bounded above).
     """
     rows, row_of_year = _baseline_rows(baseline)
     out = np.full(values.shape, np.nan)
+    no_fit = np.zeros(values.shape, dtype=bool)
+    bounded = np.zeros(values.shape, dtype=bool)
     for r, row in enumerate(rows):
         years = np.flatnonzero(row_of_year == r)
         sample = values[:, row]
+        current = values[:, years]
         if kind == "gamma":
-            probability = gamma_probability(values[:, years], fit_gamma(sample))
+            fit = fit_gamma(sample)
+            ok = fit.ok
+            probability = gamma_probability(current, fit)
         else:
-            fit = fit_generalized_logistic(sample, unbiased=True)
-            probability = generalized_logistic_probability(values[:, years], fit)
+            glo = fit_generalized_logistic(sample, unbiased=True)
+            ok = glo.ok if distribution == "generalized_logistic" else glo.ok & (glo.shape < 0)
+            glo = GeneralizedLogisticFit(glo.location, glo.scale, glo.shape, ok)
+            probability = generalized_logistic_probability(current, glo)
+            bounded[:, years] = (ok & (glo.shape > 0))[:, None] & ~np.isnan(current)
         out[:, years] = standard_normal_index(probability)
-    return out
+        no_fit[:, years] = ~ok[:, None] & ~np.isnan(current)
+    flags = {"no_fit": no_fit}
+    if kind == "gamma":
+        with np.errstate(invalid="ignore"):
+            flags["zero_rain_spi"] = (values <= 0.0) & ~np.isnan(out)
+    else:
+        flags["spei_upper_bound"] = bounded
+    return IndicatorValues(values=out, flags=flags)
 
 
 # --- the indicators -----------------------------------------------------------------------------------------
 
 
-def spi(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
-    """Standardized Precipitation Index of the season total (standard-normal units)."""
-    return standardize_against_baseline(reduce_in_blocks(season_sum, cube.prcp), baseline, "gamma")
+def spi(cube: SeasonCube, baseline: Baseline, params: Mapping[str, object]) -> IndicatorValues:
+    """Standardized Precipitation Index of the season total (standard-normal units), with flags.
+
+    Totals of partial seasons follow the request's partial_seasons policy (``cube.scale_totals``), in the
+    season itself and in the baseline seasons alike.
+    """
+    totals = cube.scale_totals(reduce_in_blocks(season_sum, cube.prcp))
+    return standardize_against_baseline(totals, baseline, "gamma")
 
 
-def spei(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
-    """Standardized Precipitation-Evapotranspiration Index of the season's P - PET (standard-normal units)."""
-    return standardize_against_baseline(season_water_balance(cube), baseline, "log-logistic")
+def spei(cube: SeasonCube, baseline: Baseline, params: Mapping[str, object]) -> IndicatorValues:
+    """Standardized Precipitation-Evapotranspiration Index of the season's P - PET (standard-normal units).
 
+    The water balance of a partial season follows the partial_seasons policy like SPI's totals;
+    ``params["distribution"]`` chooses the fitted distribution (see standardize_against_baseline).
+    """
+    balance = cube.scale_totals(season_water_balance(cube))
+    return standardize_against_baseline(balance, baseline, "water balance", str(params["distribution"]))
+
+
+_STANDARD_NORMAL_NOTE = (
+    "The value is a standard-normal deviate, so its z is the value itself (spi_z == spi, spei_z == spei): "
+    "the columns stay for a uniform layout. Values are clipped to -5 and +5 (a probability beyond "
+    "Phi(+-5), e.g. a zero total against a baseline without one); a clipped value carries the warning "
+    "at_clip. A baseline of fewer than 30 seasons gives the warning short_baseline_fit (WMO-No. 1090 asks "
+    "for 30 years: shorter fits inflate the tails). A baseline without a usable fit (fewer than three "
+    "seasons with data, no spread) leaves the value null with the warning no_fit."
+)
 
 register(
     Indicator(
@@ -390,6 +432,11 @@ register(
         standardized=True,
         uses_baseline=True,
         bounds=(-INDEX_LIMIT, INDEX_LIMIT),
+        details="The gamma is fitted by maximum likelihood to the baseline's positive totals (Thom's "
+        "approximation, then Newton steps); q is the baseline's share of zero totals and H(x) = q + (1 - q) G(x). "
+        "A season with no precipitation gets the published SPI = Phi^-1(q), which is near normal or positive "
+        "when more than half of the baseline seasons were dry; it carries the warning zero_rain_spi. "
+        + _STANDARD_NORMAL_NOTE,
     )
 )
 register(
@@ -398,7 +445,8 @@ register(
         unit="1",
         definition="Standardized Precipitation-Evapotranspiration Index: the season's climatic water balance "
         "(precipitation minus Hargreaves reference evapotranspiration) as a standard-normal deviate of a "
-        "three-parameter log-logistic distribution fitted to the baseline seasons by L-moments.",
+        "distribution fitted to the baseline seasons by L-moments: by default the generalized logistic, which is "
+        "the three-parameter log-logistic where the baseline's L-skewness is positive (parameter distribution).",
         source="Vicente-Serrano, Begueria & Lopez-Moreno 2010, J. Climate 23:1696, with the unbiased PWMs of "
         "Begueria et al. 2014, Int. J. Climatol. 34:3001; "
         "PET by Hargreaves, FAO-56 (Allen et al. 1998) eq. 52 with Ra from eq. 21",
@@ -409,5 +457,19 @@ register(
         standardized=True,
         uses_baseline=True,
         bounds=(-INDEX_LIMIT, INDEX_LIMIT),
+        parameters={
+            "distribution": Parameter(
+                "generalized_logistic",
+                "",
+                "the distribution fitted by L-moments (unbiased PWMs) to the baseline's water balance: "
+                "'generalized_logistic' (default; Hosking & Wallis 1997) equals the three-parameter log-logistic "
+                "of Vicente-Serrano et al. 2010 where the baseline's L-skewness is positive and extends it where "
+                "it is not (then bounded above: warning spei_upper_bound); 'log_logistic' fits only where the "
+                "L-skewness is positive and leaves the value null elsewhere (warning no_fit)",
+                choices=SPEI_DISTRIBUTIONS,
+            )
+        },
+        details="PET by Hargreaves (FAO-56 eq. 52) from daily tmax, tmin and extraterrestrial radiation at the "
+        "community's latitude; D = sum over the season's days of P - PET. " + _STANDARD_NORMAL_NOTE,
     )
 )

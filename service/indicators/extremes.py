@@ -41,7 +41,16 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.indicators.base import Baseline, Family, Indicator, Reduction, SeasonCube, register
+from service.indicators.base import (
+    Baseline,
+    Family,
+    Indicator,
+    IndicatorValues,
+    Parameter,
+    Reduction,
+    SeasonCube,
+    register,
+)
 from service.indicators.basic import WET_DAY_MM, count_days, longest_run, null_where_empty, reduce_in_blocks
 
 WINDOW_HALF_WIDTH = 2  # days either side of the calendar day in a percentile pool (5-day window)
@@ -144,8 +153,8 @@ def _season_day_keys(cube: SeasonCube) -> np.ndarray:
     return np.where(cube.in_season, all_keys[safe], -1)
 
 
-# Thresholds of live cubes, so that tx90p, hotdry_days and hotdry_spell on one cube share one pass. Entries
-# hold weak references only and disappear with their cube or baseline (no request's data outlives it here).
+# Thresholds of live cuts, so that tx90p, hotdry_days and hotdry_spell on one cut share one pass. Entries
+# hold weak references only and disappear with their cut or baseline (no request's data outlives it here).
 _THRESHOLD_CACHE: dict[
     tuple[int, int, str, float], tuple[weakref.ref, weakref.ref, CalendarDayThresholds]
 ] = {}
@@ -179,9 +188,11 @@ def calendar_day_thresholds(
     results are cached while the cube lives, so ``tx90p``, ``hotdry_days`` and ``hotdry_spell`` on one cube
     share the work.
     """
-    cache_key = (id(cube), id(baseline), variable, q)
+    # the views of one cut (each indicator's cube, see SeasonCut.cube_for) share their time_index array
+    anchor = cube.time_index
+    cache_key = (id(anchor), id(baseline), variable, q)
     entry = _THRESHOLD_CACHE.get(cache_key)
-    if entry is not None and entry[0]() is cube and entry[1]() is baseline:
+    if entry is not None and entry[0]() is anchor and entry[1]() is baseline:
         return entry[2]
     daily = cube.daily
     record = getattr(daily, variable)
@@ -237,7 +248,7 @@ def calendar_day_thresholds(
     def forget(_: weakref.ref) -> None:
         _THRESHOLD_CACHE.pop(cache_key, None)
 
-    _THRESHOLD_CACHE[cache_key] = (weakref.ref(cube, forget), weakref.ref(baseline, forget), result)
+    _THRESHOLD_CACHE[cache_key] = (weakref.ref(anchor, forget), weakref.ref(baseline, forget), result)
     return result
 
 
@@ -321,39 +332,39 @@ def sdii(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> n
     return reduce_in_blocks(_wet_day_intensity, cube.prcp)
 
 
-def wet_day_threshold(cube: SeasonCube, baseline: Baseline, q: float) -> tuple[np.ndarray, np.ndarray]:
-    """The ``q``-percentile (q >= 0.5) of baseline wet-day RR (mm) per (feature, row), and each year's row.
+def _top_quantile(pool: np.ndarray, rows: np.ndarray, q: float) -> np.ndarray:
+    """The ``q``-quantile (q >= 0.5) of the wet days (RR >= 1 mm) of ``pool`` over each membership row.
 
-    Type 8 quantile of the wet days (RR >= 1 mm) of the baseline season-years; NaN with fewer than
-    MIN_WET_DAYS of them or fewer than three baseline season-years with data. A high quantile needs only
-    the largest few values of the pool, and the largest K values of a union of seasons are among each
-    season's own largest K: so each season's wet days are sorted once, and each baseline row sorts only
-    the union of its seasons' top K (one small sort per row, vectorised over features).
+    ``pool`` is (feature, period, day) precipitation (mm/day, NaN missing); ``rows`` (row, period) says which
+    periods (season-years, or calendar years) each row pools. Type 8 quantile; NaN with fewer than
+    MIN_WET_DAYS wet days or fewer than three periods with data. A high quantile needs only the largest few
+    values of the pool, and the largest K values of a union of periods are among each period's own largest
+    K: so each period's wet days are sorted once, and each row sorts only the union of its periods' top K
+    (one small sort per row, vectorised over features). Returns (feature, row).
     """
-    rows, row_of_year = _baseline_rows(baseline)
-    n_feature, n_year, n_day = cube.prcp.shape
+    n_feature, n_period, n_day = pool.shape
     out = np.full((n_feature, rows.shape[0]), np.nan)
-    wet = np.where(cube.prcp >= WET_DAY_MM, cube.prcp, np.nan)
-    wet_count = np.count_nonzero(~np.isnan(wet), axis=-1)  # (feature, year)
-    has_data = (~np.isnan(cube.prcp)).any(axis=-1)  # (feature, year)
+    wet = np.where(pool >= WET_DAY_MM, pool, np.nan)
+    wet_count = np.count_nonzero(~np.isnan(wet), axis=-1)  # (feature, period)
+    has_data = (~np.isnan(pool)).any(axis=-1)  # (feature, period)
     usable_rows = [(r, np.flatnonzero(row)) for r, row in enumerate(rows)]
-    usable_rows = [(r, seasons) for r, seasons in usable_rows if seasons.size >= MIN_BASELINE_SEASONS]
+    usable_rows = [(r, periods) for r, periods in usable_rows if periods.size >= MIN_BASELINE_SEASONS]
     if not usable_rows or n_day == 0:
-        return out, row_of_year
+        return out
     # how deep from the top each row's quantile reaches: ranks floor(h) and floor(h) + 1 of n values
-    pooled = np.stack([wet_count[:, seasons].sum(axis=-1) for _, seasons in usable_rows], axis=1)
+    pooled = np.stack([wet_count[:, periods].sum(axis=-1) for _, periods in usable_rows], axis=1)
     h = np.clip((pooled + 1.0 / 3.0) * q + 1.0 / 3.0, 1.0, np.maximum(pooled, 1).astype(np.float64))
     depth = min(n_day, int((pooled - np.floor(h)).max()) + 1)
-    # each season's wet days, largest first (NaN last), cut to the deepest rank any row needs
-    largest = -np.sort(-wet.reshape(-1, n_day), axis=-1)[:, :depth].reshape(n_feature, n_year, depth)
-    for column, (r, seasons) in enumerate(usable_rows):
+    # each period's wet days, largest first (NaN last), cut to the deepest rank any row needs
+    largest = -np.sort(-wet.reshape(-1, n_day), axis=-1)[:, :depth].reshape(n_feature, n_period, depth)
+    for column, (r, periods) in enumerate(usable_rows):
         n = pooled[:, column]
         top = np.maximum(n, 1)
         h_row = h[:, column]
         low = np.floor(h_row).astype(np.int64)
         frac = h_row - low
         high = np.minimum(low + 1, top)
-        union = -np.sort(-largest[:, seasons].reshape(n_feature, -1), axis=-1)  # largest first, NaN last
+        union = -np.sort(-largest[:, periods].reshape(n_feature, -1), axis=-1)  # largest first, NaN last
         # ascending rank j of n values is rank n - j + 1 from the top, index n - j
         at_low = np.clip(n - low, 0, union.shape[-1] - 1)
         at_high = np.clip(n - high, 0, union.shape[-1] - 1)
@@ -361,14 +372,57 @@ def wet_day_threshold(cube: SeasonCube, baseline: Baseline, q: float) -> tuple[n
         x_high = np.take_along_axis(union, at_high[:, None], axis=-1)[:, 0]
         with np.errstate(invalid="ignore"):
             value = np.where(frac > 0, x_low + frac * (x_high - x_low), x_low)
-        enough = (n >= MIN_WET_DAYS) & (has_data[:, seasons].sum(axis=-1) >= MIN_BASELINE_SEASONS)
+        enough = (n >= MIN_WET_DAYS) & (has_data[:, periods].sum(axis=-1) >= MIN_BASELINE_SEASONS)
         out[:, r] = np.where(enough, value, np.nan)
-    return out, row_of_year
+    return out
 
 
-def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
-    """Season precipitation on days with RR above the baseline wet-day 95th percentile (mm)."""
-    threshold, row_of_year = wet_day_threshold(cube, baseline, 0.95)
+def calendar_years_pool(cube: SeasonCube) -> tuple[np.ndarray, np.ndarray]:
+    """Precipitation of whole calendar years from the daily record: (feature, year, 366) mm/day, and the years."""
+    daily = cube.daily
+    if daily.prcp is None:
+        raise RuntimeError("the daily series holds no precipitation")
+    years, year_row = np.unique(daily.year, return_inverse=True)
+    pool = np.full((cube.feature_index.size, years.size, 366), np.nan)
+    pool[:, year_row, daily.dayofyear - 1] = daily.prcp[cube.feature_index]
+    return pool, years
+
+
+def wet_day_threshold(
+    cube: SeasonCube, baseline: Baseline, q: float, pool: str = "season"
+) -> tuple[np.ndarray, np.ndarray]:
+    """The ``q``-percentile of baseline wet-day RR (mm) per (feature, baseline row), and each year's row.
+
+    ``pool`` "season": the wet days of the baseline season-years' own seasons (the cube's days). "year":
+    the wet days of the whole calendar years numbered like the baseline season-years, from the daily record
+    (ETCCDI's base-period pool, Zhang et al. 2011). See :func:`_top_quantile` for the estimator.
+    """
+    rows, row_of_year = _baseline_rows(baseline)
+    if cube.prcp is None:
+        raise RuntimeError("r95ptot needs precipitation in its cube")
+    if pool == "season":
+        return _top_quantile(cube.prcp, rows, q), row_of_year
+    annual, calendar_years = calendar_years_pool(cube)
+    # calendar-year membership of each row: the calendar years that carry a baseline season-year's number
+    position = np.searchsorted(cube.years, calendar_years)
+    known = (position < cube.years.size) & (
+        cube.years[np.minimum(position, cube.years.size - 1)] == calendar_years
+    )
+    annual_rows = np.zeros((rows.shape[0], calendar_years.size), dtype=bool)
+    annual_rows[:, known] = rows[:, position[known]]
+    return _top_quantile(annual, annual_rows, q), row_of_year
+
+
+R95_POOLS = ("year", "season")
+
+
+def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, object]) -> IndicatorValues:
+    """Season precipitation on days with RR above the baseline wet-day 95th percentile (mm), with flags.
+
+    ``params["threshold_pool"]``: "year" (ETCCDI: the base period's wet days of whole years) or "season"
+    (the baseline seasons' wet days). no_fit flags a season with data but no threshold.
+    """
+    threshold, row_of_year = wet_day_threshold(cube, baseline, 0.95, str(params["threshold_pool"]))
     per_row = threshold[:, row_of_year].reshape(-1)  # flat (feature * n_year + year)
 
     def very_wet_total(rows: np.ndarray, prcp: np.ndarray) -> np.ndarray:
@@ -377,7 +431,9 @@ def r95ptot(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -
         value = np.sum(np.where(very_wet, prcp, 0.0), axis=-1, dtype=np.float64)
         return null_where_empty(np.where(np.isnan(limit[:, 0]), np.nan, value), prcp)
 
-    return reduce_in_blocks(very_wet_total, cube.prcp, pass_rows=True)
+    values = reduce_in_blocks(very_wet_total, cube.prcp, pass_rows=True)
+    has_data = (~np.isnan(cube.prcp)).any(axis=-1)
+    return IndicatorValues(values, {"no_fit": has_data & np.isnan(threshold[:, row_of_year])})
 
 
 # --- temperature indices ------------------------------------------------------------------------------------
@@ -413,8 +469,11 @@ def tnn(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np
     return np.fmin.reduce(cube.tmin, axis=-1).astype(np.float64)
 
 
-def _exceedance_share(cube: SeasonCube, baseline: Baseline, variable: str, q: float) -> np.ndarray:
-    """Share (%) of season days with ``variable`` beyond its calendar-day ``q`` threshold (above for q > 0.5)."""
+def _exceedance_share(cube: SeasonCube, baseline: Baseline, variable: str, q: float) -> IndicatorValues:
+    """Share (%) of season days with ``variable`` beyond its calendar-day ``q`` threshold (above for q > 0.5).
+
+    no_fit flags a season with data on none of whose days a threshold exists.
+    """
     thresholds = calendar_day_thresholds(cube, baseline, variable, q)
     key = _season_day_keys(cube)
 
@@ -424,15 +483,18 @@ def _exceedance_share(cube: SeasonCube, baseline: Baseline, variable: str, q: fl
         beyond = values > threshold if q > 0.5 else values < threshold
         return _percent_of_days(beyond, usable)
 
-    return reduce_in_blocks(share, getattr(cube, variable), pass_rows=True)
+    values = getattr(cube, variable)
+    result = reduce_in_blocks(share, values, pass_rows=True)
+    has_data = (~np.isnan(values)).any(axis=-1)
+    return IndicatorValues(result, {"no_fit": has_data & np.isnan(result)})
 
 
-def tx90p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+def tx90p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> IndicatorValues:
     """Share of season days with TX above the baseline calendar-day 90th percentile (% of days with data)."""
     return _exceedance_share(cube, baseline, "tmax", 0.9)
 
 
-def tn10p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+def tn10p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> IndicatorValues:
     """Share of season days with TN below the baseline calendar-day 10th percentile (% of days with data)."""
     return _exceedance_share(cube, baseline, "tmin", 0.1)
 
@@ -440,8 +502,10 @@ def tn10p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> 
 # --- compound heat and drought ------------------------------------------------------------------------------
 
 
-def _hot_dry(cube: SeasonCube, baseline: Baseline, longest: bool) -> np.ndarray:
+def _hot_dry(cube: SeasonCube, baseline: Baseline, longest: bool) -> IndicatorValues:
     """Count (or longest run) of hot-dry days per season-year; NaN where no day has data and a threshold.
+
+    no_fit flags a season with data but no threshold on any of its days.
 
     A hot-dry day has TX above the baseline calendar-day 90th percentile and RR < 1 mm.
     """
@@ -455,15 +519,17 @@ def _hot_dry(cube: SeasonCube, baseline: Baseline, longest: bool) -> np.ndarray:
         value = longest_run(hot_dry) if longest else np.count_nonzero(hot_dry, axis=-1)
         return np.where(np.count_nonzero(usable, axis=-1) > 0, value, np.nan)
 
-    return reduce_in_blocks(reduce, cube.tmax, cube.prcp, pass_rows=True)
+    result = reduce_in_blocks(reduce, cube.tmax, cube.prcp, pass_rows=True)
+    has_data = ((~np.isnan(cube.tmax)) & (~np.isnan(cube.prcp))).any(axis=-1)
+    return IndicatorValues(result, {"no_fit": has_data & np.isnan(result)})
 
 
-def hotdry_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+def hotdry_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> IndicatorValues:
     """Number of hot-dry days in the season (days); NaN where no day has data and a threshold."""
     return _hot_dry(cube, baseline, longest=False)
 
 
-def hotdry_spell(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
+def hotdry_spell(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> IndicatorValues:
     """Longest run of consecutive hot-dry days within the season (days); a missing day ends a run."""
     return _hot_dry(cube, baseline, longest=True)
 
@@ -672,6 +738,46 @@ _ENTRIES: list[tuple[str, str, str, str, Family, object, bool, bool, tuple[str, 
     ),
 ]
 
+_SPELL_DETAILS = (
+    "Counted within the season only: a run that began before the season's first day counts only its days "
+    "inside the season, one running past the last day is cut there; a missing day ends a run. A partial "
+    "season's run uses the days present (never scaled)."
+)
+_PERCENTILE_DETAILS = (
+    "Thresholds are calendar-day percentiles of the baseline (type 8 quantile of a 5-day window centred on "
+    "the day, over every baseline season-year; 28 and 29 February share one); a calendar day with data from "
+    "fewer than three baseline season-years has none. In-base years use the plain threshold: the bootstrap "
+    "of Zhang et al. 2005 (J. Climate 18:1641) is not applied, so for a fixed baseline the values of the "
+    "baseline's own years are biased low against later years (measured here in stationary synthetic data: "
+    "9.7 % in base against 10.1 % out of base for 30 baseline seasons of independent days; 9.5 % against "
+    "11.5 % for 10 seasons with a day-to-day correlation of 0.7). A trailing baseline never holds the season "
+    "itself, so it has no in-base years."
+)
+_DETAILS = {
+    "cdd": _SPELL_DETAILS,
+    "cwd": _SPELL_DETAILS,
+    "rx5day": "Only windows of five consecutive days that all lie inside the season and all have data are used.",
+    "r95ptot": "The threshold is the type 8 95th percentile of wet-day (RR >= 1 mm) precipitation pooled over "
+    "the baseline, from at least 20 wet days of at least three years (else null, warning no_fit). "
+    "threshold_pool 'year' (default) pools the wet days of the whole calendar years numbered like the "
+    "baseline season-years: the ETCCDI base-period threshold (Zhang et al. 2011). 'season' pools only the "
+    "baseline seasons' own wet days: a seasonal variant, not the ETCCDI index (in a dry season its threshold "
+    "is far lower). The index is the season's sum of RR on wet days above the threshold.",
+    "tx90p": _PERCENTILE_DETAILS + " A partial season's share is over the days present.",
+    "tn10p": _PERCENTILE_DETAILS + " A partial season's share is over the days present.",
+}
+_PARAMETERS = {
+    "r95ptot": {
+        "threshold_pool": Parameter(
+            "year",
+            "",
+            "the wet days the 95th percentile is taken from: 'year' (default, ETCCDI) the baseline's whole "
+            "calendar years; 'season' the baseline seasons only (a seasonal variant)",
+            choices=R95_POOLS,
+        )
+    }
+}
+
 for (
     _name,
     _etccdi,
@@ -696,6 +802,8 @@ for (
             reduction=_reduction,
             percent_of_normal=_percent,
             uses_baseline=_uses_baseline,
+            parameters=_PARAMETERS.get(_name, {}),
+            details=_DETAILS.get(_name, ""),
         )
     )
 
@@ -712,6 +820,7 @@ register(
         compute=hotdry_days,
         variables=("tmax", "prcp"),
         reduction="count",
+        details=_PERCENTILE_DETAILS,
         uses_baseline=True,
     )
 )
@@ -725,6 +834,7 @@ register(
         compute=hotdry_spell,
         variables=("tmax", "prcp"),
         reduction="run",
+        details=_PERCENTILE_DETAILS + " " + _SPELL_DETAILS,
         uses_baseline=True,
     )
 )

@@ -66,7 +66,7 @@ DEFAULT_PAIR = ("prcp_total", "tmean")
 DEFAULT_BASELINE_SEASONS = 30
 # Distribution-fitted and percentile indices on fewer baseline seasons get the warning short_baseline_fit.
 MIN_FIT_SEASONS = 30
-# Features are cut and computed in blocks of about this many daily values per variable (8 M, 64 MB of
+# Rows are cut and computed in blocks of about this many daily values per variable (8 M, 64 MB of
 # float64): every feature's row is independent, and blocks keep the cubes and the indicators' temporaries
 # small enough to stay fast (measured: 3x faster than one cube of 5,000 features x 48 years).
 FEATURE_BLOCK_ELEMENTS = 8_000_000
@@ -936,13 +936,28 @@ def _fit_warnings(
     return warnings
 
 
-def compute_table(
+def raw_values_in_blocks(
     daily: DailySeries,
-    feature_ids: list[str],
-    properties: list[dict],
+    rows: np.ndarray,
+    season: seasons.SeasonDefinition,
+    planned: Sequence[PlannedIndicator],
     request: IndicatorRequest,
-    *,
-    cells: CellAggregation | None = None,
+) -> RawValues:
+    """:func:`raw_values` of ``rows`` computed in blocks of about FEATURE_BLOCK_ELEMENTS daily values each.
+
+    Every row is independent, and blocks keep the cubes and the indicators' temporaries small enough to
+    stay fast; the cube arrays are reused block after block.
+    """
+    block_size = max(1, FEATURE_BLOCK_ELEMENTS // max(1, daily.year.size))
+    buffers: dict[str, np.ndarray] = {}
+    starts = range(0, max(rows.size, 1), block_size)
+    return concat_raw(
+        [raw_values(daily, rows[s : s + block_size], season, planned, request, buffers) for s in starts]
+    )
+
+
+def compute_table(
+    daily: DailySeries, feature_ids: list[str], properties: list[dict], request: IndicatorRequest
 ) -> IndicatorTable:
     """One row per (feature_id, year) of the request's years: values, z, classes, lags, pairs, spells, notes.
 
@@ -952,24 +967,83 @@ def compute_table(
     indicators, season groups and season-years only. Warnings (dicts with code, feature_id, year,
     indicator, reason; see service/warning_codes.py) say why a value is null or flagged, and the ``notes``
     column carries each row's codes. ``layout="long"`` gives one row per (feature_id, year, indicator).
-
-    With ``cells`` (aggregation "cells"), the rows of ``daily`` are grid cells, not features: each
-    indicator is computed per cell, then each feature's value is the weighted mean of its cells' values
-    (:func:`combine_cells`); z, classes, lags and spells are computed on that mean.
+    This is aggregation "series": every indicator on each feature's own daily series.
     """
-    n_rows = daily.n_features
     n_feature = len(feature_ids)
-    if cells is None and n_feature != n_rows:
-        raise RequestError(f"{n_feature} feature ids for a daily series of {n_rows} features")
-    if cells is not None and cells.weights.shape != (n_feature, n_rows):
-        raise RequestError(
-            f"cell weights of shape {cells.weights.shape} for {n_feature} features and {n_rows} cells"
-        )
+    if n_feature != daily.n_features:
+        raise RequestError(f"{n_feature} feature ids for a daily series of {daily.n_features} features")
     groups = seasons.season_groups(request.season, feature_ids, properties)
     request = _resolve(request, groups, daily.year, daily.month, daily.day, daily.calendar, daily.variables)
+    planned = plan_indicators(request.indicators or [])
+    raws = [raw_values_in_blocks(daily, g.feature_index, g.season, planned, request) for g in groups]
+    return _assemble(request, planned, groups, raws, feature_ids, None)
+
+
+def cell_groups(
+    feature_ids: Sequence[str], properties: Sequence[dict], request: IndicatorRequest
+) -> list[seasons.SeasonGroup]:
+    """The season groups of the features of a resolved request (one unless the season is a property)."""
+    return seasons.season_groups(request.season, list(feature_ids), list(properties))
+
+
+def compute_cell_values(
+    daily: DailySeries, request: IndicatorRequest, groups: Sequence[seasons.SeasonGroup]
+) -> list[RawValues]:
+    """Aggregation "cells", first step: every row (grid cell) of ``daily``'s raw values, per season group.
+
+    ``request`` is resolved; the rows' values under each group's season, in the order of ``groups``.
+    """
+    planned = plan_indicators(request.indicators or [])
+    rows = np.arange(daily.n_features, dtype=np.int64)
+    return [raw_values_in_blocks(daily, rows, g.season, planned, request) for g in groups]
+
+
+def compute_table_from_cells(
+    cell_values: Sequence[RawValues],
+    weights: sparse.csr_matrix,
+    feature_ids: list[str],
+    properties: list[dict],
+    request: IndicatorRequest,
+) -> IndicatorTable:
+    """Aggregation "cells", second step: the table of features whose values are means of their cells'.
+
+    ``cell_values`` are :func:`compute_cell_values` of the cells (joined over cell batches), one per season
+    group of :func:`cell_groups`; ``weights`` is (feature, cell) over the same cells, in the same order.
+    Each feature's raw value is the weighted mean of its cells' (:func:`combine_cells`); z, classes, lags
+    and spells are computed on that mean, as for aggregation "series".
+    """
+    groups = cell_groups(feature_ids, properties, request)
+    if len(cell_values) != len(groups):
+        raise RuntimeError(f"{len(cell_values)} sets of cell values for {len(groups)} season groups")
+    if weights.shape[0] != len(feature_ids):
+        raise RuntimeError(f"cell weights for {weights.shape[0]} features, {len(feature_ids)} feature ids")
+    planned = plan_indicators(request.indicators or [])
+    cells = CellAggregation(weights=sparse.csr_matrix(weights))
+    raws = []
+    for group, raw in zip(groups, cell_values, strict=True):
+        used = cells.cells_of(group.feature_index)
+        subset = RawValues(
+            years=raw.years,
+            values={c: v[used] for c, v in raw.values.items()},
+            present={c: v[used] for c, v in raw.present.items()},
+            flags={c: {code: m[used] for code, m in marks.items()} for c, marks in raw.flags.items()},
+        )
+        raws.append(combine_cells(subset, cells, group.feature_index, used, request))
+    return _assemble(request, planned, groups, raws, feature_ids, " (in at least one of its cells)")
+
+
+def _assemble(
+    request: IndicatorRequest,
+    planned: Sequence[PlannedIndicator],
+    groups: Sequence[seasons.SeasonGroup],
+    raws: Sequence[RawValues],
+    feature_ids: Sequence[str],
+    cell_suffix: str | None,
+) -> IndicatorTable:
+    """The table from each season group's raw values (one row of raw values per feature of the group)."""
     if request.years is None or request.indicators is None or request.max_missing_share is None:
         raise RuntimeError("resolve_request left a default unfilled")
-    planned = plan_indicators(request.indicators)
+    n_feature = len(feature_ids)
     kinds = _column_kinds(planned, request)
     years = np.arange(request.years.start, request.years.end + 1, dtype=np.int64)
     full: dict[str, np.ndarray] = {}
@@ -982,30 +1056,23 @@ def compute_table(
     notes = _Notes(n_feature, years.size, [p.column for p in planned])
     warnings: list[dict[str, Any]] = []
     first_full: int | None = None
-    block_size = max(1, FEATURE_BLOCK_ELEMENTS // max(1, daily.year.size))
-    buffers: dict[str, np.ndarray] = {}  # the cube arrays, reused block after block
-    for group in groups:
+    for group, raw in zip(groups, raws, strict=True):
         feature_rows = group.feature_index
-        source_rows = feature_rows if cells is None else cells.cells_of(feature_rows)
-        parts = [
-            raw_values(
-                daily, source_rows[start : start + block_size], group.season, planned, request, buffers
-            )
-            for start in range(0, source_rows.size, block_size)
-        ]
-        if not parts:
+        if not feature_rows.size:
             continue
-        raw = concat_raw(parts)
         out_cols = np.searchsorted(raw.years, years)
         if np.any(out_cols >= raw.years.size) or np.any(raw.years[out_cols] != years):
             raise RuntimeError("a requested season-year is not in the cube although the request was resolved")
-        if cells is not None:
-            raw = combine_cells(raw, cells, feature_rows, source_rows, request)
-            suffix = " (in at least one of its cells)"
-        else:
-            suffix = ""
         warnings += _flag_warnings(
-            raw, out_cols, planned, request, group.season.label, feature_ids, feature_rows, notes, suffix
+            raw,
+            out_cols,
+            planned,
+            request,
+            group.season.label,
+            feature_ids,
+            feature_rows,
+            notes,
+            cell_suffix or "",
         )
         group_full = baselines.first_full_year(raw.years, request.baseline)
         if group_full is not None:
@@ -1266,3 +1333,66 @@ def add_warning_notes(frame: pd.DataFrame, warnings: Sequence[Mapping[str, Any]]
         texts[i] = notes_text(codes)
     frame["notes"] = pd.array(texts, dtype="string")
     return frame
+
+
+# --- what was computed, for provenance ----------------------------------------------------------------------
+
+_AGGREGATION_TEXT = {
+    "series": "every indicator on the community's weighted mean daily series (cells weighted by their area "
+    "within the community, or area times the weight layer)",
+    "cells": "every indicator on each grid cell's own daily series, then the community's weighted mean of the "
+    "cell values (area, or area times the weight layer; cells without a value drop out and the weights "
+    "renormalise; null when the cells with a value carry less than 1 - max_missing_share of the weight); "
+    "z, classes and lags on that mean",
+}
+
+
+def methods_statement(request: IndicatorRequest, snap: Mapping[str, int]) -> dict[str, Any]:
+    """What a resolved request computes, in words, for provenance: every method choice and convention.
+
+    ``snap`` gives the decimals each variable's daily means were snapped to (service.indicators.base).
+    """
+    planned = plan_indicators(request.indicators or [])
+    edges = ", ".join(f"{e:g}" for e in request.classes.edges)
+    baseline = request.baseline
+    if isinstance(baseline, FixedBaseline):
+        baseline_text = (
+            f"fixed, season-years {baseline.start}-{baseline.end} ({baseline.end - baseline.start + 1})"
+        )
+    elif baseline is not None:
+        baseline_text = (
+            f"trailing, the {baseline.trailing} season-years before each season-year, only where all of them "
+            f"lie in the data (else no baseline: null)"
+        )
+    else:
+        baseline_text = "unresolved"
+    indicators: dict[str, Any] = {}
+    for p in planned:
+        entry: dict[str, Any] = {
+            "definition": p.indicator.definition,
+            "source": p.indicator.source,
+            "parameters": dict(p.params),
+            "reduction": p.indicator.reduction,
+        }
+        if p.indicator.details:
+            entry["details"] = p.indicator.details
+        if p.indicator.bounds is not None:
+            entry["bounds"] = list(p.indicator.bounds)
+        indicators[p.column] = entry
+    return {
+        "daily_values": "area- or layer-weighted daily means of the cells with data, snapped to "
+        + ", ".join(f"{v} {d} decimals" for v, d in snap.items())
+        + " (the storage step plus three), so values exact in storage units meet thresholds exactly",
+        "aggregation": f"{request.aggregation}: {_AGGREGATION_TEXT[request.aggregation]}",
+        "seasons": f"a season with more than {request.max_missing_share:.0%} of its days missing (for the "
+        f"variables an indicator reads) is null; partial seasons: {request.partial_seasons} "
+        f"({_POLICY_TEXT[request.partial_seasons]}); means, extremes, runs and shares use the days present",
+        "baseline": baseline_text,
+        "anomalies": "z = (value - baseline mean) / baseline sample sd (ddof 1), over the baseline seasons with a "
+        f"value (at least {baselines.MIN_BASELINE_SEASONS}); null without spread (all values equal); z rounded "
+        f"to {baselines.Z_DECIMALS} decimals; SPI and SPEI are their own z",
+        "classes": f"edges {edges} (standard deviations); an edge belongs to the class farther from zero",
+        "distribution_fits": f"fits and percentile thresholds on fewer than {MIN_FIT_SEASONS} baseline seasons "
+        "carry the warning short_baseline_fit",
+        "indicators": indicators,
+    }

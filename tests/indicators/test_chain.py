@@ -10,6 +10,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from service.errors import RequestError
@@ -45,3 +46,293 @@ def test_a_precipitation_only_dataset_serves_its_indicators_and_refuses_the_othe
     problem = caught.value.problem()
     assert problem["status"] == 422 and problem["indicator"] == "tmean" and problem["variable"] == "tmax"
     assert problem["pointer"] == "/indicators/1"
+
+
+# --- 1. ties at thresholds ------------------------------------------------------------------------------------
+
+
+def _tie_store(path: Path):
+    """2 x 4 cells, 2000-2002, whose daily values sit exactly on the thresholds on most days.
+
+    Cells of columns 0-1: TX 25.0 (25.1 on every 10th day), TN 0.0 (-0.1 on every 10th day from the 5th),
+    RR 1.0 on every 3rd day and 10.0 on every 7th (0 else). Columns 2-3 straddle the thresholds instead:
+    TX 24.9 | 25.1, TN -0.1 | 0.1, RR 0.9 | 1.1 and 9.9 | 10.1 on the same days, so an equal-weight mean
+    of the two is exactly on the threshold.
+    """
+    time = days(2000, 2002)
+    k = np.arange(time.size)
+    shape = (time.size, 2, 4)
+    tmax, tmin, prcp = np.empty(shape), np.empty(shape), np.empty(shape)
+    tmax[:, :, :2] = np.where(k % 10 == 0, 25.1, 25.0)[:, None, None]
+    tmin[:, :, :2] = np.where(k % 10 == 5, -0.1, 0.0)[:, None, None]
+    rain = np.where(k % 7 == 0, 10.0, np.where(k % 3 == 0, 1.0, 0.0))
+    prcp[:, :, :2] = rain[:, None, None]
+    tmax[:, :, 2], tmax[:, :, 3] = 24.9, 25.1
+    tmin[:, :, 2], tmin[:, :, 3] = -0.1, 0.1
+    prcp[:, :, 2] = np.where(k % 7 == 0, 9.9, np.where(k % 3 == 0, 0.9, 0.0))[:, None]
+    prcp[:, :, 3] = np.where(k % 7 == 0, 10.1, np.where(k % 3 == 0, 1.1, 0.0))[:, None]
+    return write_grid(path, time, {"tmax": tmax, "tmin": tmin, "prcp": prcp}), time, k, rain
+
+
+def test_ties_at_thresholds_count_by_the_stored_value(tmp_path: Path) -> None:
+    store, time, k, rain = _tie_store(tmp_path / "ties.zarr")
+    w, s, e, n = cell_box(0, 0, 2, inset=0.0)  # the cell of row 0, column 0; rows 0-1 cover 2 x 0.5 deg
+    communities = [
+        feature("one", cell_box(0, 0, 2, inset=0.13)),  # a village inside one cell
+        feature("one-b", (w + 0.31, s + 0.02, w + 0.37, s + 0.41)),  # another, an odd share of its cell
+        feature("two", (w + 0.07, s + 0.11, w + 0.83, s + 0.29)),  # 2 cells, unequal shares
+        feature("four", (w + 0.29, s - 0.37, w + 0.61, s + 0.19)),  # 4 cells, unequal shares
+        feature("pair", (w + 1.5 - 0.2, s + 0.1, w + 1.5 + 0.2, s + 0.4)),  # columns 2 | 3, equal shares
+    ]
+    indicators = ["su", "fd", "wet_days", "r10mm", "cdd"]
+    result = run_chain(
+        store, communities, tmp_path, indicators=indicators, baseline={"start": 2000, "end": 2002}
+    )
+    frame = result.frame.set_index(["feature_id", "year"])
+    year = time.year.to_numpy()
+    for y in (2000, 2001, 2002):
+        days_of = year == y
+        # by hand from the stored values: SU is TX > 25 (strict), FD TN < 0 (strict), wet day RR >= 1,
+        # R10mm RR >= 10, CDD the longest run of RR < 1 (ETCCDI, Zhang et al. 2011)
+        su = np.count_nonzero(days_of & (k % 10 == 0))
+        fd = np.count_nonzero(days_of & (k % 10 == 5))
+        wet = np.count_nonzero(days_of & (rain >= 1.0))
+        r10 = np.count_nonzero(days_of & (rain >= 10.0))
+        for fid in ("one", "one-b", "two", "four"):
+            row = frame.loc[(fid, y)]
+            assert (row["su"], row["fd"], row["wet_days"], row["r10mm"]) == (su, fd, wet, r10), (fid, y)
+            assert row["cdd"] == 2.0, (fid, y)  # dry runs: at most 2 days between days k % 3 == 0
+        # the equal-weight mean of 24.9 and 25.1 is 25.0: not a summer day; of -0.1 and 0.1 is 0: no frost;
+        # of 0.9 and 1.1 is 1.0: a wet day; of 9.9 and 10.1 is 10.0: an R10mm day
+        row = frame.loc[("pair", y)]
+        assert (row["su"], row["fd"], row["wet_days"], row["r10mm"]) == (0, 0, wet, r10), y
+
+
+# --- 2. trailing baselines: no spread, and z on a class edge ----------------------------------------------------
+
+
+def _count_store(path: Path, counts: list[list[int]], first_year: int = 2000):
+    """One row of cells, one per list: cell i has counts[i][y] days of 12 mm (R10mm days) in year y, else dry."""
+    n_years = len(counts[0])
+    time = days(first_year, first_year + n_years - 1)
+    year = time.year.to_numpy()
+    prcp = np.zeros((time.size, 1, len(counts)))
+    for i, per_year in enumerate(counts):
+        for y, c in enumerate(per_year):
+            prcp[np.flatnonzero(year == first_year + y)[:c], 0, i] = 12.0
+    temperature = np.full((time.size, 1, len(counts)), 20.0)
+    return write_grid(path, time, {"tmax": temperature + 5.0, "tmin": temperature, "prcp": prcp})
+
+
+def _class_by_the_rule(value: int, window: list[int]) -> int:
+    """The class of z = (value - mean) / sd (ddof 1) by exact rational arithmetic and the documented edge rule.
+
+    Edges -2, -1, 1, 2; an edge belongs to the class farther from zero (classes.py; the WMO SPI table puts
+    -1.0 in "moderately dry").
+    """
+    from fractions import Fraction
+
+    mean = Fraction(sum(window), len(window))
+    variance = sum((Fraction(v) - mean) ** 2 for v in window) / (len(window) - 1)
+    d = Fraction(value) - mean
+    step = 0
+    for edge in (1, 2):  # |z| >= edge  <=>  d^2 >= edge^2 variance
+        if d * d >= edge * edge * variance:
+            step = edge
+    return step if d > 0 else -step
+
+
+def test_trailing_baseline_without_spread_is_null_whatever_the_years_requested(tmp_path: Path) -> None:
+    # r10mm is 0 in 2000-2004 and 1 in 2005: against the five seasons before, there is no spread
+    store = _count_store(tmp_path / "counts.zarr", [[0, 0, 0, 0, 0, 1, 0, 2, 0, 1, 3, 0]])
+    village = [feature("v", cell_box(0, 0, 1))]
+    for years in ({"start": 2005, "end": 2005}, {"start": 2005, "end": 2011}):
+        result = run_chain(
+            store, village, tmp_path, indicators=["r10mm"], baseline={"trailing": 5}, years=years
+        )
+        row = result.frame.set_index("year").loc[2005]
+        assert row["r10mm"] == 1.0 and np.isnan(row["r10mm_z"]) and row["r10mm_class"] is pd.NA, years
+        assert row["notes"] == "no_spread"
+        [flat] = [w for w in result.warnings if w["code"] == "no_spread"]
+        assert flat["feature_id"] == "v" and flat["indicator"] == "r10mm" and flat["year"] == 2005
+        _check_warnings(result.warnings)
+    # the same seasons as a fixed baseline agree: null with the same code
+    fixed = run_chain(
+        store,
+        village,
+        tmp_path,
+        indicators=["r10mm"],
+        baseline={"start": 2000, "end": 2004},
+        years={"start": 2005, "end": 2005},
+    )
+    assert np.isnan(fixed.frame["r10mm_z"].iloc[0]) and fixed.frame["notes"].iloc[0] == "no_spread"
+    # a later season's z does not depend on which years were requested either
+    short = run_chain(
+        store,
+        village,
+        tmp_path,
+        indicators=["r10mm"],
+        baseline={"trailing": 5},
+        years={"start": 2009, "end": 2011},
+    )
+    assert (
+        short.frame["r10mm_z"].tolist() == result.frame.set_index("year").loc[2009:2011, "r10mm_z"].tolist()
+    )
+
+
+def test_a_z_on_a_class_edge_is_classed_by_the_rule(tmp_path: Path) -> None:
+    # each trailing window of three holds an arithmetic progression, so many z are exactly -2, -1, 1 or 2;
+    # the last five sequences are ones whose edge cases the moving sums of before classed wrongly
+    counts = [
+        [0, 2, 4, 0, 2, 4, 0, 2, 4, 6, 2, 4],
+        [1, 5, 9, 1, 5, 9, 1, 5, 9, 1, 13, 5],
+        [3, 6, 9, 3, 6, 9, 3, 6, 9, 3, 6, 0],
+        [0, 6, 2, 4, 2, 0, 0, 0, 2, 4, 6, 6],
+        [7, 7, 6, 6, 7, 4, 5, 6, 7, 5, 6, 7],
+        [7, 8, 5, 7, 6, 8, 5, 8, 8, 7, 8, 8],
+        [9, 11, 11, 11, 9, 11, 9, 9, 9, 7, 5, 9],
+        [2, 2, 0, 6, 4, 2, 4, 2, 6, 2, 0, 2],
+    ]
+    store = _count_store(tmp_path / "edges.zarr", counts)
+    villages = [feature(f"v{i}", cell_box(0, i, 1)) for i in range(len(counts))]
+    result = run_chain(store, villages, tmp_path, indicators=["r10mm"], baseline={"trailing": 3})
+    frame = result.frame.set_index(["feature_id", "year"])
+    on_edge = 0
+    for i, per_year in enumerate(counts):
+        for t in range(3, len(per_year)):
+            row = frame.loc[(f"v{i}", 2000 + t)]
+            window = per_year[t - 3 : t]
+            if len(set(window)) == 1:
+                continue
+            expected = _class_by_the_rule(per_year[t], window)
+            assert row["r10mm_class"] == expected, (i, 2000 + t, row["r10mm_z"])
+            if abs(row["r10mm_z"]) in (1.0, 2.0):
+                on_edge += 1
+    assert on_edge >= 20  # the case is exercised: z exactly on an edge (after rounding to 9 decimals)
+
+
+# --- 3. partial seasons ---------------------------------------------------------------------------------------
+
+_MISSING = {2001: 10, 2008: 18}  # days missing (all variables) at the start of these years; 31 Dec 2004 too
+
+
+def _partial_store(path: Path):
+    """One cell, 2000-2009: TX 26.0 + 0.2 j and TN 10 below, j = year % 3, constant within a year; RR 2 mm
+    every day. Some days are missing: 10 in 2001 and 18 in 2008 (within 10 %), and 31 December 2004 (a
+    product that drops it in leap years)."""
+    time = days(2000, 2009)
+    year = time.year.to_numpy()
+    tmax = (26.0 + 0.2 * (year % 3)).astype(float)
+    values = {"tmax": tmax, "tmin": tmax - 10.0, "prcp": np.full(time.size, 2.0)}
+    gaps = np.zeros(time.size, dtype=bool)
+    for y, n in _MISSING.items():
+        gaps[np.flatnonzero(year == y)[:n]] = True
+    gaps[np.flatnonzero((year == 2004) & (time.month == 12) & (time.day == 31))] = True
+    grids = {k: np.where(gaps, np.nan, v)[:, None, None] for k, v in values.items()}
+    return write_grid(path, time, grids)
+
+
+def _full_season_gdd(year: int) -> float:
+    """Growing degree days (10-30 degC) of a whole year of this store: both temperatures inside the band, so
+    the single sine gives the daily mean minus 10 (Baskerville & Emin 1969), 11 + 0.2 j per day."""
+    n_days = 366 if year % 4 == 0 else 365
+    return n_days * (11.0 + 0.2 * (year % 3))
+
+
+@pytest.mark.parametrize("policy", ["scale", "null", "as_is"])
+def test_partial_seasons_follow_the_policy_in_the_season_and_in_its_baseline(
+    tmp_path: Path, policy: str
+) -> None:
+    store = _partial_store(tmp_path / f"partial-{policy}.zarr")
+    result = run_chain(
+        store,
+        [feature("v", cell_box(0, 0, 1))],
+        tmp_path,
+        indicators=["gdd", "su", "tmean", "prcp_total"],
+        baseline={"start": 2000, "end": 2004},
+        years={"start": 2000, "end": 2009},
+        partial_seasons=policy,
+    )
+    _check_warnings(result.warnings)
+    frame = result.frame.set_index("year")
+    present = {y: (366 if y % 4 == 0 else 365) - _MISSING.get(y, 0) - (y == 2004) for y in range(2000, 2010)}
+    expected_gdd = {}
+    for y in range(2000, 2010):
+        full = _full_season_gdd(y)
+        n_days = 366 if y % 4 == 0 else 365
+        if present[y] == n_days or policy == "scale":
+            expected_gdd[y] = full
+        elif policy == "null":
+            expected_gdd[y] = np.nan
+        else:
+            expected_gdd[y] = full * present[y] / n_days  # the sum over the days present
+    np.testing.assert_allclose(
+        frame["gdd"].to_numpy(), [expected_gdd[y] for y in range(2000, 2010)], rtol=1e-12
+    )
+    baseline = np.array([expected_gdd[y] for y in range(2000, 2005)])
+    baseline = baseline[~np.isnan(baseline)]
+    z_2008 = (expected_gdd[2008] - baseline.mean()) / baseline.std(ddof=1)
+    if policy == "null":
+        assert np.isnan(frame.loc[2008, "gdd_z"]) and np.isnan(frame.loc[2008, "su"])
+    else:
+        assert frame.loc[2008, "gdd_z"] == pytest.approx(z_2008, rel=1e-9)
+    if policy == "scale":
+        # a whole year of days at TX 26 + 0.2 j > 25: SU counts every calendar day, none is lost to the gaps
+        assert frame.loc[2008, "su"] == 366.0 and frame.loc[2008, "prcp_total"] == pytest.approx(732.0)
+        assert abs(frame.loc[2008, "gdd_z"]) < 2.0  # not a spurious "much cooler" season
+    # means use the days present under every policy
+    assert frame.loc[2008, "tmean"] == pytest.approx(21.0 + 0.2 * (2008 % 3))
+    for y in (2001, 2004, 2008):
+        assert "partial_season" in frame.loc[y, "notes"].split(), y
+    assert frame.loc[2005, "notes"] == ""  # a whole season: no note
+    assert result.provenance["request"]["partial_seasons"] == policy
+    [partial] = [w for w in result.warnings if w["code"] == "partial_season"]  # one per community
+    assert partial["feature_id"] == "v" and partial["indicator"] is None  # every indicator's days
+    assert "2008 (4.9% missing)" in partial["reason"] and "2001 (2.7% missing)" in partial["reason"]
+
+
+# --- 4. spells read exactly the requested baseline ------------------------------------------------------------
+
+
+def test_spells_use_the_whole_trailing_baseline_or_are_null(tmp_path: Path) -> None:
+    # the same weather from 1990 (record A) and from 1994 (record B): a spell must not depend on where the
+    # record starts, so B's counts whose windows reach seasons without five seasons of record before them are
+    # null, and all others equal A's
+    time = days(1990, 2008)
+    rng = np.random.default_rng(10)  # a seed whose short windows of before change the counts of 2000 and 2001
+    wetness = rng.uniform(0.2, 0.6, 19)[time.year.to_numpy() - 1990]  # each year its own share of wet days
+    prcp = np.round(np.where(rng.random(time.size) < wetness, rng.gamma(0.8, 8.0, time.size), 0.0), 1)
+    tmax = np.full(time.size, 30.0)
+    a = write_grid(
+        tmp_path / "a.zarr",
+        time,
+        {"tmax": tmax[:, None, None], "tmin": tmax[:, None, None] - 9, "prcp": prcp[:, None, None]},
+    )
+    late = time.year.to_numpy() >= 1994
+    b = write_grid(
+        tmp_path / "b.zarr",
+        time[late],
+        {"tmax": tmax[late, None, None], "tmin": tmax[late, None, None] - 9, "prcp": prcp[late, None, None]},
+    )
+    request = {
+        "indicators": ["prcp_total"],
+        "baseline": {"trailing": 5},
+        "years": {"start": 1999, "end": 2008},
+        "spells": [{"name": "dry", "window": 4, "when": [{"indicator": "prcp_total", "z_max": -0.3}]}],
+    }
+    village = [feature("v", cell_box(0, 0, 1))]
+    from_a = run_chain(a, village, tmp_path, **request).frame.set_index("year")
+    result_b = run_chain(b, village, tmp_path, **request)
+    from_b = result_b.frame.set_index("year")
+    # wherever B gives a count it is A's (the same weather, the same requested baseline)
+    both = from_b["dry_count"].notna()
+    assert from_b.loc[both, "dry_count"].tolist() == from_a.loc[both, "dry_count"].tolist()
+    # B's first season-year with five seasons before it is 1999: windows of 4 ending 1999-2001 reach before it
+    assert from_b.loc[1999:2001, "dry_count"].isna().all()
+    assert all("spell_before_baseline" in n.split() for n in from_b.loc[1999:2001, "notes"])
+    [before] = [w for w in result_b.warnings if w["code"] == "spell_before_baseline"]
+    assert "1999-2001" in before["reason"] and before["feature_id"] is None
+    assert from_a.loc[1999:2001, "dry_count"].notna().all()
+    assert from_a.loc[2002:2008, "dry_count"].tolist() == from_b.loc[2002:2008, "dry_count"].tolist()
+    assert from_a["prcp_total_z"].tolist() == from_b["prcp_total_z"].tolist()  # the z of the years asked for
+    assert from_a["dry_count"].astype(float).fillna(-1).gt(0).any()  # the case is exercised: some dry seasons

@@ -13,15 +13,15 @@ import numpy as np
 import pytest
 
 from service.indicators import extremes
-from service.indicators.base import get_indicator
+from service.indicators.base import get_indicator, values_of
 
 sys.path.insert(0, str(Path(__file__).parent))  # the folder's own helper module (importlib import mode)
 from _support_cube import daily_series, fixed_baseline, season_cube, trailing_baseline  # noqa: E402
 
 
-def _run(name, cube, baseline):
+def _run(name, cube, baseline, **params):
     entry = get_indicator(name)
-    return entry.compute(cube, baseline, entry.resolve({}))
+    return values_of(entry.compute(cube, baseline, entry.resolve(params)))
 
 
 def _ten_day_cube(prcp=0.0, tmax=20.0, tmin=10.0, before=None, after=None):
@@ -414,13 +414,14 @@ def test_float32_series_give_float64_values_close_to_float64_ones():
         cube64 = season_cube(wide, months=[4, 5, 6, 7])
         cube32 = season_cube(narrow, months=[4, 5, 6, 7])
         entry = get_indicator(name)
-        v64 = entry.compute(cube64, fixed_baseline(cube64, 2000, 2004), entry.resolve({}))
-        v32 = entry.compute(cube32, fixed_baseline(cube32, 2000, 2004), entry.resolve({}))
+        v64 = values_of(entry.compute(cube64, fixed_baseline(cube64, 2000, 2004), entry.resolve({})))
+        v32 = values_of(entry.compute(cube32, fixed_baseline(cube32, 2000, 2004), entry.resolve({})))
         assert v32.dtype == np.float64 and v32.shape == (2, 6), name
         np.testing.assert_allclose(v32, v64, rtol=1e-6, atol=1e-6, err_msg=name)
 
 
 def test_threshold_cache_shares_one_pass_and_forgets_a_dead_cube():
+    import dataclasses
     import gc
 
     daily = daily_series(2000, 4, tmax=np.arange(4 * 365 + 1, dtype=float) % 7)
@@ -428,9 +429,12 @@ def test_threshold_cache_shares_one_pass_and_forgets_a_dead_cube():
     base = fixed_baseline(cube, 2000, 2002)
     first = extremes.calendar_day_thresholds(cube, base, "tmax", 0.9)
     assert extremes.calendar_day_thresholds(cube, base, "tmax", 0.9) is first
+    # another indicator's view of the same cut (other variables) shares the pass
+    view = dataclasses.replace(cube, prcp=None)
+    assert extremes.calendar_day_thresholds(view, base, "tmax", 0.9) is first
     assert extremes.calendar_day_thresholds(cube, base, "tmax", 0.5) is not first
-    keys = [k for k in extremes._THRESHOLD_CACHE if k[0] == id(cube)]
+    keys = [k for k in extremes._THRESHOLD_CACHE if k[0] == id(cube.time_index)]
     assert len(keys) == 2
-    del cube, first
+    del cube, first, view
     gc.collect()
     assert not any(k in extremes._THRESHOLD_CACHE for k in keys)
