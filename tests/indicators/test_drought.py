@@ -10,7 +10,7 @@ import pytest
 from scipy import stats
 
 from service.indicators import drought
-from service.indicators.base import values_of, Baseline, get_indicator
+from service.indicators.base import Baseline, get_indicator, values_of
 
 sys.path.insert(0, str(Path(__file__).parent))  # the folder's own helper module (importlib import mode)
 from _support_cube import daily_series, fixed_baseline, season_cube, trailing_baseline  # noqa: E402
