@@ -148,7 +148,7 @@ register(
     Indicator(
         name="prcp_total",
         unit="mm",
-        definition="Total precipitation of the season (sum of daily precipitation over the days with data).",
+        definition="Total precipitation of the season: the sum of its daily precipitation.",
         source="Season sum of daily precipitation (PRCPTOT-like, but over all days; " + ETCCDI + ")",
         family="precipitation",
         compute=prcp_total,

@@ -62,7 +62,7 @@ DEFAULT_INDICATORS = ("prcp_total", "wet_days", "tmean", "tmax_mean", "tmin_mean
 DEFAULT_PAIR = ("prcp_total", "tmean")
 # The default baseline: the first 30 season-years the data serve whole (all of them when fewer). WMO-No. 1090
 # (2012) asks for at least 30 years of record to fit SPI, and WMO climate normals span 30 years; with the
-# 10 seasons used before, a stationary Monte Carlo gave SPI <= -2 in 5.3 % of seasons instead of 2.3 %.
+# 10 seasons used before, a stationary Monte Carlo gave SPI <= -2 in 5.2 % of seasons instead of 2.3 % (docs/methods.md).
 DEFAULT_BASELINE_SEASONS = 30
 # Distribution-fitted and percentile indices on fewer baseline seasons get the warning short_baseline_fit.
 MIN_FIT_SEASONS = 30

@@ -6,6 +6,7 @@ and pipeline.run, and reads the table. Hand-worked values are explained beside e
 
 from __future__ import annotations
 
+import json
 import sys
 from pathlib import Path
 
@@ -15,6 +16,7 @@ import pytest
 
 from service.errors import RequestError
 from service.warning_codes import WARNING_CODES
+from tests._support_server import live_server  # noqa: F401 - the session's live server fixture
 
 sys.path.insert(0, str(Path(__file__).parent))  # the folder's own helper module (importlib import mode)
 from _support_chain import cell_box, days, feature, run_chain, write_grid  # noqa: E402
@@ -336,3 +338,290 @@ def test_spells_use_the_whole_trailing_baseline_or_are_null(tmp_path: Path) -> N
     assert from_a.loc[2002:2008, "dry_count"].tolist() == from_b.loc[2002:2008, "dry_count"].tolist()
     assert from_a["prcp_total_z"].tolist() == from_b["prcp_total_z"].tolist()  # the z of the years asked for
     assert from_a["dry_count"].astype(float).fillna(-1).gt(0).any()  # the case is exercised: some dry seasons
+
+
+# --- 5. aggregation order -------------------------------------------------------------------------------------
+
+
+def _sine_degree_days(tmax: float, tmin: float, threshold: float) -> float:
+    """Degree days above ``threshold`` of a day whose temperature is a sine between tmin and tmax, by numerical
+    integration over the day (an independent check of the single-sine formula, Baskerville & Emin 1969)."""
+    t = np.linspace(0.0, 2.0 * np.pi, 200_001)
+    temperature = (tmax + tmin) / 2 + (tmax - tmin) / 2 * np.sin(t)
+    return float(np.trapezoid(np.maximum(temperature - threshold, 0.0), t) / (2.0 * np.pi))
+
+
+def _two_climates_store(path: Path, gap_year: int | None = None):
+    """1 x 3 cells, 2000-2004. Cell 0: TX 35, TN 20, RR 2 mm every day. Cell 1: TX 25, TN 16, dry. Cell 2 as
+    cell 0 but missing all of ``gap_year``. Year-to-year variation is nil: this test is about values."""
+    time = days(2000, 2004)
+    n = time.size
+    tmax = np.empty((n, 1, 3))
+    tmin = np.empty((n, 1, 3))
+    prcp = np.empty((n, 1, 3))
+    tmax[:, 0, 0], tmin[:, 0, 0], prcp[:, 0, 0] = 35.0, 20.0, 2.0
+    tmax[:, 0, 1], tmin[:, 0, 1], prcp[:, 0, 1] = 25.0, 16.0, 0.0
+    tmax[:, 0, 2], tmin[:, 0, 2], prcp[:, 0, 2] = 35.0, 20.0, 2.0
+    if gap_year is not None:
+        gap = time.year.to_numpy() == gap_year
+        for values in (tmax, tmin, prcp):
+            values[gap, 0, 2] = np.nan
+    return write_grid(path, time, {"tmax": tmax, "tmin": tmin, "prcp": prcp})
+
+
+def test_aggregation_cells_averages_the_cells_values_and_series_the_cells_days(tmp_path: Path) -> None:
+    store = _two_climates_store(tmp_path / "two.zarr", gap_year=2001)
+    w, s, e, n = cell_box(0, 0, 1, inset=0.0)
+    halves = feature("halves", (w + 0.3, s + 0.1, w + 0.7, s + 0.4))  # equal shares of cells 0 and 1
+    mostly = feature("mostly", (w + 0.55, s + 0.1, w + 1.02, s + 0.4))  # cell 1, and a sliver (4 %) of cell 2
+    wide = feature("wide", (w + 0.75, s + 0.1, w + 1.25, s + 0.4))  # half of cell 1, half of cell 2
+    fields = {"indicators": ["wet_days", "edd", "cdd"], "baseline": {"start": 2000, "end": 2004}}
+    by_cells = run_chain(store, [halves, mostly, wide], tmp_path, aggregation="cells", **fields)
+    by_series = run_chain(store, [halves, mostly, wide], tmp_path, **fields)
+    cells = by_cells.frame.set_index(["feature_id", "year"])
+    series = by_series.frame.set_index(["feature_id", "year"])
+    hot, cool, mean = (
+        _sine_degree_days(35, 20, 29),
+        _sine_degree_days(25, 16, 29),
+        _sine_degree_days(30, 18, 29),
+    )
+    # CHECK-VALUES.md (recomputed by integration): 1.6852 for (35, 20) and 0.1236 for (30, 18) above 29 degC
+    assert hot == pytest.approx(1.6852, abs=1e-4) and mean == pytest.approx(0.1236, abs=1e-4) and cool == 0.0
+    row_cells, row_series = cells.loc[("halves", 2002)], series.loc[("halves", 2002)]
+    # series: the mean day is TX 30, TN 18, RR 1 mm: every day wet, never dry, 0.1236 degree days a day
+    assert row_series["wet_days"] == 365 and row_series["cdd"] == 0
+    assert row_series["edd"] == pytest.approx(365 * mean, rel=1e-4)
+    # cells: the mean of the cells' own values
+    assert row_cells["wet_days"] == 182.5 and row_cells["cdd"] == 182.5
+    assert row_cells["edd"] == pytest.approx(365 * hot / 2, rel=1e-4)
+    # a cell without a value in 2001: 'mostly' keeps the mean of the rest (its sliver), noted partial_cells;
+    # 'wide' loses half of its weight, more than max_missing_share (10 %): null, too_few_cells
+    assert (
+        cells.loc[("mostly", 2001), "wet_days"] == 0
+        and "partial_cells" in cells.loc[("mostly", 2001), "notes"]
+    )
+    assert cells.loc[("mostly", 2002), "wet_days"] < 366 and cells.loc[("mostly", 2002), "notes"] in (
+        "",
+        "no_spread",
+    )
+    assert (
+        np.isnan(cells.loc[("wide", 2001), "wet_days"])
+        and "too_few_cells" in cells.loc[("wide", 2001), "notes"]
+    )
+    assert by_cells.provenance["request"]["aggregation"] == "cells"
+    assert by_cells.provenance["methods"]["aggregation"].startswith("cells:")
+    assert by_series.provenance["request"]["aggregation"] == "series"
+    _check_warnings(by_cells.warnings)
+
+
+def test_the_new_fields_travel_through_the_api_the_client_jobs_and_the_command(
+    live_server,  # noqa: F811 - the fixture
+    tiny_demo: Path,
+    tiny_communities: dict,
+    tmp_path: Path,
+) -> None:
+    from service.cli import main
+    from service.client import Client
+
+    few = {"type": "FeatureCollection", "features": tiny_communities["features"][:3]}
+    fields = {
+        "indicators": ["wet_days", "edd"],
+        "baseline": (1981, 1990),
+        "years": (1991, 1994),
+        "aggregation": "cells",
+        "partial_seasons": "null",
+    }
+    with Client(live_server.base_url) as client:
+        on_demand = client.indicators(few, **fields)
+        as_job = client.indicators(few, as_job=True, progress=False, **fields)
+        series = client.indicators(few, **{**fields, "aggregation": "series"})
+    for frame in (on_demand, as_job):
+        request = frame.attrs["provenance"]["request"]
+        assert request["aggregation"] == "cells" and request["partial_seasons"] == "null"
+        assert frame.attrs["provenance"]["methods"]["aggregation"].startswith("cells:")
+        assert list(frame.columns)[-1] == "notes"
+    pd.testing.assert_frame_equal(
+        on_demand.reset_index(drop=True), as_job.reset_index(drop=True), check_dtype=False
+    )
+    assert not np.allclose(on_demand["wet_days"], series["wet_days"])  # the demo's cells differ
+    # the command: a request file through the same model
+    request_path = tmp_path / "request.json"
+    request_path.write_text(
+        json.dumps(
+            {
+                "features": few,
+                "indicators": ["wet_days"],
+                "baseline": {"start": 1981, "end": 1990},
+                "years": {"start": 1991, "end": 1992},
+                "aggregation": "cells",
+            }
+        ),
+        encoding="utf-8",
+    )
+    out = tmp_path / "cells.csv"
+    assert (
+        main(
+            [
+                "compute",
+                "--store",
+                str(tiny_demo),
+                "--request",
+                str(request_path),
+                "--out",
+                str(out),
+                "--quiet",
+            ]
+        )
+        == 0
+    )
+    sidecar = json.loads((tmp_path / "cells.csv.provenance.json").read_text(encoding="utf-8"))
+    assert sidecar["provenance"]["request"]["aggregation"] == "cells"
+    table = pd.read_csv(out, keep_default_na=False)
+    assert list(table.columns)[-1] == "notes" and len(table) == 3 * 2
+
+
+# --- 6 and 7. baseline length, clipping, and what exactly is computed ---------------------------------------
+
+# Annual precipitation of each cell, 2000-2011, spread evenly over the year's days (mm); baseline 2000-2009.
+_TOTALS = {
+    "zeros": [0, 400, 0, 350, 0, 420, 0, 380, 0, 410, 0, 400],  # 5 of 10 baseline years without rain
+    "never": [300, 400, 350, 380, 420, 390, 360, 410, 370, 405, 0, 400],  # a dry year against no dry one
+    "skewed": [
+        820,
+        800,
+        810,
+        805,
+        790,
+        815,
+        100,
+        812,
+        795,
+        808,
+        830,
+        805,
+    ],  # one very dry year: negative skew
+}
+
+
+def _drought_store(path: Path):
+    """1 x 3 cells (zeros, never, skewed), 2000-2011: TX 30, TN 18 every day; rain as _TOTALS says."""
+    time = days(2000, 2011)
+    year = time.year.to_numpy()
+    prcp = np.zeros((time.size, 1, len(_TOTALS)))
+    for i, totals in enumerate(_TOTALS.values()):
+        for y, total in enumerate(totals):
+            this = year == 2000 + y
+            prcp[this, 0, i] = np.round(total / this.sum(), 1)  # on the 0.1 mm step
+    tmax = np.full((time.size, 1, len(_TOTALS)), 30.0)
+    return write_grid(path, time, {"tmax": tmax, "tmin": tmax - 12.0, "prcp": prcp}), prcp, year
+
+
+def test_fitted_indices_say_how_they_were_fitted_and_where_they_are_clipped(tmp_path: Path) -> None:
+    from scipy import stats
+
+    store, prcp, year = _drought_store(tmp_path / "drought.zarr")
+    villages = [feature(name, cell_box(0, i, 1)) for i, name in enumerate(_TOTALS)]
+    fields = {"baseline": {"start": 2000, "end": 2009}, "years": {"start": 2010, "end": 2011}}
+    result = run_chain(store, villages, tmp_path, indicators=["spi", "spei"], **fields)
+    frame = result.frame.set_index(["feature_id", "year"])
+    _check_warnings(result.warnings)
+    # 6: a fit on 10 seasons (< 30, WMO-No. 1090) is flagged once per indicator, on every row it touches
+    short = {w["indicator"] for w in result.warnings if w["code"] == "short_baseline_fit"}
+    assert short == {"spi", "spei"} and all("short_baseline_fit" in n for n in frame["notes"])
+    # 7: SPI of a season without rain is the published Phi^-1(q), q = 5/10 dry baseline seasons: 0 ("near
+    # normal"), flagged zero_rain_spi (WMO-No. 1090: H = q + (1 - q) G(x))
+    zeros = frame.loc[("zeros", 2010)]
+    assert zeros["spi"] == pytest.approx(stats.norm.ppf(0.5), abs=1e-9) and "zero_rain_spi" in zeros["notes"]
+    assert zeros["spi_category"] == "near normal"
+    # 6: against a baseline without a dry season, a dry season is beyond the fit: clipped to -5, flagged at_clip
+    never = frame.loc[("never", 2010)]
+    assert never["spi"] == -5.0 and "at_clip" in never["notes"].split() and "zero_rain_spi" in never["notes"]
+    # spi_z and spei_z equal the values (a standard-normal deviate is its own z)
+    assert frame["spi_z"].equals(frame["spi"]) and frame["spei_z"].equals(frame["spei"])
+    # 7: SPEI of a negatively skewed baseline: the generalized logistic (default) is bounded above and says so;
+    # the log-logistic has no fit there and leaves the value null
+    skewed = frame.loc[("skewed", 2010)]
+    assert np.isfinite(skewed["spei"]) and "spei_upper_bound" in skewed["notes"]
+    strict = run_chain(
+        store,
+        villages,
+        tmp_path,
+        indicators=[{"name": "spei", "distribution": "log_logistic"}, "tx90p"],
+        **fields,
+    )
+    column = "spei_distributionlog_logistic"
+    row = strict.frame.set_index(["feature_id", "year"]).loc[("skewed", 2010)]
+    assert np.isnan(row[column]) and "no_fit" in row["notes"]
+    methods = strict.provenance["methods"]["indicators"]
+    assert methods[column]["parameters"] == {"distribution": "log_logistic"}
+    assert "generalized logistic" in result.provenance["methods"]["indicators"]["spei"]["definition"]
+    # the percentile indices' in-base bias is stated where a reader of the result finds it
+    assert "Zhang et al. 2005" in methods["tx90p"]["details"] and "biased low" in methods["tx90p"]["details"]
+
+
+def test_the_catalog_states_each_choice() -> None:
+    from service.routes.indicators import indicator_catalog
+
+    catalog = {entry.name: entry for entry in indicator_catalog().indicators}
+    assert all(entry.variables and entry.reduction for entry in catalog.values())
+    assert catalog["spi"].bounds == [-5.0, 5.0] == catalog["spei"].bounds
+    assert "zero_rain_spi" in catalog["spi"].details and "spi_z == spi" in catalog["spi"].details
+    spei = catalog["spei"].parameters["distribution"]
+    assert spei.default == "generalized_logistic" and spei.choices == ["generalized_logistic", "log_logistic"]
+    pool = catalog["r95ptot"].parameters["threshold_pool"]
+    assert pool.default == "year" and pool.choices == ["year", "season"]
+    for name in ("tx90p", "tn10p", "hotdry_days", "hotdry_spell"):
+        assert "not applied" in catalog[name].details and "in base" in catalog[name].details, name
+    assert catalog["su"].reduction == "count" and catalog["tmean"].reduction == "mean"
+
+
+def test_r95ptot_takes_its_threshold_from_the_pool_asked_for(tmp_path: Path) -> None:
+    # March is the season. Baseline 2000-2002: March has the wet days 1..20 mm, June the wet days 50..69 mm;
+    # 2003's March has 19.5, 25, 40 and 55 mm days
+    time = days(2000, 2003)
+    year, month = time.year.to_numpy(), time.month.to_numpy()
+    prcp = np.zeros(time.size)
+    for y in (2000, 2001, 2002):
+        prcp[np.flatnonzero((year == y) & (month == 3))[:20]] = np.arange(1.0, 21.0)
+        prcp[np.flatnonzero((year == y) & (month == 6))[:20]] = np.arange(50.0, 70.0)
+    prcp[np.flatnonzero((year == 2003) & (month == 3))[:4]] = [19.5, 25.0, 40.0, 55.0]
+    tmax = np.full(time.size, 25.0)
+    store = write_grid(
+        tmp_path / "r95.zarr",
+        time,
+        {"tmax": tmax[:, None, None], "tmin": tmax[:, None, None] - 10, "prcp": prcp[:, None, None]},
+    )
+    fields = {
+        "season": {"months": [3]},
+        "baseline": {"start": 2000, "end": 2002},
+        "years": {"start": 2003, "end": 2003},
+    }
+    village = [feature("v", cell_box(0, 0, 1))]
+    # the type 8 95th percentile (Hyndman & Fan 1996; numpy's median_unbiased) of each pool, by numpy
+    season_pool = np.quantile(np.tile(np.arange(1.0, 21.0), 3), 0.95, method="median_unbiased")
+    year_pool = np.quantile(
+        np.tile(np.r_[np.arange(1.0, 21.0), np.arange(50.0, 70.0)], 3), 0.95, method="median_unbiased"
+    )
+    assert 19 < season_pool < 20 and 67 < year_pool < 69
+    default = run_chain(store, village, tmp_path, indicators=["r95ptot"], **fields).frame
+    seasonal = run_chain(
+        store, village, tmp_path, indicators=[{"name": "r95ptot", "threshold_pool": "season"}], **fields
+    ).frame
+    # ETCCDI (Zhang et al. 2011): the base period's wet days of whole years; no March day of 2003 is above 67 mm
+    assert default["r95ptot"].iloc[0] == 0.0
+    # the seasonal variant: March's own wet days; 25 + 40 + 55 mm are above its 19.7 mm
+    assert seasonal["r95ptot_threshold_poolseason"].iloc[0] == pytest.approx(120.0)
+
+
+def test_the_methods_page_names_every_indicator_option_and_warning_code() -> None:
+    from service.indicators.base import catalog
+
+    text = (Path(__file__).parents[2] / "docs" / "methods.md").read_text(encoding="utf-8")
+    for code in WARNING_CODES:
+        assert f"`{code}`" in text, code
+    for entry in catalog():
+        assert f"`{entry.name}`" in text, entry.name
+        for choice in (c for p in entry.parameters.values() for c in p.choices):
+            assert f'`"{choice}"`' in text, (entry.name, choice)
+    for option in ('"series"', '"cells"', '"scale"', '"null"', '"as_is"'):
+        assert f"`{option}`" in text, option
