@@ -13,10 +13,10 @@ from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
 
+import dask
 import numpy as np
 import pandas as pd
 import pyproj
-from scipy import sparse
 
 from service import __version__, cluster, request_text
 from service.aggregate import aggregate
@@ -357,9 +357,7 @@ def run(
         batch = take_weights(weights, rows)
         batch_properties = [properties[i] for i in rows]
         if resolved.aggregation == "cells":
-            table = cells_table(
-                store, batch, batch_properties, resolved, span, variables, settings, batch_size
-            )
+            table = cells_table(store, batch, batch_properties, resolved, span, variables, settings)
         else:
             daily = _aggregated_daily(store, batch, span, variables, settings)
             table = compute_table(daily, list(batch.feature_ids), batch_properties, resolved)
@@ -1043,6 +1041,59 @@ def cell_centres_lonlat(store: Store, cells: np.ndarray) -> tuple[np.ndarray, np
     return np.asarray(lon, dtype=np.float64), np.asarray(lat, dtype=np.float64)
 
 
+def cell_daily_series(
+    store: Store, cells: np.ndarray, span: slice, variables: tuple[str, ...]
+) -> DailySeries:
+    """The stored daily values of grid cells ``cells`` (iy * nx + ix, best all in one read unit) over ``span``.
+
+    Decoded and snapped like every daily mean (daily_values), so a stored 25.0 is exactly 25.0; one window
+    read per variable over the cells' bounding box. Latitude is each cell centre's (for SPEI's radiation).
+    """
+    ny, nx = store.grid.shape
+    iy, ix = np.divmod(np.asarray(cells, dtype=np.int64), nx)
+    y, x = slice(int(iy.min()), int(iy.max()) + 1), slice(int(ix.min()), int(ix.max()) + 1)
+    arrays: dict[str, np.ndarray | None] = dict.fromkeys(VARIABLES)
+    for var in variables:
+        # pick the cells from the stored integers, then decode once into one fresh array: fresh memory is
+        # the costly part here (page faults), so no full-size temporaries
+        raw = store.read_raw(var, y, x, span)[iy - y.start, ix - x.start]  # (cells, days) integers
+        enc = store.encoding(var)
+        values = raw.astype(np.float64)
+        steps = 1.0 / enc.scale_factor
+        if enc.add_offset == 0.0 and abs(steps - round(steps)) < 1e-9:
+            # raw / 10 is correctly rounded: the double nearest the decimal value, as snapping gives
+            values /= round(steps)
+        else:
+            values *= enc.scale_factor
+            values += enc.add_offset
+            snap_daily(values, snap_decimals(enc.scale_factor, enc.add_offset))
+        values[raw == enc.fill_value] = np.nan
+        arrays[var] = values
+    dates = store.dates
+    _, lat = cell_centres_lonlat(store, cells)
+    return DailySeries(
+        **arrays,
+        year=np.asarray(dates.year[span]),
+        month=np.asarray(dates.month[span]),
+        day=np.asarray(dates.day[span]),
+        dayofyear=np.asarray(dates.dayofyear[span]),
+        calendar=store.calendar,
+        latitude=lat,
+    )
+
+
+def cell_chunk_values(
+    store: Store,
+    cells: np.ndarray,
+    span: slice,
+    variables: tuple[str, ...],
+    resolved: IndicatorRequest,
+    groups: list[Any],
+) -> list[RawValues]:
+    """One task of aggregation "cells": the raw indicator values of some cells of one read unit, per group."""
+    return compute_cell_values(cell_daily_series(store, cells, span, variables), resolved, groups)
+
+
 def cells_table(
     store: Store,
     batch: Weights,
@@ -1051,15 +1102,16 @@ def cells_table(
     span: slice,
     variables: tuple[str, ...],
     settings: Settings,
-    cells_per_batch: int = DEFAULT_BATCH_FEATURES,
 ) -> IndicatorTable:
-    """Aggregation "cells": each cell the features touch gets its own daily series and indicator values
-    (cells in batches of ``cells_per_batch``), then each feature's values are the weighted means of its cells'.
+    """Aggregation "cells": each cell the features touch gets its own stored daily series and indicator
+    values, then each feature's values are the weighted means of its cells' values.
 
-    A cell's series is the aggregation of a pseudo-feature with weight 1 on that cell alone, so it is the
-    stored value (snapped as every daily mean); SPEI's radiation uses the cell centre's latitude. The
-    features' weights (area, or area times a layer) weigh the cell values: see
-    service.indicators.table.combine_cells for cells without a value.
+    One task per read unit (the store's chunk or shard) that the features touch: it reads the unit's
+    touched cells and returns their raw indicator values (small), so the daily series of the cells never
+    travel and the tasks run on the cluster like the aggregation's. A cell's series is its stored value
+    (snapped as every daily mean); SPEI's radiation uses the cell centre's latitude. The features' weights
+    (area, or area times a layer) weigh the cell values: see service.indicators.table.combine_cells for
+    cells without a value.
     """
     matrix = batch.matrix.tocsr()
     cells = np.unique(matrix.indices[matrix.data > 0]).astype(np.int64)
@@ -1067,30 +1119,31 @@ def cells_table(
         daily = _aggregated_daily(store, batch, span, variables, settings)
         return compute_table(daily, list(batch.feature_ids), [p or {} for p in properties], resolved)
     ny, nx = store.grid.shape
+    cy, cx, _ = store.chunk_shape
+    iy, ix = np.divmod(cells, nx)
+    unit = (iy // cy) * (-(-nx // cx)) + ix // cx
+    order = np.argsort(unit, kind="stable")
+    cells, unit = cells[order], unit[order]
+    starts = np.flatnonzero(np.r_[True, np.diff(unit) != 0])
+    pieces = np.split(cells, starts[1:])
     groups = cell_groups(batch.feature_ids, properties, resolved)
-    parts: list[list[RawValues]] = [[] for _ in groups]
-    for start in range(0, cells.size, cells_per_batch):
-        chunk = cells[start : start + cells_per_batch]
-        lon, lat = cell_centres_lonlat(store, chunk)
-        one = np.ones(chunk.size)
-        pseudo = Weights(
-            matrix=sparse.csr_matrix((one, (np.arange(chunk.size), chunk)), shape=(chunk.size, ny * nx)),
-            feature_ids=[f"cell-{c}" for c in chunk],
-            area_km2=one,
-            n_cells=np.ones(chunk.size, dtype=np.int64),
-            coverage=one,
-            latitude=lat,
-            longitude=lon,
-            key=f"cells:{hashlib.sha256(chunk.tobytes()).hexdigest()[:24]}",
-            weighting=batch.weighting,
-        )
-        daily = _aggregated_daily(store, pseudo, span, variables, settings)
-        for values, raw in zip(parts, compute_cell_values(daily, resolved, groups), strict=True):
-            values.append(raw)
-    cell_values = [concat_raw(p) for p in parts]
+    light = dask.delayed(resolved.model_copy(update={"features": _first_feature(resolved)}))
+    tasks = [
+        dask.delayed(cell_chunk_values, pure=False)(store, piece, span, variables, light, groups)
+        for piece in pieces
+    ]
+    results = cluster.compute(*tasks, settings=settings)
+    cell_values = [concat_raw([r[g] for r in results]) for g in range(len(groups))]
     return compute_table_from_cells(
         cell_values, matrix[:, cells], list(batch.feature_ids), [p or {} for p in properties], resolved
     )
+
+
+def _first_feature(request: IndicatorRequest) -> Any:
+    """The request's first feature alone: what a cell task needs of the features (nothing, but the model
+    wants one), so that a task sent to a cluster does not carry every community's geometry."""
+    features = request.features
+    return features.features[0] if hasattr(features, "features") else features
 
 
 def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFrame:
