@@ -93,7 +93,7 @@ def baseline_text(baseline: Any) -> str:
             return f"the {baseline['trailing']} season-years before each season-year"
         if "start" in baseline:
             return f"{baseline['start']}-{baseline['end']}"
-    return "the first ten season-years of data" if baseline is None else str(baseline)
+    return "the first 30 season-years of data" if baseline is None else str(baseline)
 
 
 def weighting_text(weighting: Any) -> str:
