@@ -113,7 +113,8 @@ def provenance(
         "request_hash": request_hash(resolved, store.fingerprint),
         "request": request,
     }
-    if isinstance(resolved, IndicatorRequest):
+    if isinstance(resolved, IndicatorRequest) and resolved.baseline is not None and resolved.indicators:
+        # what was computed, in words (a resolved request only: an unresolved one has no choices to state)
         document["methods"] = methods_statement(resolved, snap_places(store, needed_variables(resolved)))
     return document
 
@@ -1001,6 +1002,7 @@ def _variants_provenance(
                 "fingerprint": run_.store.fingerprint,
                 "request_hash": document["request_hash"],
                 "request": own,
+                "methods": document.get("methods"),
             }
         )
     base = provenance(request, store, parsed, skipped_of(*[_Skipped(r.skipped) for r in runs]))

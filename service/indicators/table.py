@@ -1353,6 +1353,9 @@ def methods_statement(request: IndicatorRequest, snap: Mapping[str, int]) -> dic
     ``snap`` gives the decimals each variable's daily means were snapped to (service.indicators.base).
     """
     planned = plan_indicators(request.indicators or [])
+    share = (
+        seasons.DEFAULT_MAX_MISSING_SHARE if request.max_missing_share is None else request.max_missing_share
+    )
     edges = ", ".join(f"{e:g}" for e in request.classes.edges)
     baseline = request.baseline
     if isinstance(baseline, FixedBaseline):
@@ -1384,7 +1387,7 @@ def methods_statement(request: IndicatorRequest, snap: Mapping[str, int]) -> dic
         + ", ".join(f"{v} {d} decimals" for v, d in snap.items())
         + " (the storage step plus three), so values exact in storage units meet thresholds exactly",
         "aggregation": f"{request.aggregation}: {_AGGREGATION_TEXT[request.aggregation]}",
-        "seasons": f"a season with more than {request.max_missing_share:.0%} of its days missing (for the "
+        "seasons": f"a season with more than {share:.0%} of its days missing (for the "
         f"variables an indicator reads) is null; partial seasons: {request.partial_seasons} "
         f"({_POLICY_TEXT[request.partial_seasons]}); means, extremes, runs and shares use the days present",
         "baseline": baseline_text,
