@@ -1036,8 +1036,7 @@ def cell_centres_lonlat(store: Store, cells: np.ndarray) -> tuple[np.ndarray, np
     grid = store.grid
     iy, ix = np.divmod(np.asarray(cells, dtype=np.int64), grid.shape[1])
     x, y = np.asarray(grid.x)[ix], np.asarray(grid.y)[iy]
-    if grid.is_geographic:
-        return x.astype(np.float64), y.astype(np.float64)
+    # through PROJ even for a geographic grid: a rotated-pole grid is geographic in its own coordinates
     to_lonlat = pyproj.Transformer.from_crs(grid.crs(), pyproj.CRS.from_epsg(4326), always_xy=True)
     lon, lat = to_lonlat.transform(x, y)
     return np.asarray(lon, dtype=np.float64), np.asarray(lat, dtype=np.float64)
