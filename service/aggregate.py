@@ -103,7 +103,11 @@ def chunk_sums(
 ) -> Partial:
     """One task: read one chunk's stored integers and return its features' partial sums (scaled units)."""
     raw = store.read_raw(var, chunk.y, chunk.x, t)
-    block = raw.reshape(-1, raw.shape[-1])  # (cells, days), days contiguous: no transpose
+    return block_sums(raw.reshape(-1, raw.shape[-1]), chunk, scale_factor, fill_value)
+
+
+def block_sums(block: np.ndarray, chunk: ChunkWeights, scale_factor: float, fill_value: int) -> Partial:
+    """A chunk's partial sums from its (cells, days) stored integers (days contiguous; may be read-only)."""
     matrix = chunk.matrix
     used_cells = np.unique(matrix.indices)
     if used_cells.size * 2 < block.shape[0]:
@@ -114,24 +118,33 @@ def chunk_sums(
     total = np.asarray(matrix.sum(axis=1)).ravel()
     used = np.zeros(block.shape[0], dtype=bool)
     used[matrix.indices] = True
-    missing = block == fill_value
-    bad = np.flatnonzero(used & missing.any(axis=1))
+    if fill_value == np.iinfo(block.dtype).min:
+        # the fill is the type's smallest value: a row's minimum finds it without a (cells, days) mask
+        has_gaps = block.min(axis=1) == fill_value
+    else:
+        has_gaps = (block == fill_value).any(axis=1)
+    bad = np.flatnonzero(used & has_gaps)
     correction = None
     if bad.size:
         # Zero the missing values of the few cells that have them, and take their weight off those days.
+        missing = block[bad] == fill_value
         rows_with_gaps = block[bad]
-        rows_with_gaps[missing[bad]] = 0
+        rows_with_gaps[missing] = 0
         block = block if block.flags.writeable else block.copy()
         block[bad] = rows_with_gaps
-        correction = -(matrix[:, bad] @ missing[bad].astype(np.float64))
+        correction = -(matrix[:, bad] @ missing.astype(np.float64))
     scaled = matrix * scale_factor
     days = block.shape[1]
     weighted_sum = np.empty((matrix.shape[0], days))
     # Days in tiles: the float64 copy of a tile and the sums it feeds stay in cache (about 1.5x faster
-    # than one multiply over the whole block, in a micro-benchmark of a 32 x 32 x 3653 chunk here).
+    # than one multiply over the whole block, in a micro-benchmark of a 32 x 32 x 3653 chunk here); one
+    # tile buffer is reused, so no fresh memory is page-faulted per tile.
+    tile = np.empty((block.shape[0], min(days, TIME_TILE_DAYS)))
     for t0 in range(0, days, TIME_TILE_DAYS):
         t1 = min(days, t0 + TIME_TILE_DAYS)
-        weighted_sum[:, t0:t1] = scaled @ block[:, t0:t1].astype(np.float64)
+        part = tile[:, : t1 - t0]
+        np.copyto(part, block[:, t0:t1], casting="unsafe")
+        weighted_sum[:, t0:t1] = scaled @ part
     return Partial(chunk.rows, weighted_sum, total, correction)
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import importlib
 import importlib.util
 import json
@@ -33,12 +34,14 @@ from service.errors import (
     validation_items,
 )
 from service.jobs import JobRunner
+from service.memory import release_memory
 from service.registry import StoreRegistry
 from service.routes import ROUTER_MODULES
 from service.routes.body import ProblemException, parsed_body
 from service.routes.deps import ServiceState, load_tokens
 from service.routes.models import Problem
 from service.settings import Settings
+from service.store.chunks import configure_tile_cache
 
 log = logging.getLogger("wxshock.app")
 
@@ -297,6 +300,24 @@ class UnexpectedErrors:
             await ProblemResponse(doc, status_code=status)(scope, receive, send)
 
 
+class ReleaseMemory:
+    """ASGI middleware giving freed memory back to the system after each HTTP request (service.memory).
+
+    The trim runs in a thread after the response has been sent, so no client waits for it; a request that ends
+    while a trim runs does not start another.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        try:
+            await self.app(scope, receive, send)
+        finally:
+            if scope["type"] == "http":
+                asyncio.get_running_loop().run_in_executor(None, release_memory)
+
+
 class BodySizeLimit:
     """ASGI middleware refusing request bodies above ``max_bytes`` with 413, before or while they arrive."""
 
@@ -390,6 +411,7 @@ def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         if open_stores:
+            configure_tile_cache(settings.tile_cache_mb << 20)  # decoded chunks kept for repeated requests
             # Opening (or building the demo on first start) blocks; keep it off the event loop.
             state.registry = await run_in_threadpool(StoreRegistry.open, settings)
             state.jobs = JobRunner(settings, state.registry)
@@ -425,6 +447,7 @@ def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
     for router in routers():
         app.include_router(router)
     app.add_middleware(UnexpectedErrors)
+    app.add_middleware(ReleaseMemory)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     if settings.cors_origins:
         app.add_middleware(

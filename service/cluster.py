@@ -12,8 +12,12 @@ then as a :class:`~service.errors.ClusterUnavailableError` (503), like a schedul
 
 from __future__ import annotations
 
+import contextlib
 import logging
+import os
 import threading
+from collections.abc import Callable, Iterable, Iterator
+from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
 from typing import TYPE_CHECKING, Any
 
 import dask
@@ -122,22 +126,153 @@ def compute(*collections: Any, settings: Settings) -> tuple[Any, ...]:
     return _compute_on_cluster(client, collections, settings.scheduler or "")
 
 
-def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...], address: str) -> tuple:
-    """Run the collections on the cluster, waiting briefly for a worker; lost workers are the scheduler's."""
+def compute_each(
+    items: Iterable[tuple[Any, Any]],
+    *,
+    settings: Settings,
+    in_flight: int | None = None,
+    cancelled: Callable[[], bool] | None = None,
+) -> Iterator[tuple[Any, Any]]:
+    """Compute many independent collections, a few at a time; yield (key, value) as each one finishes.
+
+    ``items`` gives (key, collection) pairs and is read lazily, so a caller may build each graph only when it
+    is about to run. At most ``in_flight`` collections run at once (default: two on threads, so that one
+    batch's single-threaded indicator table overlaps the next batch's chunk work; on a cluster one per worker
+    thread, at least two). Values come in the order they finish: the caller puts them in order. When
+    ``cancelled()`` turns true no further collection starts; those running finish (threads) or are cancelled
+    (cluster). Errors are those of :func:`compute`.
+    """
+    client = client_for(settings)
+    if client is None:
+        yield from _each_on_threads(iter(items), settings, in_flight or 2, cancelled)
+        return
+    address = settings.scheduler or ""
+    with _cluster_errors(address):
+        _wait_for_workers(client, address)
+        if in_flight is None:
+            threads = sum(
+                w.get("nthreads", 1) for w in client.scheduler_info(n_workers=-1)["workers"].values()
+            )
+            in_flight = max(2, threads)
+    yield from _each_on_cluster(client, iter(items), address, in_flight, cancelled)
+
+
+def _each_on_threads(
+    items: Iterator[tuple[Any, Any]], settings: Settings, in_flight: int, cancelled: Callable[[], bool] | None
+) -> Iterator[tuple[Any, Any]]:
+    """compute_each on local threads: every collection's tasks share one pool of settings.threads threads."""
+    threads = settings.threads or os.cpu_count() or 1
+    pool, drivers = _pools(threads, in_flight)
+    # the pools live as long as the process: making threads per request costs an on-demand answer
+    running: dict[Any, Any] = {}
+
+    def start() -> bool:
+        if cancelled is not None and cancelled():
+            return False
+        try:
+            key, collection = next(items)
+        except StopIteration:
+            return False
+        future = drivers.submit(dask.compute, collection, scheduler="threads", pool=pool)
+        running[future] = key
+        return True
+
+    try:
+        while len(running) < in_flight and start():
+            pass
+        while running:
+            done, _ = wait(running, return_when=FIRST_COMPLETED)
+            for future in done:
+                key = running.pop(future)
+                (value,) = future.result()
+                yield key, value
+                while len(running) < in_flight and start():
+                    pass
+    finally:
+        for future in running:
+            future.cancel()
+
+
+_POOLS: dict[tuple[int, int], tuple[ThreadPoolExecutor, ThreadPoolExecutor]] = {}
+
+
+def _pools(threads: int, in_flight: int) -> tuple[ThreadPoolExecutor, ThreadPoolExecutor]:
+    """(task pool of ``threads`` threads, pool of ``in_flight`` threads driving one computation each)."""
+    with _lock:
+        pools = _POOLS.get((threads, in_flight))
+        if pools is None:
+            pools = _POOLS[(threads, in_flight)] = (
+                ThreadPoolExecutor(threads, thread_name_prefix="wxshock-task"),
+                ThreadPoolExecutor(in_flight, thread_name_prefix="wxshock-batch"),
+            )
+        return pools
+
+
+def _each_on_cluster(
+    client: distributed.Client,
+    items: Iterator[tuple[Any, Any]],
+    address: str,
+    in_flight: int,
+    cancelled: Callable[[], bool] | None,
+) -> Iterator[tuple[Any, Any]]:
+    """compute_each on the cluster: each collection's result stays on a worker until it is gathered here."""
+    from distributed import as_completed
+
+    running: dict[Any, Any] = {}
+    queue = as_completed(loop=client.loop)
+
+    def start() -> bool:
+        if cancelled is not None and cancelled():
+            return False
+        try:
+            key, collection = next(items)
+        except StopIteration:
+            return False
+        future = client.compute(collection, retries=TASK_RETRIES)
+        running[future.key] = (key, future)
+        queue.add(future)
+        return True
+
+    try:
+        with _cluster_errors(address):
+            while len(running) < in_flight and start():
+                pass
+        while running:
+            with _cluster_errors(address):
+                future = next(queue)
+                key, _ = running.pop(future.key)
+                value = future.result()
+            future.release()
+            yield key, value
+            with _cluster_errors(address):
+                while len(running) < in_flight and start():
+                    pass
+    finally:
+        for _, future in running.values():
+            future.cancel()
+
+
+def _wait_for_workers(client: distributed.Client, address: str) -> None:
+    """Wait briefly for a worker; ClusterUnavailableError when none comes."""
+    try:
+        client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+    except TimeoutError as exc:
+        raise ClusterUnavailableError(
+            f"dask scheduler {address!r} has no worker (waited {WORKER_WAIT_S:g} s); start at least one "
+            f"'dask worker {address}' or unset WXSHOCK_SCHEDULER to compute on local threads",
+            field="scheduler",
+        ) from exc
+
+
+@contextlib.contextmanager
+def _cluster_errors(address: str) -> Iterator[None]:
+    """Turn the cluster's failures into ClusterUnavailableError (503); domain errors keep their type."""
     from distributed import KilledWorker
     from distributed.client import FutureCancelledError
     from distributed.comm.core import CommClosedError
 
     try:
-        try:
-            client.wait_for_workers(1, timeout=WORKER_WAIT_S)
-        except TimeoutError as exc:
-            raise ClusterUnavailableError(
-                f"dask scheduler {address!r} has no worker (waited {WORKER_WAIT_S:g} s); start at least one "
-                f"'dask worker {address}' or unset WXSHOCK_SCHEDULER to compute on local threads",
-                field="scheduler",
-            ) from exc
-        return dask.compute(*collections, scheduler=client, retries=TASK_RETRIES)
+        yield
     except WxshockError:
         raise  # a domain error raised inside a task (a store that cannot be read) keeps its own type
     except KilledWorker as exc:
@@ -154,3 +289,10 @@ def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...]
             f"({type(exc).__name__}); retry once the scheduler is back",
             field="scheduler",
         ) from exc
+
+
+def _compute_on_cluster(client: distributed.Client, collections: tuple[Any, ...], address: str) -> tuple:
+    """Run the collections on the cluster, waiting briefly for a worker; lost workers are the scheduler's."""
+    with _cluster_errors(address):
+        _wait_for_workers(client, address)
+        return dask.compute(*collections, scheduler=client, retries=TASK_RETRIES)

@@ -39,6 +39,7 @@ from service.errors import (
     problem_for,
     storage_full,
 )
+from service.memory import release_memory
 
 if TYPE_CHECKING:
     from service.prepared import Prepared
@@ -826,6 +827,7 @@ class JobRunner:
             self._finish(job.id, _Unrecorded("failed", time.time(), error=problem))
         finally:
             self._cancelled.discard(job.id)
+            release_memory()  # the job's batches and encoded table are freed: give the pages back
 
 
 def parse_stored_request(text: str, model: type[Any]) -> Any:

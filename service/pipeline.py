@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import uuid
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
@@ -290,7 +291,13 @@ def _daily_series(ds: Any, store: Store, span: slice, latitude: np.ndarray) -> D
 
 def _feature_columns(frame: pd.DataFrame, weights: Weights, rows: np.ndarray) -> pd.DataFrame:
     """Add each feature's coverage, cell count and area to its rows."""
-    by_id = pd.DataFrame(
+    merged = frame.merge(_feature_frame(weights, rows), on="feature_id", how="left", sort=False)
+    return merged
+
+
+def _feature_frame(weights: Weights, rows: np.ndarray) -> pd.DataFrame:
+    """feature_id, coverage, cells and area_km2 of the features ``rows``."""
+    return pd.DataFrame(
         {
             "feature_id": [weights.feature_ids[i] for i in rows],
             "coverage": np.asarray(weights.coverage)[rows],
@@ -298,8 +305,97 @@ def _feature_columns(frame: pd.DataFrame, weights: Weights, rows: np.ndarray) ->
             "area_km2": np.asarray(weights.area_km2)[rows],
         }
     )
-    merged = frame.merge(by_id, on="feature_id", how="left", sort=False)
-    return merged
+
+
+# Bytes of daily means (features x days x variables, float64) a feature batch may hold at once: long records
+# get smaller batches, so that memory stays flat in years (1,000 features x 48 years x 3 variables is 420 MB).
+BATCH_SERIES_BYTES = 448 << 20
+
+
+def batch_size_for(batch_size: int, span: slice, variables: tuple[str, ...]) -> int:
+    """Features per batch: at most ``batch_size``, fewer when their daily means would pass BATCH_SERIES_BYTES."""
+    days = max(1, (span.stop or 0) - (span.start or 0))
+    per_feature = days * max(1, len(variables)) * 8
+    return max(1, min(batch_size, BATCH_SERIES_BYTES // per_feature))
+
+
+def _without_features(request: IndicatorRequest) -> IndicatorRequest:
+    """The request with its first feature alone: what a batch task needs of it (the table reads the features'
+    ids and properties from its own arguments), so that no task carries every community's geometry."""
+    features = request.features
+    first = features.features[0] if hasattr(features, "features") else features
+    return request.model_copy(update={"features": first})
+
+
+def lazy_batch_table(
+    store: Store,
+    weights: Weights,
+    rows: np.ndarray,
+    properties: list[dict | None],
+    resolved: IndicatorRequest,
+    span: slice,
+    variables: tuple[str, ...],
+) -> Any:
+    """One feature batch as a dask graph ending in one task that returns its table: (frame, warnings).
+
+    The chunk tasks and the reduction are the aggregation's (service.aggregate); the last task takes the
+    batch's daily means, snaps them, computes the indicator table and adds the feature columns. On a cluster
+    that runs on a worker, so the daily series never travel to the server.
+    """
+    import dask
+
+    batch = take_weights(weights, rows)
+    daily = aggregate(store, batch, variables=variables, time=span)
+    arrays = {v: daily[v].data for v in variables}
+    by_id = _feature_frame(batch, np.arange(len(rows)))
+    # a key of its own: two runs with the same features but other indicators must not share a table
+    token = f"wxshock-table-{uuid.uuid4().hex}"
+    return dask.delayed(batch_table, pure=False)(
+        arrays,
+        store,
+        span,
+        np.asarray(batch.latitude, dtype=np.float64),
+        list(batch.feature_ids),
+        properties,
+        resolved,
+        by_id,
+        dask_key_name=token,
+    )
+
+
+def batch_table(
+    arrays: dict[str, np.ndarray],
+    store: Store,
+    span: slice,
+    latitude: np.ndarray,
+    feature_ids: list[str],
+    properties: list[dict | None],
+    resolved: IndicatorRequest,
+    by_id: pd.DataFrame,
+) -> tuple[pd.DataFrame, list[dict[str, Any]]]:
+    """The last task of a batch: (feature, day) means of each variable -> the batch's rows and warnings.
+
+    The means are snapped in place (they are this task's own arrays), as :func:`daily_values` snaps them.
+    """
+    values: dict[str, np.ndarray | None] = dict.fromkeys(VARIABLES)
+    for var, array in arrays.items():
+        array = np.asarray(array, dtype=np.float64)
+        if not array.flags.writeable:
+            array = array.copy()
+        enc = store.encoding(var)
+        values[var] = snap_daily(array, snap_decimals(enc.scale_factor, enc.add_offset))
+    dates = store.dates
+    daily = DailySeries(
+        **values,
+        year=np.asarray(dates.year[span]),
+        month=np.asarray(dates.month[span]),
+        day=np.asarray(dates.day[span]),
+        dayofyear=np.asarray(dates.dayofyear[span]),
+        calendar=store.calendar,
+        latitude=latitude,
+    )
+    table = compute_table(daily, feature_ids, properties, resolved)
+    return table.frame.merge(by_id, on="feature_id", how="left", sort=False), table.warnings
 
 
 # --- the runs -------------------------------------------------------------------------------------------------
@@ -347,26 +443,34 @@ def run(
     span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
     properties = [f.properties for f in parsed.features]
     total = len(parsed.features)
-    frames: list[pd.DataFrame] = []
-    warnings: list[dict[str, Any]] = []
+    batches = feature_batches(weights, batch_size_for(batch_size, span, variables))
+    light = _without_features(resolved)
+    parts: dict[int, tuple[pd.DataFrame, list[dict[str, Any]]]] = {}
     done = 0
     if progress is not None:
         progress(0, total)
-    for rows in feature_batches(weights, batch_size):
-        if cancelled is not None and cancelled():
-            raise RunCancelledError(f"cancelled after {done} of {total} features")
-        batch = take_weights(weights, rows)
-        batch_properties = [properties[i] for i in rows]
-        if resolved.aggregation == "cells":
-            table = cells_table(store, batch, batch_properties, resolved, span, variables, settings)
-        else:
-            daily = _aggregated_daily(store, batch, span, variables, settings)
-            table = compute_table(daily, list(batch.feature_ids), batch_properties, resolved)
-        frames.append(_feature_columns(table.frame, weights, rows))
-        warnings.extend(table.warnings)
-        done += len(rows)
+    computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
+    if resolved.aggregation == "cells":
+        computed = _cells_batches(
+            batches, store, weights, properties, resolved, span, variables, settings, cancelled
+        )
+    else:
+        lazy = (
+            (k, lazy_batch_table(store, weights, rows, [properties[i] for i in rows], light, span, variables))
+            for k, rows in enumerate(batches)
+        )
+        # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
+        # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order below.
+        computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled)
+    for k, part in computed:
+        parts[k] = part
+        done += len(batches[k])
         if progress is not None:
             progress(done, total)
+    if len(parts) < len(batches):
+        raise RunCancelledError(f"cancelled after {done} of {total} features")
+    frames = [parts[k][0] for k in range(len(batches))]
+    warnings = [w for k in range(len(batches)) for w in parts[k][1]]
     frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
     warnings = _warnings_in_order(warnings, weights.feature_ids)
     frame, warnings = _without_skipped(frame, warnings, prepared.skipped)
@@ -381,6 +485,26 @@ def run(
         provenance=provenance(resolved, store, parsed, prepared.skipped),
         warnings=warnings,
     )
+
+
+def _cells_batches(
+    batches: list[np.ndarray],
+    store: Store,
+    weights: Weights,
+    properties: list[dict | None],
+    resolved: IndicatorRequest,
+    span: slice,
+    variables: tuple[str, ...],
+    settings: Settings,
+    cancelled: Cancelled | None,
+) -> Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]:
+    """Aggregation "cells", batch after batch (each batch's cell tasks run on the cluster by themselves)."""
+    for k, rows in enumerate(batches):
+        if cancelled is not None and cancelled():
+            return
+        batch = take_weights(weights, rows)
+        table = cells_table(store, batch, [properties[i] for i in rows], resolved, span, variables, settings)
+        yield k, (_feature_columns(table.frame, weights, rows), table.warnings)
 
 
 def _without_skipped(

@@ -79,6 +79,12 @@ class Settings(BaseSettings):
     weights_cache_size: int = Field(
         default=64, ge=0, description="Weight matrices kept in memory, by geometry hash."
     )
+    tile_cache_mb: int = Field(
+        default=192,
+        ge=0,
+        description="Decoded store chunks kept in memory by the server (MB; 0: none): repeated on-demand "
+        "requests over the same cells skip decoding.",
+    )
     job_workers: int = Field(default=1, ge=1, le=16)
     job_retention_hours: float = Field(default=168.0, gt=0)
     min_free_bytes: int = Field(

@@ -73,6 +73,30 @@ def test_local_compute_uses_the_configured_number_of_threads() -> None:
     assert one[0, 0] != threading.get_ident()  # a pool thread, not the caller's
 
 
+def test_compute_each_gives_every_value_once_with_its_key() -> None:
+    arrays = {k: _weighted_means(seed=k) for k in range(5)}
+    got = dict(cluster.compute_each(iter(arrays.items()), settings=_settings(threads=2)))
+    assert sorted(got) == list(arrays)
+    for k, array in arrays.items():
+        assert np.array_equal(got[k], array.compute(scheduler="sync"))
+
+
+def test_compute_each_starts_nothing_once_cancelled() -> None:
+    started: list[int] = []
+
+    def items():
+        for k in range(10):
+            started.append(k)
+            yield k, _weighted_means(seed=k)
+
+    seen = []
+    for key, _ in cluster.compute_each(
+        items(), settings=_settings(threads=2), cancelled=lambda: len(seen) >= 2
+    ):
+        seen.append(key)
+    assert len(started) < 10 and len(seen) == len(started)
+
+
 def test_no_scheduler_means_no_client() -> None:
     assert cluster.client_for(_settings()) is None
     assert cluster.client_for(_settings(scheduler="  ")) is None
@@ -371,3 +395,43 @@ def test_cli_compute_with_scheduler_writes_the_same_file(
     assert main([*base, "--out", str(tmp_path / "threads.parquet")]) == 0
     assert main([*base, "--out", str(tmp_path / "cluster.parquet"), "--scheduler", dask_cluster.address]) == 0
     assert (tmp_path / "cluster.parquet").read_bytes() == (tmp_path / "threads.parquet").read_bytes()
+
+
+# --- where the indicator table is computed ----------------------------------------------------------------------
+
+
+def _sent_to_non_workers(client, workers: set[str]) -> list[dict]:
+    """Every transfer the workers made to something other than a worker (the server's client), as logged."""
+    logs = client.run(lambda dask_worker: list(dask_worker.transfer_outgoing_log))
+    return [entry for log in logs.values() for entry in log if entry.get("who") not in workers]
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+def test_workers_send_tables_not_daily_series(tiny_demo: Path, tiny_communities: dict, dask_cluster) -> None:
+    """A run on the cluster gets back one table per feature batch and no aggregation result: the daily
+    series stay on the workers (and the rows are those of the threaded run, byte for byte)."""
+    from distributed import Client
+
+    from service import pipeline
+    from service.schemas import IndicatorRequest, validate_request
+    from service.store import open_store
+
+    dask_cluster.ensure_workers()
+    store = open_store(tiny_demo)
+    request = validate_request(IndicatorRequest, {**_demo_request(tiny_communities), "dataset": None})
+    remote = _settings(scheduler=dask_cluster.address)
+    with Client(dask_cluster.address, set_as_default=False) as observer:
+        workers = set(observer.scheduler_info(n_workers=-1)["workers"])
+        before = len(_sent_to_non_workers(observer, workers))
+        on_cluster = pipeline.run(request, store, remote, batch_size=10)
+        sent = _sent_to_non_workers(observer, workers)[before:]
+    on_threads = pipeline.run(request, store, _settings(threads=2), batch_size=10)
+    assert on_cluster.frame.equals(on_threads.frame)
+    keys = [key for entry in sent for key in entry["keys"]]
+    batches = -(-len(tiny_communities["features"]) // 10)
+    assert len(keys) == batches, keys  # one table per batch, nothing else
+    assert all(str(key).startswith("wxshock-table-") for key in keys), keys
+    days = store.n_times
+    series_bytes = 10 * days * 3 * 8  # what one batch's daily series would have been
+    assert max(entry["total"] for entry in sent) < series_bytes / 10

@@ -20,6 +20,7 @@ import xarray as xr
 import zarr
 
 from service.errors import StoreFormatError
+from service.store.chunks import ChunkReader, tile_cache
 from service.store.grids import Grid, _lonlat_bounds, _tidy, is_lonlat_crs
 from service.store.layout import (
     _STATIC_NAMES,
@@ -292,9 +293,20 @@ class Store:
             )
         return var
 
+    @cached_property
+    def _chunk_readers(self) -> dict[str, ChunkReader | None]:
+        """Each daily variable's direct chunk reader (service.store.chunks), None where zarr must read it."""
+        return {v: ChunkReader.for_array(a, cache=tile_cache()) for v, a in self._var_arrays.items()}
+
     def read_raw(self, var: str, y: slice, x: slice, t: slice) -> np.ndarray:
         """(ny, nx, nt) stored integers of a window (index slices on the variable's grid); fill_value marks
-        missing (so do the days outside the variable's coverage)."""
+        missing (so do the days outside the variable's coverage).
+
+        May be a read-only view of a decoded chunk: copy before writing into it.
+        """
+        reader = self._chunk_readers.get(var)
+        if reader is not None:
+            return reader.read(y, x, t)
         try:
             array = self._var_arrays[var]
         except KeyError:

@@ -1,0 +1,530 @@
+"""Scale figures of issue 15, measured side by side in one run (bench/RESULTS.md, "Scale"; model in bench/SCALE.md).
+
+    python bench/bench_scale.py                          # everything; writes its section of bench/RESULTS.md
+    python bench/bench_scale.py --only decode,batch --no-write
+    python bench/bench_scale.py --store bench/out/large/synthetic.zarr --features 500 --no-write
+
+Phases (each in its own process, so that its peak memory is its own; ``--only`` picks some):
+
+  decode   the physical limit: every chunk file the batch touches (the variables its indicators need, the
+           days they read) read and blosc-decoded with numcodecs on all cores, no zarr; the better of two
+           passes, so that the disk is not timed (the files are in the page cache after the first)
+  batch    the 5,000-village batch, indicators included: ``pipeline.run`` over every feature (default
+           indicator set, every season-year), on local threads; wall and CPU seconds, peak RSS, chunk reads
+  costs    the per-chunk and per-feature costs bench/SCALE.md builds its model on: read + decode of one
+           chunk through Store.read_raw, the weighted sums of one chunk, the table of one feature
+  latency  one 25-cell community, default indicators, 48 years, in-process on a warm store (p50, p95 of
+           ``pipeline.run``), for each layout given with --latency-store
+  cluster  bytes the server receives per feature from a local two-worker cluster: the table now, and the
+           daily series the server used to gather (the aggregation computed alone, as before), measured from
+           the workers' transfer logs
+
+The machine is shared (2 cores, other engineers' work): every time is given with its CPU seconds and the load
+average when it was taken; wall-clock ratios under load are upper bounds.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import statistics
+import subprocess
+import sys
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+from typing import Any
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "bench"))
+
+OUT = ROOT / "bench" / "out"
+RESULTS = ROOT / "bench" / "RESULTS.md"
+START, END = "<!-- bench_scale: start -->", "<!-- bench_scale: end -->"
+DEFAULT_STORE = OUT / "large" / "synthetic.zarr"
+DEFAULT_SMALL = OUT / "latency-small" / "demo.zarr"
+
+
+def load() -> float:
+    """The 1-minute load average."""
+    return os.getloadavg()[0]
+
+
+def peak_mb() -> float:
+    """This process's peak RSS (MB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def polygons(store: Any, n: int) -> dict[str, Any]:
+    """bench_aggregate's n invented villages on the store (cached in bench/out)."""
+    path = (
+        OUT / f"polygons-{Path(store.location).stem}-{store.grid.shape[0]}x{store.grid.shape[1]}-{n}.geojson"
+    )
+    if not path.exists():
+        from bench_aggregate import invented_polygons
+
+        path.write_text(json.dumps(invented_polygons(store, n)), encoding="utf-8")
+    return json.loads(path.read_text(encoding="utf-8"))
+
+
+def batch_request(features: dict[str, Any]) -> Any:
+    """The batch: every default (indicator set, baseline, every season-year the data allow)."""
+    from service.schemas import IndicatorRequest, validate_request
+
+    return validate_request(IndicatorRequest, {"features": features})
+
+
+def touched_chunks(
+    store: Any, weights: Any, variables: tuple[str, ...], span: slice
+) -> list[tuple[str, tuple]]:
+    """(variable, inner chunk coordinates) of every chunk the features' cells and the days touch."""
+    import numpy as np
+
+    matrix = weights.matrix.tocsr()
+    cells = np.unique(matrix.indices[matrix.data != 0])
+    ny, nx = store.grid.shape
+    cy, cx, ct = store.inner_chunk_shape if hasattr(store, "inner_chunk_shape") else store.chunk_shape
+    iy, ix = np.divmod(cells, nx)
+    tiles = sorted(set(zip((iy // cy).tolist(), (ix // cx).tolist(), strict=True)))
+    blocks = range(span.start // ct, (span.stop - 1) // ct + 1)
+    return [(v, (ty, tx, b)) for v in variables for ty, tx in tiles for b in blocks]
+
+
+def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
+    """Read every touched chunk's bytes and blosc-decode them with numcodecs on all cores; best of two passes."""
+    import numpy as np
+    from numcodecs import Blosc
+
+    from service import pipeline
+    from service.settings import Settings
+    from service.store import open_store
+
+    store = open_store(args.store)
+    request = batch_request(polygons(store, args.features))
+    resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
+    _, weights = pipeline.features_and_weights(resolved, store, Settings())
+    variables = pipeline.needed_variables(resolved)
+    span = pipeline.time_span(store, resolved.years.end)
+    chunks = touched_chunks(store, weights, variables, span)
+    readers = {v: store._chunk_readers[v] for v in variables}
+    if any(r is None for r in readers.values()):
+        raise SystemExit("the store's codecs are not bytes + blosc: no direct decode to compare with")
+
+    def one(item: tuple[str, tuple]) -> int:
+        var, coords = item
+        reader = readers[var]
+        if reader.shard_shape is None:
+            data = reader._get(reader._metadata.encode_chunk_key(coords))
+        else:  # the inner chunk's bytes from its shard, the index read as part of the work
+            shard = tuple(c // p for c, p in zip(coords, reader._per_shard, strict=True))
+            index = reader._shard_index(shard)
+            local = tuple(c % p for c, p in zip(coords, reader._per_shard, strict=True))
+            offset, length = (int(v) for v in index[np.ravel_multi_index(local, reader._per_shard)])
+            data = reader._get(reader._metadata.encode_chunk_key(shard), start=offset, length=length)
+        out = np.empty(reader.inner_shape, dtype=reader.dtype)
+        Blosc().decode(data, out=out)
+        return out.nbytes
+
+    passes = []
+    for _ in range(2):
+        for reader in readers.values():
+            if reader.shard_shape is not None:
+                reader._indexes.clear()
+        wall, cpu = time.perf_counter(), time.process_time()
+        with ThreadPoolExecutor(os.cpu_count() or 1) as pool:
+            decoded = sum(pool.map(one, chunks))
+        passes.append((time.perf_counter() - wall, time.process_time() - cpu))
+    best = min(passes)
+    return {
+        "chunks": len(chunks),
+        "decoded_gib": decoded / 2**30,
+        "wall_s": best[0],
+        "cpu_s": best[1],
+        "passes": passes,
+        "load": load(),
+    }
+
+
+def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
+    """pipeline.run over every village, indicators included, on local threads."""
+    from service import aggregate, pipeline
+    from service.settings import Settings
+    from service.store import open_store
+
+    store = open_store(args.store)
+    request = batch_request(polygons(store, args.features))
+    settings = Settings(threads=os.cpu_count())
+    prepared = pipeline.prepare(request, store, settings)
+    reads = [0]
+    original = aggregate.chunk_sums
+
+    def counted(*a: Any, **k: Any) -> Any:
+        reads[0] += 1
+        return original(*a, **k)
+
+    aggregate.chunk_sums = counted
+    wall, cpu = time.perf_counter(), time.process_time()
+    result = pipeline.run(request, store, settings, prepared=prepared)
+    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    return {
+        "wall_s": wall,
+        "cpu_s": cpu,
+        "rows": len(result.frame),
+        "columns": len(result.frame.columns),
+        "chunk_reads": reads[0],
+        "peak_mb": peak_mb(),
+        "load": load(),
+    }
+
+
+def phase_costs(args: argparse.Namespace) -> dict[str, Any]:
+    """Per-chunk read + decode (Store.read_raw), per-chunk weighted sums, per-feature table: CPU ms, medians."""
+    import numpy as np
+
+    from service import aggregate, pipeline
+    from service.settings import Settings
+    from service.store import open_store
+
+    store = open_store(args.store)
+    request = batch_request(polygons(store, args.features))
+    resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
+    _, weights = pipeline.features_and_weights(resolved, store, Settings())
+    rows = pipeline.feature_batches(weights, 1000)[0]
+    batch = pipeline.take_weights(weights, rows)
+    plan = aggregate.chunk_weights(batch, store.grid.shape, store.chunk_shape[:2])
+    ct = store.chunk_shape[2]
+    enc = store.encoding("tmax")
+
+    def cpu_ms(f: Any, repeat: int = 5) -> float:
+        times = []
+        for _ in range(repeat):
+            start = time.thread_time()
+            f()
+            times.append((time.thread_time() - start) * 1000)
+        return statistics.median(times)
+
+    picks = plan[:: max(1, len(plan) // 6)][:6]
+    read_ms = statistics.median(
+        cpu_ms(lambda c=c: store.read_raw("tmax", c.y, c.x, slice(ct, 2 * ct))) for c in picks
+    )
+    sums_ms = (
+        statistics.median(
+            cpu_ms(
+                lambda c=c: aggregate.block_sums(
+                    np.asarray(store.read_raw("tmax", c.y, c.x, slice(ct, 2 * ct))).reshape(-1, ct),
+                    c,
+                    enc.scale_factor,
+                    enc.fill_value,
+                )
+            )
+            for c in picks
+        )
+        - read_ms
+    )
+    nnz = statistics.median(c.matrix.nnz for c in picks)
+    span = pipeline.time_span(store, resolved.years.end)
+    variables = pipeline.needed_variables(resolved)
+    lazy = pipeline.lazy_batch_table(
+        store, weights, rows[:200], [None] * 200, pipeline._without_features(resolved), span, variables
+    )
+    import dask
+
+    start = time.process_time()
+    dask.compute(lazy, scheduler="sync")
+    whole_ms = (time.process_time() - start) * 1000
+    return {
+        "chunk_cells": int(np.prod(store.chunk_shape[:2])),
+        "chunk_days": ct,
+        "read_decode_ms": read_ms,
+        "weighted_sums_ms": sums_ms,
+        "nnz_per_chunk": nnz,
+        "batch_200_ms": whole_ms,
+        "load": load(),
+    }
+
+
+def phase_latency(args: argparse.Namespace) -> dict[str, Any]:
+    """p50/p95 of pipeline.run for one ~25-cell community, default indicators, every season-year (warm)."""
+    from service import pipeline
+    from service.encode import encode
+    from service.schemas import IndicatorRequest, validate_request
+    from service.settings import Settings
+    from service.store import open_store
+
+    out = {}
+    for location in args.latency_store:
+        store = open_store(location)
+        communities = json.loads((Path(location).parent / "communities.geojson").read_text(encoding="utf-8"))
+        settings = Settings(threads=os.cpu_count())
+        best = None
+        for feature in communities["features"]:
+            request = validate_request(IndicatorRequest, {"features": feature})
+            cells = int(pipeline.features_and_weights(request, store, settings)[1].n_cells[0])
+            if best is None or abs(cells - 25) < abs(best[1] - 25):
+                best = (feature, cells)
+        feature, cells = best
+        request = validate_request(IndicatorRequest, {"features": feature})
+        for _ in range(5):
+            pipeline.run(request, store, settings)
+        times, cpus = [], []
+        for _ in range(args.requests):
+            start, cpu = time.perf_counter(), time.process_time()
+            result = pipeline.run(request, store, settings)
+            encode(result, "json")
+            times.append((time.perf_counter() - start) * 1000)
+            cpus.append((time.process_time() - cpu) * 1000)
+        import numpy as np
+
+        out[str(location)] = {
+            "community": feature.get("id"),
+            "cells": cells,
+            "rows": len(result.frame),
+            "p50_ms": float(np.percentile(times, 50)),
+            "p95_ms": float(np.percentile(times, 95)),
+            "cpu_ms_median": statistics.median(cpus),
+            "chunks": describe_chunks(store),
+            "load": load(),
+        }
+    return out
+
+
+def describe_chunks(store: Any) -> str:
+    """The store's read unit and compressed chunk, in words."""
+    unit = store.chunk_shape
+    inner = getattr(store, "inner_chunk_shape", unit)
+    text = f"{unit[0]} x {unit[1]} cells x {unit[2]} days"
+    return (
+        text
+        if tuple(inner) == tuple(unit)
+        else f"{text} shards of {inner[0]} x {inner[1]} x {inner[2]} chunks"
+    )
+
+
+def phase_cluster(args: argparse.Namespace) -> dict[str, Any]:
+    """Bytes the workers send to the server per feature: the table now, the daily series before."""
+    import tempfile
+
+    from distributed import Client
+
+    from service import cluster, pipeline
+    from service.settings import Settings
+    from service.store import open_store
+    from tests._support_cluster import DaskProcesses
+
+    store = open_store(args.store)
+    features = polygons(store, args.features)
+    features = dict(features, features=features["features"][: args.cluster_features])
+    request = batch_request(features)
+    n = len(features["features"])
+    with tempfile.TemporaryDirectory() as root:
+        processes = DaskProcesses(Path(root))
+        processes.start_scheduler()
+        try:
+            processes.ensure_workers()
+            settings = Settings(scheduler=processes.address)
+            with Client(processes.address, set_as_default=False) as observer:
+                workers = set(observer.scheduler_info(n_workers=-1)["workers"])
+
+                def to_server() -> int:
+                    logs = observer.run(lambda dask_worker: list(dask_worker.transfer_outgoing_log))
+                    return sum(
+                        e["total"] for log in logs.values() for e in log if e.get("who") not in workers
+                    )
+
+                before = to_server()
+                wall = time.perf_counter()
+                pipeline.run(request, store, settings)
+                after_wall = time.perf_counter() - wall
+                now = to_server()
+                # before: the aggregation alone, its daily series gathered by the server (the old path)
+                resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
+                prepared = pipeline.prepare(request, store, settings)
+                span = pipeline.time_span(store, resolved.years.end)
+                variables = pipeline.needed_variables(resolved)
+                wall = time.perf_counter()
+                for rows in pipeline.feature_batches(prepared.weights, 1000):
+                    batch = pipeline.take_weights(prepared.weights, rows)
+                    daily = pipeline.aggregate(store, batch, variables=variables, time=span)
+                    cluster.compute(daily.drop_vars("tmean", errors="ignore"), settings=settings)
+                old_wall = time.perf_counter() - wall
+                old = to_server()
+        finally:
+            cluster.close_clients()
+            for name in list(processes.workers):
+                processes.stop_worker(name)
+            if processes.scheduler is not None:
+                processes.scheduler.kill()
+    return {
+        "features": n,
+        "days": int(span.stop - span.start),
+        "variables": list(variables),
+        "table_bytes_per_feature": (now - before) / n,
+        "series_bytes_per_feature": (old - now) / n,
+        "run_wall_s": after_wall,
+        "aggregation_only_wall_s": old_wall,
+        "load": load(),
+    }
+
+
+PHASES = {
+    "decode": phase_decode,
+    "batch": phase_batch,
+    "costs": phase_costs,
+    "latency": phase_latency,
+    "cluster": phase_cluster,
+}
+
+
+def run_phase(name: str, argv: list[str]) -> dict[str, Any]:
+    """One phase in a fresh process; its JSON result."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    done = subprocess.run(
+        [sys.executable, __file__, "--phase", name, *argv],
+        capture_output=True,
+        text=True,
+        env=env,
+        check=False,
+    )
+    if done.returncode != 0:
+        raise SystemExit(f"phase {name} failed:\n{done.stderr[-4000:]}")
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    parser.add_argument("--store", default=str(DEFAULT_STORE))
+    parser.add_argument(
+        "--old-store", help="the same data on the previous layout (its batch time is shown beside)"
+    )
+    parser.add_argument("--features", type=int, default=5000)
+    parser.add_argument("--cluster-features", type=int, default=500)
+    parser.add_argument("--requests", type=int, default=60)
+    parser.add_argument("--latency-store", action="append", default=None)
+    parser.add_argument("--only", default="decode,batch,costs,latency,cluster")
+    parser.add_argument("--phase", help=argparse.SUPPRESS)
+    parser.add_argument("--no-write", action="store_true")
+    args = parser.parse_args()
+    if args.latency_store is None:
+        args.latency_store = [str(DEFAULT_SMALL)]
+    if args.phase:
+        print(json.dumps(PHASES[args.phase](args), default=str))
+        return 0
+    argv = [
+        "--store", args.store, "--features", str(args.features), "--requests", str(args.requests),
+        "--cluster-features", str(args.cluster_features),
+    ]  # fmt: skip
+    for location in args.latency_store:
+        argv += ["--latency-store", location]
+    results: dict[str, Any] = {"started": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()), "load": load()}
+    for name in args.only.split(","):
+        print(f"[{time.strftime('%H:%M:%S')}] {name} (load {load():.1f}) ...", file=sys.stderr, flush=True)
+        results[name] = run_phase(name, argv)
+        print(json.dumps(results[name], default=str), file=sys.stderr, flush=True)
+    if args.old_store and "batch" in args.only:
+        old_argv = [*argv]
+        old_argv[old_argv.index("--store") + 1] = args.old_store
+        results["batch_old_layout"] = run_phase("batch", old_argv)
+    OUT.mkdir(parents=True, exist_ok=True)
+    (OUT / "bench_scale.json").write_text(json.dumps(results, indent=1, default=str), encoding="utf-8")
+    text = report(results, args)
+    print(text)
+    if not args.no_write:
+        write_section(text)
+    return 0
+
+
+def report(results: dict[str, Any], args: argparse.Namespace) -> str:
+    """The RESULTS.md section."""
+    lines = [
+        START,
+        "## Scale: decode limit, batch, latency, cluster bytes (issue 15, `bench/bench_scale.py`)",
+        "",
+        f"Measured {results['started']} on {platform.machine()}, {os.cpu_count()} cores, Python "
+        f"{platform.python_version()}, in one run (`python bench/bench_scale.py`); each phase in its own process. "
+        "The machine was shared with other engineers' work (load averages beside each figure, on 2 cores), so wall "
+        "times are upper bounds; CPU seconds are the steadier measure. Store: "
+        f"`{Path(args.store).relative_to(ROOT) if Path(args.store).is_relative_to(ROOT) else args.store}`.",
+        "",
+        "| what | wall s | CPU s | load | notes |",
+        "|---|---:|---:|---:|---|",
+    ]
+    decode = results.get("decode")
+    batch = results.get("batch")
+    if decode:
+        lines.append(
+            f"| raw read + blosc decode of the chunks the batch touches (numcodecs, {os.cpu_count()} threads, best "
+            f"of 2) | {decode['wall_s']:.2f} | {decode['cpu_s']:.2f} | {decode['load']:.1f} | {decode['chunks']} "
+            f"chunks, {decode['decoded_gib']:.2f} GiB of int16 |"
+        )
+    if batch:
+        lines.append(
+            f"| the {args.features:,}-village batch, indicators included (`pipeline.run`, threads) | "
+            f"{batch['wall_s']:.2f} | {batch['cpu_s']:.2f} | {batch['load']:.1f} | {batch['rows']:,} rows x "
+            f"{batch['columns']} columns, {batch['chunk_reads']} chunk reads, peak RSS {batch['peak_mb']:,.0f} MB |"
+        )
+    old = results.get("batch_old_layout")
+    if old:
+        lines.append(
+            f"| the same batch on the previous layout (`{args.old_store}`) | {old['wall_s']:.2f} | {old['cpu_s']:.2f} "
+            f"| {old['load']:.1f} | peak RSS {old['peak_mb']:,.0f} MB |"
+        )
+    if decode and batch:
+        lines += [
+            "",
+            f"**batch / raw decode: {batch['wall_s'] / decode['wall_s']:.1f} in wall time, "
+            f"{batch['cpu_s'] / decode['cpu_s']:.1f} in CPU time** (target <= 4).",
+        ]
+    costs = results.get("costs")
+    if costs:
+        lines += [
+            "",
+            f"Per-unit costs (CPU ms, medians; load {costs['load']:.1f}): read + decode of one chunk "
+            f"({costs['chunk_cells']} cells x {costs['chunk_days']} days) through `Store.read_raw` "
+            f"{costs['read_decode_ms']:.1f}; its weighted sums ({costs['nnz_per_chunk']:.0f} weights) "
+            f"{costs['weighted_sums_ms']:.1f}; a 200-feature batch, aggregation and table, one thread "
+            f"{costs['batch_200_ms']:.0f} ({costs['batch_200_ms'] / 200:.1f} per feature).",
+        ]
+    latency = results.get("latency")
+    if latency:
+        lines += ["", "| on-demand, in-process (`pipeline.run` + JSON) | community | p50 ms | p95 ms | CPU ms | load |",
+                  "|---|---|---:|---:|---:|---:|"]  # fmt: skip
+        for location, r in latency.items():
+            lines.append(
+                f"| {r['chunks']} (`{Path(location).name}`) | {r['community']} ({r['cells']} cells, {r['rows']} rows) | "
+                f"{r['p50_ms']:.0f} | {r['p95_ms']:.0f} | {r['cpu_ms_median']:.0f} | {r['load']:.1f} |"
+            )
+    cl = results.get("cluster")
+    if cl:
+        lines += [
+            "",
+            f"Cluster (one scheduler, two single-thread workers on 127.0.0.1; {cl['features']} villages x "
+            f"{cl['days']} days x {len(cl['variables'])} variables; load {cl['load']:.1f}): the server now receives "
+            f"**{cl['table_bytes_per_feature'] / 1024:.1f} kB per feature** (its table rows); before, it gathered "
+            f"each batch's daily series, **{cl['series_bytes_per_feature'] / 1024:.0f} kB per feature** (measured "
+            f"in the same run from the workers' transfer logs). Run with tables on the workers "
+            f"{cl['run_wall_s']:.1f} s; the aggregation alone, series gathered, {cl['aggregation_only_wall_s']:.1f} s.",
+        ]
+    lines += ["", END]
+    return "\n".join(lines)
+
+
+def write_section(text: str) -> None:
+    """Replace (or append) this bench's section of bench/RESULTS.md."""
+    current = RESULTS.read_text(encoding="utf-8")
+    if START in current and END in current:
+        before, rest = current.split(START, 1)
+        _, after = rest.split(END, 1)
+        current = before + text + after
+    else:
+        current = current.rstrip("\n") + "\n\n" + text + "\n"
+    RESULTS.write_text(current, encoding="utf-8")
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
