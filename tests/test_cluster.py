@@ -400,10 +400,10 @@ def test_cli_compute_with_scheduler_writes_the_same_file(
 # --- where the indicator table is computed ----------------------------------------------------------------------
 
 
-def _sent_to_non_workers(client, workers: set[str]) -> list[dict]:
-    """Every transfer the workers made to something other than a worker (the server's client), as logged."""
+def _sent_to_non_workers(client, workers: set[str]) -> dict[str, list[dict]]:
+    """Each worker's logged transfers to something other than a worker (the server's client)."""
     logs = client.run(lambda dask_worker: list(dask_worker.transfer_outgoing_log))
-    return [entry for log in logs.values() for entry in log if entry.get("who") not in workers]
+    return {name: [e for e in log if e.get("who") not in workers] for name, log in logs.items()}
 
 
 @pytest.mark.cluster
@@ -423,9 +423,10 @@ def test_workers_send_tables_not_daily_series(tiny_demo: Path, tiny_communities:
     remote = _settings(scheduler=dask_cluster.address)
     with Client(dask_cluster.address, set_as_default=False) as observer:
         workers = set(observer.scheduler_info(n_workers=-1)["workers"])
-        before = len(_sent_to_non_workers(observer, workers))
+        before = {name: len(log) for name, log in _sent_to_non_workers(observer, workers).items()}
         on_cluster = pipeline.run(request, store, remote, batch_size=10)
-        sent = _sent_to_non_workers(observer, workers)[before:]
+        after = _sent_to_non_workers(observer, workers)
+        sent = [entry for name, log in after.items() for entry in log[before.get(name, 0) :]]
     on_threads = pipeline.run(request, store, _settings(threads=2), batch_size=10)
     assert on_cluster.frame.equals(on_threads.frame)
     keys = [key for entry in sent for key in entry["keys"]]
