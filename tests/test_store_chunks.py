@@ -34,7 +34,8 @@ def store(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFacto
 
 
 def _zarr_array(store, var: str) -> zarr.Array:
-    return zarr.open_array(f"{store.location}/{var}", mode="r")
+    """The variable's array as zarr opens it (in its grid's group)."""
+    return store._var_arrays[var]
 
 
 @pytest.mark.parametrize("window", WINDOWS)
