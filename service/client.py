@@ -627,9 +627,10 @@ def submit_files(
     write_atomically(Path(out_path), response.content)
     if fmt == "csv":
         sidecar = Path(out_path).with_name(Path(out_path).name + ".provenance.json")
-        write_atomically(
-            sidecar, json.dumps({"provenance": _provenance_headers(response.headers)}, indent=2).encode()
-        )
+        # The job's skipped features (invalid_features 'skip') go beside the provenance: CSV has no metadata.
+        skipped = (job.last_status or {}).get("skipped", [])
+        document = {"provenance": _provenance_headers(response.headers), "skipped_features": skipped}
+        write_atomically(sidecar, json.dumps(document, indent=2).encode())
     if progress:
         print(f"wxshock submit: wrote {out_path}")
     return Path(out_path)

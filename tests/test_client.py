@@ -404,3 +404,28 @@ def test_daily_series_as_a_frame(client: Client, five: dict) -> None:
     first = five["features"][0]["id"]
     total = daily[(daily["feature_id"] == first) & daily["date"].str.startswith("2000")]["prcp"].sum()
     assert table.loc[table["feature_id"] == first, "prcp_total"].item() == pytest.approx(total, abs=1e-5)
+
+
+def test_wxshock_submit_lists_skipped_features_beside_a_csv(
+    live_server,  # noqa: F811
+    five: dict,
+    tmp_path: Path,
+) -> None:
+    # A batch that loses a feature keeps the others; the CSV's sidecar says which one and why (issue 12).
+    features = json.loads(json.dumps(five))
+    lost = features["features"][2]
+    lost["geometry"] = {"type": "Polygon", "coordinates": [[[10, 10], [10.1, 10], [10.1, 10.1], [10, 10]]]}
+    request = tmp_path / "request.json"
+    request.write_text(json.dumps(REQUEST), encoding="utf-8")
+    path = tmp_path / "five.geojson"
+    path.write_text(json.dumps(features), encoding="utf-8")
+    out = tmp_path / "batch.csv"
+    args = ["submit", "--server", live_server.base_url, "--request", str(request), "--features", str(path)]
+    assert wxshock([*args, "--out", str(out), "--quiet"]) == 0
+    sidecar = json.loads((tmp_path / "batch.csv.provenance.json").read_text())
+    assert [(s["feature_id"], s["code"]) for s in sidecar["skipped_features"]] == [
+        (str(lost["id"]), "outside_grid")
+    ]
+    table = pd.read_csv(out)
+    assert set(table["feature_id"].astype(str)) == {str(f["id"]) for f in features["features"]}
+    assert table.loc[table["feature_id"].astype(str) == str(lost["id"]), "notes"].eq("feature_skipped").all()
