@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 
 from service.encode.formats import FORMATS
 from service.encode.result import json_value, stable_frame
-from service.encode.tables import PARQUET_METADATA_KEY, to_csv
+from service.encode.tables import PARQUET_METADATA_KEY, PARQUET_WARNINGS_KEY, to_csv
 from service.errors import NotAcceptableError
 
 # The formats written piece by piece (a Stata file is written whole).
@@ -54,6 +54,11 @@ def stream(
     raise NotAcceptableError(
         f"format {fmt!r} is not offered; choose one of {', '.join(FORMATS)}", field="format"
     )
+
+
+def _compact(value: Any) -> bytes:
+    """Compact, key-sorted JSON bytes, as service.encode.tables writes Parquet metadata."""
+    return json.dumps(value, separators=(",", ":"), sort_keys=True, ensure_ascii=False).encode("utf-8")
 
 
 def _dumps(value: Any) -> str:
@@ -127,29 +132,29 @@ def _parquet(
     provenance: dict[str, Any],
     warnings: list[dict[str, Any]],
 ) -> Iterator[bytes]:
-    """A Parquet file of one row group per piece, provenance and warnings in its key-value metadata."""
+    """A Parquet file of one row group per piece, with the metadata and encodings of to_parquet."""
     sink = _Drain()
     writer: pq.ParquetWriter | None = None
     schema: pa.Schema | None = None
-    document = json.dumps(
-        {"provenance": provenance, "warnings": warnings}, separators=(",", ":"), sort_keys=True
-    )
+
+    def with_metadata(table: pa.Table) -> pa.Schema:
+        metadata = dict(table.schema.metadata or {})
+        metadata[PARQUET_METADATA_KEY] = _compact(provenance)
+        metadata[PARQUET_WARNINGS_KEY] = _compact(warnings)
+        return table.schema.with_metadata(metadata)
+
     try:
         for piece in pieces(frames):
             table = pa.Table.from_pandas(stable_frame(piece), schema=schema, preserve_index=False)
             if writer is None:
-                metadata = dict(table.schema.metadata or {})
-                metadata[PARQUET_METADATA_KEY] = document.encode("utf-8")
-                schema = table.schema.with_metadata(metadata)
-                table = table.replace_schema_metadata(metadata)
-                writer = pq.ParquetWriter(sink, schema, compression="zstd")
+                schema = with_metadata(table)
+                table = table.replace_schema_metadata(schema.metadata)
+                writer = pq.ParquetWriter(sink, schema, compression="zstd", use_dictionary=True)
             writer.write_table(table)
             yield sink.take()
         if writer is None:
             empty = pa.Table.from_pandas(pd.DataFrame(columns=columns), preserve_index=False)
-            metadata = dict(empty.schema.metadata or {})
-            metadata[PARQUET_METADATA_KEY] = document.encode("utf-8")
-            writer = pq.ParquetWriter(sink, empty.schema.with_metadata(metadata), compression="zstd")
+            writer = pq.ParquetWriter(sink, with_metadata(empty), compression="zstd", use_dictionary=True)
     finally:
         if writer is not None:
             writer.close()

@@ -65,6 +65,10 @@ def test_parquet_in_row_groups_holds_the_whole_table_and_metadata(
     got = pq.read_table(io.BytesIO(streamed)).to_pandas()
     pd.testing.assert_frame_equal(got, expected, check_dtype=rows > 0)
     assert read_parquet_provenance(streamed) == read_parquet_provenance(whole)
+    ours, theirs = (pq.read_schema(io.BytesIO(b)).metadata for b in (streamed, whole))
+    assert {k: v for k, v in ours.items() if k.startswith(b"wxshock")} == {
+        k: v for k, v in theirs.items() if k.startswith(b"wxshock")
+    }
     if rows == 1000:
         assert pq.ParquetFile(io.BytesIO(streamed)).num_row_groups == 13  # 333 = 100 + 100 + 100 + 33, and 1
 
