@@ -551,3 +551,26 @@ def test_an_old_database_gains_owners_and_keeps_its_jobs(tmp_path: Path) -> None
     assert not Principal("alice").sees(job) and Principal("lead", admin=True).sees(job)
     db.close()
     assert JobDatabase(path).get("before") is not None  # opening again migrates nothing twice
+
+
+def test_the_run_reuses_the_weights_computed_at_submission(
+    runner: JobRunner, tiny_communities: dict, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from service.jobs import check_job_request
+
+    request = _request(tiny_communities, 5)
+    prepared = check_job_request(request, runner.registry, runner.settings)
+    job, _ = runner.submit(request, "parquet", prepared=prepared)
+    assert (runner.prepared / f"{job.id}.pickle").is_file()
+
+    def no_second_time(*args: Any, **kwargs: Any) -> None:  # noqa: ANN401
+        raise AssertionError("the weights were computed again")
+
+    monkeypatch.setattr(pipeline, "features_and_weights", no_second_time)
+    done = _wait(runner, job.id, {"succeeded", "failed"})
+    assert done.state == "succeeded", done.error
+    assert not (runner.prepared / f"{job.id}.pickle").exists()  # kept only until the job ends
+    monkeypatch.undo()
+    store = runner.registry.get_dataset(None)
+    expected, _, _ = encode.encode(pipeline.run(request, store, runner.settings), "parquet")
+    assert runner.result_path(job.id)[1].read_bytes() == expected
