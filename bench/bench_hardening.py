@@ -135,10 +135,14 @@ class HealthProbe:
         )
 
 
-def start(code: Path, data_dir: Path, cap_bytes: int, env: dict[str, str] | None = None) -> memory.CappedServer:
+def start(
+    code: Path, data_dir: Path, cap_bytes: int, env: dict[str, str] | None = None
+) -> memory.CappedServer:
     """The server of checkout ``code`` over the small demo under a memory cap."""
     environment = {"PYTHONPATH": str(code), **(env or {})}
-    return memory.start_capped(stores=[small_demo()], data_dir=data_dir, cap_bytes=cap_bytes, env=environment)
+    return memory.start_capped(
+        stores=[small_demo()], data_dir=data_dir, cap_bytes=cap_bytes, env=environment, cwd=code
+    )
 
 
 def sampled(server: memory.CappedServer, stop: threading.Event) -> threading.Thread:
@@ -172,6 +176,9 @@ def part_series(code: Path, work: Path, features: int = 200, id_length: int = 20
         sampler = sampled(server, stop)
         try:
             with httpx.Client(base_url=server.server.base_url, timeout=900) as client:
+                warm = {"features": circles(small_demo(), 1, 40), "years": {"start": 2000, "end": 2000}}
+                client.post("/v1/series", json=warm, params={"format": fmt}).raise_for_status()
+                baseline = memory.rss_bytes(server.pid)
                 start_time = time.perf_counter()
                 size = 0
                 with client.stream("POST", "/v1/series", json=body, params={"format": fmt}) as response:
@@ -186,22 +193,31 @@ def part_series(code: Path, work: Path, features: int = 200, id_length: int = 20
             server.stop()
         report = server.report()
         lines.append(
-            f"| {fmt} | {status} | {elapsed:.1f} s | {first_byte:.1f} s | {mb(size)} | {mb(report['peak_rss_bytes'])} "
-            f"| {report['cap']} |"
+            f"| {fmt} | {status} | {elapsed:.1f} s | {first_byte:.1f} s | {mb(size)} | {mb(baseline)} | "
+            f"{mb(report['peak_rss_bytes'])} | {report['cap']} |"
         )
         print(lines[-1], flush=True)
     return lines
 
 
 def part_health(code: Path, work: Path, features: int = 200, vertices: int = 8900) -> str:
-    """/health latency while the largest allowed body (200 features of 8,900 vertices, about 48 MB) is served."""
+    """/health latency while the largest allowed body (200 features of 8,900 vertices, about 48 MB) is served.
+
+    An idle server of the same code is probed at the same time: its latencies are what the machine's own
+    load costs (this machine is shared), so the difference is what the request costs the served one.
+    """
     server = start(code, work / "health", 8 * GB)
+    control = start(code, work / "health-control", 2 * GB)
     stop = threading.Event()
     sampler = sampled(server, stop)
     body = json.dumps({"features": circles(small_demo(), features, vertices), "indicators": ["prcp_total"],
                        "years": {"start": 2000, "end": 2001}}).encode()  # fmt: skip
     try:
-        with HealthProbe(server.server.base_url) as probe, httpx.Client(timeout=900) as client:
+        with (
+            HealthProbe(server.server.base_url) as probe,
+            HealthProbe(control.server.base_url) as idle,
+            httpx.Client(timeout=900) as client,
+        ):
             time.sleep(1.0)
             start_time = time.perf_counter()
             response = client.post(
@@ -215,37 +231,51 @@ def part_health(code: Path, work: Path, features: int = 200, vertices: int = 890
         stop.set()
         sampler.join()
         server.stop()
+        control.stop()
     return (
         f"{len(body) / 1e6:.1f} MB body ({features} features x {vertices} vertices): {response.status_code} in "
-        f"{elapsed:.1f} s; /health {probe.summary()}; peak RSS {mb(server.report()['peak_rss_bytes'])}"
+        f"{elapsed:.1f} s; /health {probe.summary()}; an idle server meanwhile: {idle.summary()}; peak RSS "
+        f"{mb(server.report()['peak_rss_bytes'])}; load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores"
     )
 
 
 def part_submit(code: Path, work: Path, count: int = 100_000) -> str:
     """POST /v1/jobs with ``count`` buffered points: time until the 202 (the checks and weights run then)."""
     server = start(code, work / "submit", 8 * GB)
+    control = start(code, work / "submit-control", 2 * GB)
     body = json.dumps({"features": points(small_demo(), count)}).encode()
     try:
-        with HealthProbe(server.server.base_url) as probe, httpx.Client(timeout=900) as client:
+        with (
+            HealthProbe(server.server.base_url) as probe,
+            HealthProbe(control.server.base_url) as idle,
+            httpx.Client(timeout=900) as client,
+        ):
             start_time = time.perf_counter()
             response = client.post(
-                server.server.base_url + "/v1/jobs", content=body, headers={"Content-Type": "application/json"}
+                server.server.base_url + "/v1/jobs",
+                content=body,
+                headers={"Content-Type": "application/json"},
             )
             elapsed = time.perf_counter() - start_time
             location = response.headers.get("Location")
+            status = client.get(server.server.base_url + location).json() if location else {}
             if location:
                 client.delete(server.server.base_url + location)
     finally:
         server.stop()
+        control.stop()
     return (
-        f"{count:,} points ({len(body) / 1e6:.1f} MB): {response.status_code} in {elapsed:.1f} s; "
-        f"/health {probe.summary()}; peak RSS {mb(server.report()['peak_rss_bytes'])}"
+        f"{count:,} points ({len(body) / 1e6:.1f} MB): {response.status_code} in {elapsed:.1f} s "
+        f"({status.get('features_skipped', 0)} skipped); /health {probe.summary()}; an idle server meanwhile: "
+        f"{idle.summary()}; peak RSS {mb(server.report()['peak_rss_bytes'])}; load average "
+        f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores"
     )
 
 
 def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s: float) -> list[str]:
     """The largest on-demand request, 8 concurrent on-demand requests and a large job, all at once."""
     server = start(code, work / "load", cap_bytes)
+    control = start(code, work / "load-control", 2 * GB)
     base = server.server.base_url
     small = json.dumps({"features": circles(small_demo(), 20, 200), "years": {"start": 1990, "end": 2022}})
     largest = json.dumps({"features": circles(small_demo(), 200, 8900), "indicators": ["prcp_total", "tmean"],
@@ -257,7 +287,11 @@ def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s
     lines: list[str] = []
     deadline = time.monotonic() + limit_s
     try:
-        with HealthProbe(base) as probe, httpx.Client(base_url=base, timeout=limit_s) as client:
+        with (
+            HealthProbe(base) as probe,
+            HealthProbe(control.server.base_url) as idle,
+            httpx.Client(base_url=base, timeout=limit_s) as client,
+        ):
             start_time = time.perf_counter()
             submitted = client.post("/v1/jobs", content=job, headers=headers)
             submit_s = time.perf_counter() - start_time
@@ -283,6 +317,7 @@ def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s
         stop.set()
         sampler.join()
         server.stop()
+        control.stop()
     report = server.report()
     statuses = sorted({s for s, _ in results})
     lines.append(f"- job of {job_features:,} points: submitted ({submitted.status_code}) in {submit_s:.1f} s; "
@@ -290,7 +325,8 @@ def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s
                  f"{state.get('features_total')} features, {state.get('features_skipped', 0)} skipped)")  # fmt: skip
     lines.append(f"- on-demand: {len(results)} requests, statuses {statuses}; the largest took {results[0][1]:.1f} s, "
                  f"the others median {statistics.median(t for _, t in results[1:]):.1f} s")  # fmt: skip
-    lines.append(f"- /health: {probe.summary()}")
+    lines.append(f"- /health: {probe.summary()}; an idle server meanwhile: {idle.summary()}; load average "
+                 f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")  # fmt: skip
     lines.append(f"- memory: peak RSS {mb(report['peak_rss_bytes'])} under a {mb(cap_bytes)} cap ({report['cap']}); "
                  f"group peak with page cache {mb(report['group_peak_bytes'])}; kills for memory: "
                  f"{report['oom_kills']}")  # fmt: skip
@@ -322,7 +358,7 @@ def main() -> None:
     os.environ.pop("PYTHONPATH", None)
     work = args.work / time.strftime("%Y%m%d-%H%M%S")
     if args.part == "series":
-        print("| format | status | time | first byte | size | peak RSS | cap |")
+        print("| format | status | time | first byte | size | RSS before | peak RSS | cap |")
         part_series(args.code, work)
     elif args.part == "health":
         print(part_health(args.code, work))

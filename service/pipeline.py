@@ -46,7 +46,7 @@ from service.indicators.table import (
     resolve_request,
 )
 from service.indicators.windows import ResolvedEvents, compute_event_table, resolve_events
-from service.prepared import Prepared, skipped_of, skipped_warnings, without_shapes
+from service.prepared import Prepared, skipped_of, skipped_warnings
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
 from service.store import Store, open_store
@@ -536,7 +536,8 @@ def prepare(
 
     Request-level faults raise; per-feature faults raise under 'fail' (one error listing every bad feature)
     and are skipped under 'skip'. A request whose every feature is skipped raises FeatureError (422).
-    ``keep_shapes`` keeps the features' geometries (the map draws them); otherwise they are dropped.
+    ``keep_shapes`` is kept for callers that draw the features (the shapes are always kept in memory; a
+    pickled Prepared leaves them out).
     With events or variants the checks are theirs (:func:`prepare_events`, :func:`prepare_variants`);
     ``stores`` serves the datasets that variants name.
     """
@@ -612,7 +613,7 @@ def _prepare_resolved(
                 for e in skipped
             ],
         )
-    return Prepared(parsed if keep_shapes else without_shapes(parsed), weights, skipped, mode)
+    return Prepared(parsed, weights, skipped, mode)
 
 
 # --- events ---------------------------------------------------------------------------------------------------
@@ -929,7 +930,7 @@ def prepare_variants(
     """The checks of every variant (a job's submission); the features' and the request's own weights."""
     mode = request.invalid_features or invalid_features
     runs = _variant_runs(request, store, stores)
-    parsed = without_shapes(parse_request_features(request, settings, invalid=mode))
+    parsed = parse_request_features(request, settings, invalid=mode)
     weights = _resolve_variants(runs, parsed, settings, mode)
     skipped = skipped_of(parsed, *(w for w, _ in weights.values()))
     first = weights[runs[0].weights_key][0]

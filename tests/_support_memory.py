@@ -195,8 +195,13 @@ def start_capped(
     cap_bytes: int,
     env: dict[str, str] | None = None,
     timeout: float = 300.0,
+    cwd: Path | None = None,
 ) -> CappedServer:
-    """Start `wxshock serve` on 127.0.0.1 under a memory cap of ``cap_bytes`` and wait until it is ready."""
+    """Start `wxshock serve` on 127.0.0.1 under a memory cap of ``cap_bytes`` and wait until it is ready.
+
+    ``cwd`` is the server's working directory: `python -m` puts it first on the import path, so give the
+    checkout whose code should run (by default this one's, as the tests' own).
+    """
     cap = MemoryCap.make(cap_bytes)
     port = server_support.free_port()
     data_dir.mkdir(parents=True, exist_ok=True)
@@ -209,7 +214,7 @@ def start_capped(
     log_path = data_dir / f"server-{port}.log"
     with open(log_path, "ab") as log:
         process = subprocess.Popen(
-            args, stdout=log, stderr=subprocess.STDOUT, env=environment, preexec_fn=cap.enter
+            args, stdout=log, stderr=subprocess.STDOUT, env=environment, preexec_fn=cap.enter, cwd=cwd
         )
     live = server_support.LiveServer(
         f"http://{server_support.HOST}:{port}", data_dir, process=process, log_path=log_path

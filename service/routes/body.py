@@ -4,7 +4,8 @@ FastAPI parses a JSON body with one ``json.loads`` and validates it on the event
 loop (and /health) for many seconds. Routes built with :class:`OffLoopRoute` parse it with
 service.request_text and validate it against the route's body model in the thread pool instead, with positions
 in every parse error. FastAPI then receives the validated model, which it passes through without validating
-it again; an invalid body is handed over as parsed, so FastAPI reports its errors as usual.
+it again; an invalid body is handed over as parsed, and FastAPI reports its errors (after the bearer token
+is checked, as for any request). The body of a request without a valid token is not parsed at all.
 """
 
 from __future__ import annotations
@@ -41,7 +42,7 @@ def parse_body(raw: bytes) -> Any:
 
 
 def parse_and_validate(raw: bytes, body_field: Any, scope: dict[str, Any]) -> Any:
-    """The body validated against the route's model (or, when it fails validation, as parsed)."""
+    """The body validated against the route's model, or as parsed when it fails validation."""
     parsed = parse_body(raw)
     scope[BODY_SCOPE_KEY] = parsed
     if body_field is None:
@@ -56,8 +57,11 @@ class OffLoopRequest(Request):
     body_field: Any = None
 
     async def json(self) -> Any:
-        """The validated body (or the parsed one, when invalid), made once."""
+        """The validated body, made once (an empty object, unread, when the bearer token is not valid)."""
         if not hasattr(self, "_json"):
+            if not authorized(self):
+                self._json = {}  # the route's token check answers 401 before anything looks at the body
+                return self._json
             body = await self.body()
             self._json = await run_in_threadpool(parse_and_validate, body, self.body_field, self.scope)
         return self._json
@@ -77,6 +81,16 @@ class OffLoopRoute(APIRoute):
             return await handler(own)
 
         return off_loop
+
+
+def authorized(request: Request) -> bool:
+    """Whether the request may go on to its body: auth is off, or it carries a configured bearer token."""
+    from service.routes.deps import principal_of
+
+    state = getattr(request.app.state, "service", None)
+    if state is None:
+        return True
+    return principal_of(state, request.headers.get("authorization")) is not None
 
 
 def parsed_body(request: Request) -> Any:

@@ -126,6 +126,24 @@ _bearer = HTTPBearer(
 )
 
 
+def principal_of(state: ServiceState, authorization: str | None) -> Principal | None:
+    """The owner of the bearer token in an Authorization header (ANONYMOUS when auth is off), or None."""
+    if not state.tokens:
+        return ANONYMOUS
+    scheme, _, token = (authorization or "").strip().partition(" ")
+    token = token.strip()
+    if scheme.lower() != "bearer" or not token:
+        return None
+    presented = hashlib.sha256(token.encode()).hexdigest()
+    # Compare against every digest, in constant time each and without stopping at a match, so that timing
+    # tells nothing about which digest nearly matched or where the match was.
+    matched: Principal | None = None
+    for digest, principal in state.tokens.items():
+        if hmac.compare_digest(presented, digest):
+            matched = principal
+    return matched
+
+
 def require_token(
     state: State, credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)]
 ) -> Principal:
@@ -134,13 +152,7 @@ def require_token(
         return ANONYMOUS
     if credentials is None or credentials.scheme.lower() != "bearer" or not credentials.credentials:
         raise AuthError("this server needs a bearer token: send 'Authorization: Bearer TOKEN'")
-    presented = hashlib.sha256(credentials.credentials.encode()).hexdigest()
-    # Compare against every digest, in constant time each and without stopping at a match, so that timing
-    # tells nothing about which digest nearly matched or where the match was.
-    matched: Principal | None = None
-    for digest, principal in state.tokens.items():
-        if hmac.compare_digest(presented, digest):
-            matched = principal
+    matched = principal_of(state, f"Bearer {credentials.credentials}")
     if matched is None:
         raise AuthError("the bearer token is not valid on this server")
     return matched
