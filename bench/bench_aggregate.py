@@ -32,6 +32,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from _results import write_section
 
 ROOT = Path(__file__).resolve().parent.parent
 OUT = ROOT / "bench" / "out"
@@ -445,18 +446,6 @@ def closing_note(
     )
 
 
-def write_section(text: str) -> None:
-    """Replace this benchmark's section of bench/RESULTS.md (or append it)."""
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.is_file() else "# Benchmark results\n\n"
-    if START in old and END in old:
-        head, rest = old.split(START, 1)
-        _, tail = rest.split(END, 1)
-        new = head + text.rstrip("\n") + tail
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new, encoding="utf-8")
-
-
 def base_memory() -> dict[str, Any]:
     """Peak memory of the imports and an opened store, the floor under every phase."""
     from service.store import open_store
@@ -508,7 +497,7 @@ def main() -> int:
         text = report(args.features, saved, store)
         print(text)
         if not args.no_write:
-            write_section(text)
+            write_section(START, END, text)
         return 0
     load(args.features)  # polygons built once, outside the timings
     n = ["--features", str(args.features)] + (["--store", str(args.store)] if args.store else [])
@@ -530,7 +519,7 @@ def main() -> int:
     print(text)
     (OUT / f"bench_aggregate-{args.features}.json").write_text(json.dumps(results, indent=2))
     if not args.no_write and args.features == 5000:
-        write_section(text)
+        write_section(START, END, text)
     return 0
 
 

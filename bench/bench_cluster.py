@@ -35,6 +35,8 @@ import time
 from pathlib import Path
 from typing import Any
 
+from _results import write_section
+
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
@@ -164,7 +166,7 @@ def main() -> int:
     section = render(sorted(RECORDS.glob(f"bench_cluster-*-{args.features}.json")))
     print(section)
     if not args.no_write and args.features == 5000:
-        write_section(section)
+        write_section(START, END, section)
     return 0
 
 
@@ -212,18 +214,6 @@ def render(paths: list[Path]) -> str:
         END,
     ]
     return "\n".join(lines)
-
-
-def write_section(section: str) -> None:
-    """Replace this benchmark's section in bench/RESULTS.md (or append it)."""
-    text = RESULTS.read_text(encoding="utf-8") if RESULTS.exists() else "# Benchmark results\n"
-    if START in text and END in text:
-        before, rest = text.split(START, 1)
-        _, after = rest.split(END, 1)
-        text = before + section + after
-    else:
-        text = text.rstrip("\n") + "\n\n" + section + "\n"
-    RESULTS.write_text(text, encoding="utf-8")
 
 
 if __name__ == "__main__":

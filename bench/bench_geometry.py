@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 import pyproj
 import shapely
+from _results import write_section
 
 ROOT = Path(__file__).resolve().parent.parent
 RESULTS = ROOT / "bench" / "RESULTS.md"
@@ -244,18 +245,6 @@ def report(results: dict[str, dict[str, Any]]) -> str:
     return "\n".join(lines) + "\n"
 
 
-def write_section(text: str) -> None:
-    """Replace this benchmark's section of bench/RESULTS.md (or append it)."""
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.is_file() else "# Benchmark results\n\n"
-    if START in old and END in old:
-        head, rest = old.split(START, 1)
-        _, tail = rest.split(END, 1)
-        new = head + text.rstrip("\n") + tail
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new, encoding="utf-8")
-
-
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="500 polygons and 5,000 points; write nothing")
@@ -286,7 +275,7 @@ def main() -> int:
     text = report(results)
     print(text)
     if not args.quick:
-        write_section(text)
+        write_section(START, END, text)
     return 0
 
 

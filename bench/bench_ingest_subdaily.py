@@ -27,6 +27,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import xarray as xr
+from _results import write_section
 
 ROOT = Path(__file__).resolve().parents[1]
 RESULTS = ROOT / "bench" / "RESULTS.md"
@@ -168,18 +169,6 @@ def base_memory() -> dict:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-def write_section(text: str) -> None:
-    """Replace this benchmark's section of bench/RESULTS.md (or append it)."""
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.is_file() else "# Benchmark results\n\n"
-    if START in old and END in old:
-        head, rest = old.split(START, 1)
-        _, tail = rest.split(END, 1)
-        new = head + text.rstrip("\n") + tail
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new, encoding="utf-8")
-
-
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument(
@@ -208,7 +197,7 @@ def main() -> int:
         text = section(args.cells, args.months, nbytes, hourly, daily, base, longer)
         print(text)
         if not args.no_write:
-            write_section(text)
+            write_section(START, END, text)
     finally:
         if not args.workdir:
             shutil.rmtree(workdir, ignore_errors=True)
