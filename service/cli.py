@@ -149,6 +149,7 @@ def cmd_compute(args: argparse.Namespace) -> int:
         store_location=args.store,
         request_path=Path(args.request),
         features_path=Path(args.features) if args.features else None,
+        events_path=Path(args.events) if args.events else None,
         out_path=Path(args.out),
         settings=_settings(args),
         progress=not args.quiet,
@@ -164,6 +165,7 @@ def cmd_submit(args: argparse.Namespace) -> int:
         server=args.server,
         request_path=Path(args.request),
         features_path=Path(args.features) if args.features else None,
+        events_path=Path(args.events) if args.events else None,
         out_path=Path(args.out),
         token=args.token,
         progress=not args.quiet,
@@ -268,9 +270,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_migrate)
 
     p = sub.add_parser("compute", help="compute indicators locally, without a server")
-    p.add_argument("--store", required=True, help="store directory or s3:// URL")
+    p.add_argument(
+        "--store",
+        required=True,
+        action="append",
+        help="store directory or s3:// URL; repeat it for variants naming other datasets (by directory stem)",
+    )
     p.add_argument("--request", required=True, help="request JSON (the same body as POST /v1/indicators)")
     p.add_argument("--features", help="GeoJSON file of communities (replaces the request's features)")
+    p.add_argument(
+        "--events", help="CSV or Parquet file of events: id, feature_id, date (replaces the request's)"
+    )
     p.add_argument("--out", required=True, help="output file: .parquet, .csv or .json")
     p.add_argument("--scheduler", help="dask.distributed scheduler address")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -280,6 +290,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--server", required=True, help="base URL, e.g. http://127.0.0.1:8000")
     p.add_argument("--request", required=True, help="request JSON")
     p.add_argument("--features", help="GeoJSON file of communities (replaces the request's features)")
+    p.add_argument(
+        "--events", help="CSV or Parquet file of events: id, feature_id, date (replaces the request's)"
+    )
     p.add_argument("--out", required=True, help="output file: .parquet, .csv or .json")
     p.add_argument("--token", help="bearer token (or set WXSHOCK_TOKEN)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")

@@ -156,6 +156,84 @@ def features_document(features: Any, id_column: str | None = None) -> tuple[dict
     )
 
 
+# The columns an events table must have: the event id (either name), the community, the date.
+_EVENT_ID_COLUMNS = ("id", "event_id")
+
+
+def events_list(events: Any) -> list[dict[str, str]]:
+    """Events as a request's ``events``: from a list of dicts, a DataFrame, or a CSV or Parquet file path.
+
+    A table needs an ``id`` (or ``event_id``) column, ``feature_id`` and ``date`` ('YYYY-MM-DD' text, or
+    dates/timestamps, written as their day); other columns (a survey's own) are left out. Ids are sent as text.
+    """
+    if isinstance(events, list | tuple):
+        return [dict(e) if isinstance(e, Mapping) else e for e in events]
+    import pandas as pd  # here, not at import: `wxshock submit` without events never needs it
+
+    if isinstance(events, str | os.PathLike):
+        path = Path(events)
+        if not path.exists():
+            raise RequestError(f"events file {str(path)!r} does not exist", field="events")
+        suffix = path.suffix.lower()
+        try:
+            if suffix == ".csv":
+                frame = pd.read_csv(path, dtype=str, keep_default_na=False)
+            elif suffix in (".parquet", ".pq"):
+                frame = pd.read_parquet(path)
+            else:
+                raise RequestError(
+                    f"events file {str(path)!r}: give a .csv or .parquet file (columns id, feature_id, date)",
+                    field="events",
+                )
+        except (OSError, ValueError) as exc:
+            if isinstance(exc, RequestError):
+                raise
+            raise RequestError(f"cannot read events file {str(path)!r}: {exc}", field="events") from None
+        return _events_of_frame(frame, str(path))
+    if isinstance(events, pd.DataFrame):
+        return _events_of_frame(events, "the events table")
+    raise RequestError(
+        f"events of type {type(events).__name__!r} are not understood; give a list of dicts, a DataFrame or a "
+        ".csv/.parquet path",
+        field="events",
+    )
+
+
+def _events_of_frame(frame: pd.DataFrame, what: str) -> list[dict[str, str]]:
+    """The events of a table with columns id (or event_id), feature_id and date."""
+    import pandas as pd
+    id_column = next((c for c in _EVENT_ID_COLUMNS if c in frame.columns), None)
+    missing = [
+        c
+        for c, ok in (
+            ("id or event_id", id_column),
+            ("feature_id", "feature_id" in frame.columns),
+            ("date", "date" in frame.columns),
+        )
+        if not ok
+    ]
+    if missing:
+        raise RequestError(
+            f"{what} has no column {' and '.join(repr(m) for m in missing)} (its columns: "
+            f"{[str(c) for c in frame.columns]!r}); name the columns id, feature_id and date",
+            field="events",
+        )
+    dates = frame["date"]
+    if pd.api.types.is_datetime64_any_dtype(dates):
+        dates = dates.dt.strftime("%Y-%m-%d")
+    else:
+        dates = dates.map(lambda d: d.isoformat() if hasattr(d, "isoformat") else d)
+    for name, values in (("id", frame[id_column]), ("feature_id", frame["feature_id"]), ("date", dates)):
+        empty = values.isna() | (values.astype(str) == "")
+        if empty.any():
+            row = int(empty.to_numpy().nonzero()[0][0])
+            raise RequestError(f"{what}: row {row + 1} has no {name}; every event needs one", field="events")
+    return [
+        {"id": str(i), "feature_id": str(f), "date": str(d)}
+        for i, f, d in zip(frame[id_column], frame["feature_id"], dates, strict=True)
+    ]
+
+
 def _friendly(request: dict[str, Any]) -> dict[str, Any]:
     """Accept Python shorthands: years/baseline as (start, end), baseline as an int (trailing), season months."""
     out = dict(request)
@@ -176,6 +254,8 @@ def _friendly(request: dict[str, Any]) -> dict[str, Any]:
     for key in ("pairs", "sequences", "lags"):
         if isinstance(out.get(key), tuple):
             out[key] = list(out[key])
+    if out.get("events") is not None:
+        out["events"] = events_list(out["events"])
     return out
 
 
@@ -338,8 +418,11 @@ class Client:
 
         ``features``: GeoJSON dict, file path (GeoJSON, GeoPackage, Shapefile) or GeoDataFrame; ``request``:
         the fields of the request (years, season, baseline, indicators, classes, lags, pairs, sequences,
-        spells, weighting, layout, dataset). More than ``on_demand_features`` features (or ``as_job=True``)
-        go as a batch job, followed with a progress bar. Provenance and warnings are in ``df.attrs``.
+        spells, weighting, layout, dataset, events, windows, variants, lag_values). ``events`` may be a list
+        of dicts, a DataFrame or a .csv/.parquet path (columns id, feature_id, date: see
+        :func:`events_list`); with events the table has one row per event. More than
+        ``on_demand_features`` features (or ``as_job=True``) go as a batch job, followed with a progress bar.
+        Provenance and warnings are in ``df.attrs``.
         """
         body = build_request(features, id_column, **request)
         if as_job or (as_job is None and feature_count(body) > self.on_demand_features):
@@ -591,6 +674,7 @@ def submit_files(
     request_path: Path,
     features_path: Path | None,
     out_path: Path,
+    events_path: Path | None = None,
     token: str | None = None,
     progress: bool = True,
 ) -> Path:
@@ -617,6 +701,8 @@ def submit_files(
             field="features",
         )
     body.pop("features", None)
+    if events_path is not None:  # a CSV or Parquet file of events replaces the request's own
+        body["events"] = events_list(events_path)
     with Client(server, token) as client:
         full = build_request(features, **body)
         job = client._submit_body(full, fmt, None)

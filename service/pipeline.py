@@ -876,13 +876,17 @@ def _named(exc: Exception, run_: _VariantRun) -> Exception:
 
 
 def _resolve_variants(
-    runs: list[_VariantRun], parsed: ParsedFeatures, settings: Settings, mode: str
+    runs: list[_VariantRun],
+    parsed: ParsedFeatures,
+    settings: Settings,
+    mode: str,
+    known: dict[str, tuple[Weights, list[dict[str, Any]]]] | None = None,
 ) -> dict[str, tuple[Weights, list[dict[str, Any]]]]:
     """Resolve every variant and weigh the features once per dataset and weighting (each variant named on error).
 
-    Returns the weights and skipped features per weights key.
+    Returns the weights and skipped features per weights key; ``known`` (a job's submission) are reused.
     """
-    weights: dict[str, tuple[Weights, list[dict[str, Any]]]] = {}
+    weights: dict[str, tuple[Weights, list[dict[str, Any]]]] = dict(known or {})
     ids = parsed.ids
     for run_ in runs:
         try:
@@ -934,7 +938,7 @@ def prepare_variants(
     weights = _resolve_variants(runs, parsed, settings, mode)
     skipped = skipped_of(parsed, *(w for w, _ in weights.values()))
     first = weights[runs[0].weights_key][0]
-    return Prepared(parsed, first, skipped, mode)
+    return Prepared(parsed, first, skipped, mode, variant_weights=weights)
 
 
 def run_variants(
@@ -959,10 +963,12 @@ def run_variants(
     """
     mode = request.invalid_features or invalid_features
     runs = _variant_runs(request, store, stores)
-    parsed = (
-        prepared.parsed if prepared is not None else parse_request_features(request, settings, invalid=mode)
-    )
-    weights = _resolve_variants(runs, parsed, settings, mode)
+    known = getattr(prepared, "variant_weights", None) or {}  # a job prepared before variants: none
+    if prepared is not None and all(r.weights_key in known for r in runs):
+        parsed = prepared.parsed  # every weighting is known: the shapes are not needed again
+    else:
+        parsed = parse_request_features(request, settings, invalid=mode)
+    weights = _resolve_variants(runs, parsed, settings, mode, known)
     groups: dict[str, list[_VariantRun]] = {}
     for run_ in runs:
         groups.setdefault(run_.sharing_key, []).append(run_)
@@ -1389,8 +1395,12 @@ def series_result(table: SeriesTable) -> RunResult:
 # --- the CLI's local run --------------------------------------------------------------------------------------
 
 
-def load_request(request_path: Path, features_path: Path | None) -> IndicatorRequest:
-    """The request of a JSON file, with its features replaced by a GeoJSON file's when one is given."""
+def load_request(
+    request_path: Path, features_path: Path | None, events_path: Path | None = None
+) -> IndicatorRequest:
+    """The request of a JSON file, its features replaced by a GeoJSON file's and its events by a CSV or
+    Parquet file's (columns id, feature_id, date; service.client.events_list) when given."""
+    from service.client import events_list
     from service.errors import RequestError
 
     try:
@@ -1406,24 +1416,40 @@ def load_request(request_path: Path, features_path: Path | None) -> IndicatorReq
             raise RequestError(
                 f"cannot read the features {str(features_path)!r}: {exc}", field="features"
             ) from None
+    if events_path is not None:
+        data["events"] = events_list(events_path)
     return validate_request(IndicatorRequest, data)
 
 
 def compute_to_file(
     *,
-    store_location: str,
+    store_location: str | list[str],
     request_path: Path,
     features_path: Path | None,
     out_path: Path,
     settings: Settings,
     progress: bool = True,
+    events_path: Path | None = None,
 ) -> RunResult:
-    """`wxshock compute`: the whole chain locally, written to a .parquet, .csv or .json file."""
+    """`wxshock compute`: the whole chain locally, written to a .parquet, .csv or .json file.
+
+    With several stores the first is the request's dataset and every one is served by its name (the
+    directory stem) to variants that name it.
+    """
     from service.encode import encode, format_from_suffix
+    from service.registry import dataset_name
 
     fmt = format_from_suffix(out_path.suffix)
-    request = load_request(request_path, features_path)
-    store = open_store(store_location, storage_options=settings.storage_options())
+    request = load_request(request_path, features_path, events_path)
+    locations = [store_location] if isinstance(store_location, str) else list(store_location)
+    stores = {
+        dataset_name(location): open_store(
+            location, name=dataset_name(location), storage_options=settings.storage_options()
+        )
+        for location in locations
+    }
+    store_location = locations[0]
+    store = stores[dataset_name(store_location)]
     if request.dataset is not None and request.dataset != store.name:
         raise UnknownDatasetError(
             f"the request names dataset {request.dataset!r} but the store {store_location!r} is dataset "
@@ -1432,7 +1458,7 @@ def compute_to_file(
         )
     bar = _progress_bar(progress)
     try:
-        result = run(request, store, settings, progress=bar.update if bar else None)
+        result = run(request, store, settings, progress=bar.update if bar else None, stores=stores)
     finally:
         if bar:
             bar.close()

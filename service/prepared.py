@@ -29,6 +29,8 @@ class Prepared:
     weights: Any
     skipped: list[dict[str, Any]] = field(default_factory=list)
     invalid_features: str = "fail"
+    # a request with variants: the weights and skipped features per (dataset, weighting) of its variants
+    variant_weights: dict[str, tuple[Any, list[dict[str, Any]]]] = field(default_factory=dict)
 
     def __getstate__(self) -> dict[str, Any]:
         state = dict(self.__dict__)
