@@ -1109,12 +1109,15 @@ def _wide_variants(
             part = frame.reindex(index)[[c for c in frame.columns if _is_feature_column(c)]]
             feature_part = part if feature_part is None else feature_part.combine_first(part)
         pieces.append(feature_part)
-    combined = pd.concat(pieces, axis=1).reset_index()
-    notes = [combined[f"{r.name}__notes"].fillna("").astype(str).tolist() for r in runs]
-    combined["notes"] = pd.array(
-        [" ".join(sorted(set(" ".join(texts).split()))) for texts in zip(*notes, strict=True)], dtype="string"
+    notes = [pieces[i][f"{r.name}__notes"].fillna("").astype(str).tolist() for i, r in enumerate(runs)]
+    union = pd.Series(
+        pd.array(
+            [" ".join(sorted(set(" ".join(t).split()))) for t in zip(*notes, strict=True)], dtype="string"
+        ),
+        index=index,
+        name="notes",
     )
-    return combined
+    return pd.concat([*pieces, union], axis=1).reset_index()
 
 
 def _variants_provenance(

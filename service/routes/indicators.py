@@ -33,8 +33,10 @@ def indicator_catalog() -> IndicatorCatalog:
     """The catalog of every registered indicator (importing the package registers them all)."""
     importlib.import_module("service.indicators")
     from service.indicators.base import catalog
+    from service.indicators.windows.instances import WINDOW_RULE
 
     return IndicatorCatalog(
+        event_windows=WINDOW_RULE,
         indicators=[
             IndicatorInfo(
                 name=i.name,

@@ -142,6 +142,9 @@ class IndicatorCatalog(BaseModel):
     """Every indicator the service computes."""
 
     indicators: list[IndicatorInfo]
+    event_windows: str = Field(
+        default="", description="What 'the same window' of an event means in other years (the baseline rule)."
+    )
 
 
 JobStateName = Literal["queued", "running", "succeeded", "failed", "cancelled"]

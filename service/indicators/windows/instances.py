@@ -47,6 +47,23 @@ _REACH_YEARS = 11
 _LISTED = 5
 
 
+# The rule in a few sentences, as the catalog (GET /v1/indicators) states it.
+WINDOW_RULE = (
+    "An event window runs from start to end (both inclusive) relative to the event's date, in days of the "
+    "dataset's calendar or calendar months (where the month is too short, a start moves to the first day of "
+    "the next month and an end to the month's last day); it spans at most one year, and its window-year is "
+    "the year in which it ends. The same window in another year covers the same calendar days: from the "
+    "start's month-day to the end's month-day, shifted by whole years, crossing the new year if the event's "
+    "window does. A month-day the year lacks (29 February) starts the window on the next day (1 March) or "
+    "ends it on the day before (28 February), so a window holding 29 February has one day less in common "
+    "years; in noleap and 360_day calendars every instance has the same days. The baseline of an (event, "
+    "window) is that same window in each baseline window-year ({start, end}: those years; {trailing: N}: the "
+    "N before the event's), for the event's own community; z, classes and percent of normal are taken "
+    "against it as for seasons. Lag k is the same window k years earlier. Days outside the data count as "
+    "missing (max_missing_share and partial_seasons apply); baseline windows must lie wholly in the data."
+)
+
+
 # --- calendar arithmetic ----------------------------------------------------------------------------------
 
 
