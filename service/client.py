@@ -202,6 +202,7 @@ def events_list(events: Any) -> list[dict[str, str]]:
 def _events_of_frame(frame: pd.DataFrame, what: str) -> list[dict[str, str]]:
     """The events of a table with columns id (or event_id), feature_id and date."""
     import pandas as pd
+
     id_column = next((c for c in _EVENT_ID_COLUMNS if c in frame.columns), None)
     missing = [
         c

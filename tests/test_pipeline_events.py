@@ -260,6 +260,8 @@ def test_variants_share_one_aggregation_and_equal_separate_requests(store, setti
     assert [e["name"] for e in entries] == [v["name"] for v in VARIANTS]
     assert all(e["fingerprint"] == store.fingerprint for e in entries)
     assert entries[1]["request"]["baseline"] == {"start": 2001, "end": 2020}
+    _, _, headers = encode(combined, "csv")  # CSV has no metadata: each variant's fingerprint in a header
+    assert headers["X-Wxshock-Variants"].split(", ")[1] == f"recent=demo@{store.fingerprint}"
 
 
 def test_variants_long_layout_has_a_variant_column(store, settings, few) -> None:

@@ -43,9 +43,16 @@ def json_value(value: Any) -> Any:
 
 def provenance_headers(provenance: dict[str, Any]) -> dict[str, str]:
     """Provenance as HTTP response headers (for CSV, which has no place for metadata)."""
-    return {
+    headers = {
         "X-Wxshock-Dataset": str(provenance["dataset"]),
         "X-Wxshock-Fingerprint": str(provenance["fingerprint"]),
         "X-Wxshock-Request-Hash": str(provenance["request_hash"]),
         "X-Wxshock-Software": str(provenance["software"]),
     }
+    if provenance.get(
+        "variants"
+    ):  # a sweep: each variant's dataset and fingerprint ("name=dataset@sha256:...")
+        headers["X-Wxshock-Variants"] = ", ".join(
+            f"{v['name']}={v['dataset']}@{v['fingerprint']}" for v in provenance["variants"]
+        )
+    return headers

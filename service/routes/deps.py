@@ -225,4 +225,5 @@ PROVENANCE_HEADERS = {
     "X-Wxshock-Fingerprint": "Fingerprint of the dataset's contents.",
     "X-Wxshock-Request-Hash": "Hash of the resolved request, dataset fingerprint and software version.",
     "X-Wxshock-Software": "Software name and version.",
+    "X-Wxshock-Variants": "With variants: each one's name, dataset and fingerprint (name=dataset@fingerprint, ...).",
 }

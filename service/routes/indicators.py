@@ -64,7 +64,7 @@ def indicator_catalog() -> IndicatorCatalog:
                 details=i.details,
             )
             for i in catalog()
-        ]
+        ],
     )
 
 
