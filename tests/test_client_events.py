@@ -152,3 +152,37 @@ def test_command_line_compute_with_an_events_file(
     table = pd.read_parquet(io.BytesIO(data))
     assert table["event_id"].tolist() == pd.read_csv(events_csv, dtype=str)["id"].tolist()
     assert read_parquet_provenance(data)["provenance"]["request"]["windows"][0]["name"] == "prior_year"
+
+
+def test_command_line_submit_with_an_events_file(
+    live_server,  # noqa: F811
+    five: dict,
+    events_csv: Path,
+    tmp_path: Path,  # noqa: F811
+) -> None:
+    request = tmp_path / "request.json"
+    request.write_text(json.dumps({**REQUEST, "variants": [{"name": "main"}]}), encoding="utf-8")
+    (tmp_path / "five.geojson").write_text(json.dumps(five), encoding="utf-8")
+    out = tmp_path / "exposure.csv"
+    code = wxshock(
+        [
+            "submit",
+            "--server",
+            live_server.base_url,
+            "--request",
+            str(request),
+            "--features",
+            str(tmp_path / "five.geojson"),
+            "--events",
+            str(events_csv),
+            "--out",
+            str(out),
+            "--quiet",
+        ]
+    )
+    assert code == 0
+    table = pd.read_csv(out, dtype={"event_id": str})
+    assert table["event_id"].tolist() == pd.read_csv(events_csv, dtype=str)["id"].tolist()
+    assert "main__prior_year__prcp_total_z" in table.columns
+    sidecar = json.loads(out.with_name(out.name + ".provenance.json").read_text())
+    assert "main=demo@sha256:" in json.dumps(sidecar)
