@@ -357,3 +357,19 @@ def test_features_outside_one_product_follow_invalid_features(
     )
     with pytest.raises(RequestError, match="variant 'west'"):
         run(body.model_copy(update={"invalid_features": "fail"}), store, settings, stores=stores)
+
+
+def test_lag_values_of_seasons(store, settings, few) -> None:
+    body = _season_request(few, lags=[0, 1, 3], lag_values=True, years={"start": 1995, "end": 2005})
+    frame = run(body, store, settings).frame
+    columns = frame.columns.tolist()
+    assert columns.index("tmean_lag1") == columns.index("tmean_class_lag1") + 1
+    full = run(_season_request(few, years={"start": 1991, "end": 2005}), store, settings).frame
+    value = full.set_index(["feature_id", "year"])["tmean"]
+    for row in frame.itertuples():
+        assert row.tmean_lag1 == value[(row.feature_id, row.year - 1)]
+        assert row.tmean_lag3 == value[(row.feature_id, row.year - 3)]
+    long = run(body.model_copy(update={"layout": "long"}), store, settings).frame
+    assert "value_lag3" in long.columns
+    one = long[(long["indicator"] == "tmean") & (long["year"] == 2000)].iloc[0]
+    assert one["value_lag3"] == value[(one["feature_id"], 1997)]
