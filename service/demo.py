@@ -31,8 +31,9 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass
-from functools import cached_property
+from functools import cached_property, partial
 from pathlib import Path
 from typing import Any
 
@@ -47,6 +48,7 @@ from service.store import FILL_VALUE, SCALE_FACTOR, write_store
 
 DEMO_INPUTS = Path(__file__).resolve().parent / "demo_store"
 SIZES = ("tiny", "small", "large")
+DAILY = ("tmax", "tmin", "prcp")
 KM_PER_DEGREE = (
     111.32  # length of one degree of latitude (and of longitude at the equator), km; common practice
 )
@@ -337,6 +339,34 @@ def _encode(values: np.ndarray) -> np.ndarray:
     return scaled.astype(np.int16)
 
 
+def _asked(
+    days: slice,
+    *,
+    rainy: np.ndarray,
+    occurrence_year: float,
+    amount_year: float,
+    base_shift: float,
+    active: list[tuple[dict[str, Any], np.ndarray, np.ndarray]],
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Occurrence and amount factors and the temperature shift (degC) asked for on some days of a year, (d, 1, 1)
+    or, inside a planted episode, (d, ny, nx); ``active`` holds (episode, weight, (day, 1, 1) months on)."""
+    r = rainy[days]
+    occ_factor: np.ndarray = occurrence_year * r + (1 - r)
+    amt_factor: np.ndarray = amount_year * r + (1 - r)
+    shift: np.ndarray = np.full((r.shape[0], 1, 1), base_shift)
+    for episode, weight, months_on in active:
+        on = months_on[days]
+        occ_factor = occ_factor * np.where(on, 1 + (episode["occurrence_factor"] - 1) * weight, 1.0)
+        amt_factor = amt_factor * np.where(on, 1 + (episode["amount_factor"] - 1) * weight, 1.0)
+        shift = shift + np.where(on, episode["temperature_shift_degC"] * weight, 0.0)
+    return occ_factor, amt_factor, shift
+
+
+def _day_slices(days: int, step: int = 32) -> list[slice]:
+    """Slices of ``step`` days covering a year (the generator's element-wise steps run on these)."""
+    return [slice(start, min(days, start + step)) for start in range(0, days, step)]
+
+
 def _ar1(noise: np.ndarray, phi: float, sd: float, previous: np.ndarray) -> np.ndarray:
     """AR(1) anomalies a[t] = phi a[t-1] + sqrt(1 - phi^2) sd e[t] along axis 0, continuing from ``previous``."""
     from scipy.signal import lfilter
@@ -347,14 +377,43 @@ def _ar1(noise: np.ndarray, phi: float, sd: float, previous: np.ndarray) -> np.n
 
 
 def generate(world: dict[str, Any], grid: DemoGrid, progress: bool = False) -> dict[str, np.ndarray]:
-    """Run the weather generator: {"tmax", "tmin", "prcp": (ny, nx, time) int16 at 0.1 units, "time", layers}."""
+    """Run the weather generator: {"tmax", "tmin", "prcp": (ny, nx, time) int16 at 0.1 units, "time", layers}.
+
+    Holds the whole store in memory (6.7 GB for the large size): building a store streams the years instead
+    (:func:`stage_demo`); this is for tests and small sizes.
+    """
+    ny, nx = grid.shape
+    first, last = world["years"]
+    time = pd.date_range(f"{first}-01-01", f"{last}-12-31", freq="D")
+    out = {name: np.empty((ny, nx, time.size), dtype=np.int16) for name in DAILY}
+    start = 0
+    for year in generate_years(world, grid, progress=progress):
+        stop = start + year["tmax"].shape[0]
+        for name in DAILY:
+            out[name][:, :, start:stop] = year[name].transpose(1, 2, 0)
+        start = stop
+    u, v = grid.uv
+    return {
+        **out,
+        "time": time.values,
+        "elevation": np.round(elevation(world, u, v), 1),
+        "water": lake_mask(world, u, v),
+    }
+
+
+def generate_years(
+    world: dict[str, Any], grid: DemoGrid, progress: bool = False
+) -> Iterator[dict[str, np.ndarray]]:
+    """Run the weather generator a year at a time: {"tmax", "tmin", "prcp": (day, ny, nx) int16 at 0.1 units}.
+
+    The random stream and the carried state (yesterday's wet cells, the AR(1) anomalies) run on from year to
+    year, so the years together are exactly :func:`generate`'s values; only one year's arrays live at a time.
+    """
     ny, nx = grid.shape
     u, v = grid.uv
     elev = elevation(world, u, v)
     water = lake_mask(world, u, v)
     first, last = world["years"]
-    time = pd.date_range(f"{first}-01-01", f"{last}-12-31", freq="D")
-    out = {name: np.empty((ny, nx, time.size), dtype=np.int16) for name in ("tmax", "tmin", "prcp")}
 
     precip = world["precipitation"]
     temp = world["temperature"]
@@ -375,7 +434,6 @@ def generate(world: dict[str, Any], grid: DemoGrid, progress: bool = False) -> d
         from tqdm.auto import tqdm
 
         bar = tqdm(total=last - first + 1, desc="generating weather", unit="year")
-    start = 0
     for year in range(first, last + 1):
         days = pd.date_range(f"{year}-01-01", f"{year}-12-31", freq="D")
         nd = days.size
@@ -391,67 +449,75 @@ def generate(world: dict[str, Any], grid: DemoGrid, progress: bool = False) -> d
         mean_noise = fields.make(nd, temp["field_weights"])
         range_noise = fields.make(nd, temp["field_weights"])
 
-        # what is asked for on each day (and, inside a planted episode, each cell) of this year
+        # what is asked for on each day (and, inside a planted episode, each cell) of this year; evaluated a few
+        # days at a time (element-wise, so the values are those of the whole year at once) to bound memory
         rainy = rainy_weight(world, doy)[:, None, None]
         p01_day, p11_day = transition_probabilities(world, doy)
-        occ_factor: np.ndarray = occurrence_year * rainy + (1 - rainy)  # (nd, 1, 1) or (nd, ny, nx)
-        amt_factor: np.ndarray = amount_year * rainy + (1 - rainy)
-        shift: np.ndarray = np.full((nd, 1, 1), temperature_year + float(warming(world, year)))
-        for episode, weight in episodes:
-            if episode["years"][0] <= year <= episode["years"][1]:
-                on = np.isin(months, episode["months"])[:, None, None]
-                occ_factor = occ_factor * np.where(on, 1 + (episode["occurrence_factor"] - 1) * weight, 1.0)
-                amt_factor = amt_factor * np.where(on, 1 + (episode["amount_factor"] - 1) * weight, 1.0)
-                shift = shift + np.where(on, episode["temperature_shift_degC"] * weight, 0.0)
-        after_dry = np.broadcast_to(
-            special.ndtri(np.clip(p01_day[:, None, None] * occ_factor, 0, 0.97)), (nd, ny, nx)
-        )
-        after_wet = np.broadcast_to(
-            special.ndtri(np.clip(p11_day[:, None, None] * occ_factor, 0, 0.97)), (nd, ny, nx)
-        )
+        active = [(e, w, np.isin(months, e["months"])[:, None, None]) for e, w in episodes
+                  if e["years"][0] <= year <= e["years"][1]]  # fmt: skip
+        base_shift = temperature_year + float(warming(world, year))
+
+        factors = partial(_asked, rainy=rainy, occurrence_year=occurrence_year, amount_year=amount_year,
+                          base_shift=base_shift, active=active)  # fmt: skip
 
         # occurrence: the Markov chain, day by day (the copula's uniform variate is Phi(occurrence_z))
         wet_year = np.empty((nd, ny, nx), dtype=bool)
         for d in range(nd):
-            wet = occurrence_z[d] < np.where(wet, after_wet[d], after_dry[d])
+            occ_factor = factors(slice(d, d + 1))[0]
+            after_dry = special.ndtri(np.clip(p01_day[d : d + 1, None, None] * occ_factor, 0, 0.97))[0]
+            after_wet = special.ndtri(np.clip(p11_day[d : d + 1, None, None] * occ_factor, 0, 0.97))[0]
+            wet = occurrence_z[d] < np.where(wet, after_wet, after_dry)
             wet_year[d] = wet
+        del occurrence_z
 
-        scale = (
-            _seasonal(precip["mean_wet_amount_mm"], rainy) / precip["gamma_shape"] * amt_factor * gain[None]
-        )
-        prcp_year = quantiles(amount_z)
-        prcp_year *= scale
-        prcp_year += precip["minimum_wet_amount_mm"]
-        prcp_year[~wet_year] = 0.0
+        prcp = np.empty((nd, ny, nx), dtype=np.int16)
+        for days in _day_slices(nd):
+            amt_factor = factors(days)[1]
+            scale = (
+                _seasonal(precip["mean_wet_amount_mm"], rainy[days])
+                / precip["gamma_shape"]
+                * amt_factor
+                * gain[None]
+            )
+            prcp_days = quantiles(amount_z[days])
+            prcp_days *= scale
+            prcp_days += precip["minimum_wet_amount_mm"]
+            prcp_days[~wet_year[days]] = 0.0
+            prcp_days[:, water] = np.nan
+            prcp[days] = _encode(prcp_days)
+        del amount_z
 
         mean_anomalies = _ar1(mean_noise, mean_ar["ar1"], mean_ar["sd"], mean_anomaly)
+        del mean_noise
         range_anomalies = _ar1(range_noise, range_ar["ar1"], range_ar["sd"], range_anomaly)
+        del range_noise
         mean_anomaly, range_anomaly = mean_anomalies[-1].copy(), range_anomalies[-1].copy()
-        tmean_year = mean_anomalies
-        tmean_year += climatological_mean_temperature(world, doy, 0.0)[:, None, None] + shift
-        tmean_year -= lapse[None]
-        tmean_year += temp["wet_day_mean_shift_degC"] * wet_year
-        trange_year = range_anomalies
-        trange_year += _seasonal(temp["range_degC"], rainy)
-        trange_year += temp["wet_day_range_shift_degC"] * wet_year
-        np.maximum(trange_year, temp["minimum_range_degC"], out=trange_year)
-        trange_year *= 0.5
-        prcp_year[:, water] = np.nan
-        tmean_year[:, water] = np.nan
-        stop = start + nd
-        out["prcp"][:, :, start:stop] = _encode(prcp_year).transpose(1, 2, 0)
-        # tmax and tmin rounded from the same mean and range, so tmin < tmax holds after rounding
-        tmax = _encode(tmean_year + trange_year)
-        tmin = np.minimum(_encode(tmean_year - trange_year), tmax - 1)
+        climate = climatological_mean_temperature(world, doy, 0.0)[:, None, None]
+        range_asked = _seasonal(temp["range_degC"], rainy)
+        tmax = np.empty((nd, ny, nx), dtype=np.int16)
+        tmin = np.empty((nd, ny, nx), dtype=np.int16)
+        for days in _day_slices(nd):
+            tmean_days = mean_anomalies[days]  # a view: the anomalies become the temperatures in place
+            tmean_days += climate[days] + factors(days)[2]
+            tmean_days -= lapse[None]
+            tmean_days += temp["wet_day_mean_shift_degC"] * wet_year[days]
+            trange_days = range_anomalies[days]
+            trange_days += range_asked[days]
+            trange_days += temp["wet_day_range_shift_degC"] * wet_year[days]
+            np.maximum(trange_days, temp["minimum_range_degC"], out=trange_days)
+            trange_days *= 0.5
+            tmean_days[:, water] = np.nan
+            # tmax and tmin rounded from the same mean and range, so tmin < tmax holds after rounding
+            tmax[days] = _encode(tmean_days + trange_days)
+            tmin[days] = np.minimum(_encode(tmean_days - trange_days), tmax[days] - 1)
+        del mean_anomalies, range_anomalies, wet_year
         tmin[tmax == FILL_VALUE] = FILL_VALUE
-        out["tmax"][:, :, start:stop] = tmax.transpose(1, 2, 0)
-        out["tmin"][:, :, start:stop] = tmin.transpose(1, 2, 0)
-        start = stop
         if bar is not None:
             bar.update(1)
+        yield {"tmax": tmax, "tmin": tmin, "prcp": prcp}
+        del tmax, tmin, prcp
     if bar is not None:
         bar.close()
-    return {**out, "time": time.values, "elevation": np.round(elev, 1), "water": water}
 
 
 # --- communities --------------------------------------------------------------------------------------------
@@ -534,20 +600,58 @@ def population_density(world: dict[str, Any], grid: DemoGrid, layout: list[dict[
 
 
 def demo_dataset(size: str = "small", progress: bool = False, inputs: Path = DEMO_INPUTS) -> xr.Dataset:
-    """The demo world as a Dataset ready for write_store (float32 values decoded lazily from the generated int16)."""
+    """The demo world as a Dataset ready for write_store (float32 values decoded lazily from the generated int16).
+
+    The whole store is generated in memory first (about 7 GB for the large size); :func:`build_demo` streams.
+    """
     import dask.array as da
 
-    world, layout = load_world(inputs), load_layout(inputs)
+    world = load_world(inputs)
     grid = demo_grid(world, size)
     generated = generate(world, grid, progress=progress)
-    data_vars: dict[str, Any] = {}
-    for name in ("tmax", "tmin", "prcp"):
-        raw = da.from_array(generated[name], chunks=(32, 32, -1))
-        values = raw.map_blocks(_decode_block, dtype=np.float32)
-        data_vars[name] = (("y", "x", "time"), values, {"grid_mapping": "crs"})
+    daily = {name: da.from_array(generated[name], chunks=(32, 32, -1)).map_blocks(_decode_block, dtype=np.float32)
+             for name in DAILY}  # fmt: skip
+    return _dataset(world, load_layout(inputs), grid, size, daily, generated["time"])
+
+
+def stage_demo(size: str, directory: Path, progress: bool = False, inputs: Path = DEMO_INPUTS) -> xr.Dataset:
+    """The demo world as :func:`demo_dataset` gives it, generated a year at a time and staged in ``directory``
+    (int16 tiles, about a third of the store's raw size on disk), so that memory holds one year, not the store.
+
+    The values are exactly :func:`demo_dataset`'s: the same generator, the same int16, the same float32 decoding.
+    The caller removes ``directory`` once the store is written.
+    """
+    from service.ingest.blocks import StagedGrid
+
+    world = load_world(inputs)
+    grid = demo_grid(world, size)
+    first, last = world["years"]
+    time = pd.date_range(f"{first}-01-01", f"{last}-12-31", freq="D")
+    stage = StagedGrid(directory, grid.shape)
+    for year in generate_years(world, grid, progress=progress):
+        for name in DAILY:
+            stage.add(name, year[name])
+        del year
+    daily = {name: stage.array(name, np.float32) for name in DAILY}
+    return _dataset(world, load_layout(inputs), grid, size, daily, time.values)
+
+
+def _dataset(
+    world: dict[str, Any],
+    layout: list[dict[str, Any]],
+    grid: DemoGrid,
+    size: str,
+    daily: dict[str, Any],
+    time: np.ndarray,
+) -> xr.Dataset:
+    """The demo's Dataset for write_store from its lazy (y, x, time) float32 daily values: layers, CRS, attrs."""
+    u, v = grid.uv
+    data_vars: dict[str, Any] = {
+        name: (("y", "x", "time"), values, {"grid_mapping": "crs"}) for name, values in daily.items()
+    }
     data_vars["elevation"] = (
         ("y", "x"),
-        generated["elevation"],
+        np.round(elevation(world, u, v), 1),
         {"units": "m", "long_name": "surface elevation"},
     )
     data_vars["population"] = (
@@ -556,7 +660,7 @@ def demo_dataset(size: str = "small", progress: bool = False, inputs: Path = DEM
         {"units": "km-2", "long_name": "population density (persons per km2, invented)"},
     )
     data_vars["crs"] = ((), np.int32(0), {"crs_wkt": pyproj.CRS.from_epsg(4326).to_wkt()})
-    ds = xr.Dataset(data_vars, coords={"time": generated["time"], "y": grid.lat, "x": grid.lon})
+    ds = xr.Dataset(data_vars, coords={"time": time, "y": grid.lat, "x": grid.lon})
     ds.attrs.update(
         {
             "title": f"{world['region']['name']}: invented demo weather ({size})",
@@ -574,12 +678,23 @@ def _decode_block(block: np.ndarray) -> np.ndarray:
     return values
 
 
-def build_demo(path: Path, size: str = "small", progress: bool = True) -> Path:
-    """Build the demo store at ``path`` and ``communities.geojson`` beside it; returns ``path``."""
+def build_demo(path: Path, size: str = "small", progress: bool = True, *, stream: bool = True) -> Path:
+    """Build the demo store at ``path`` and ``communities.geojson`` beside it; returns ``path``.
+
+    With ``stream`` (the default) the years are generated one at a time and staged on disk beside ``path``
+    (removed afterwards), so memory stays bounded (well under 2 GB for the large size, bench/RESULTS.md);
+    without it the whole store is generated in memory first. Both give the same store (same fingerprint).
+    """
+    import tempfile
+
     path = Path(path)
     world, layout = load_world(), load_layout()
-    ds = demo_dataset(size, progress=progress)
-    write_store(ds, path, progress=progress)
+    if stream:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with tempfile.TemporaryDirectory(prefix=f".{path.name}.staging-", dir=path.parent) as staging:
+            write_store(stage_demo(size, Path(staging), progress=progress), path, progress=progress)
+    else:
+        write_store(demo_dataset(size, progress=progress), path, progress=progress)
     features = community_features(world, layout)
     target = path.parent / "communities.geojson"
     partial = target.with_name(f".{target.name}.writing")

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import dask
 import dask.array as da
 import numpy as np
 import xarray as xr
@@ -25,8 +26,13 @@ from service.ingest.timeaxis import DAY, Cadence, Placement, Stamps
 from service.ingest.units import Conversion, precipitation_conversion, temperature_conversion
 from service.ingest.variables import VARIABLES, Choice, Found, identify
 
-# Sub-daily values are reduced to days in blocks of this many days (times the steps of a day) along time.
+# Sub-daily values are reduced to days in blocks of this many days (times the steps of a day) along time, fewer
+# where a block of a large grid would pass BLOCK_BYTES as float64 (whole days always: a day is never split).
 DAYS_PER_BLOCK = 32
+BLOCK_BYTES = 64 << 20
+# Input files are opened in dask chunks of at most this size (dask's "auto" chunking, in the file's dtype), so that
+# ingest of input larger than memory reads each chunk once into a time block (service/ingest/blocks.py).
+INPUT_CHUNK = "32MiB"
 
 
 @dataclass(frozen=True)
@@ -83,7 +89,8 @@ def open_sources(files: Sequence[Path], choices: list[Choice], progress: bool = 
     sources: list[Source] = []
     for path in iterator:
         path = Path(path)
-        ds = open_netcdf(path, chunks="auto")  # type: ignore[arg-type]
+        with dask.config.set({"array.chunk-size": INPUT_CHUNK}):
+            ds = open_netcdf(path, chunks="auto")  # type: ignore[arg-type]
         grid = file_grid(path, ds)
         found = identify(path, ds, choices)
         if not found:
@@ -346,10 +353,12 @@ def _from_sub_daily(
     if raw is None:
         raw = shared[key] = _joined(items)
     spd = plan.steps_per_day
+    cells = int(np.prod(raw.shape[1:]))
+    days_per_block = max(1, min(DAYS_PER_BLOCK, BLOCK_BYTES // max(1, spd * cells * 8)))
     block = raw.data[plan.start : plan.start + plan.n_days * spd]
     if not isinstance(block, da.Array):
-        block = da.from_array(np.asarray(block), chunks=(spd * DAYS_PER_BLOCK, -1, -1))
-    block = block.rechunk({0: spd * DAYS_PER_BLOCK})
+        block = da.from_array(np.asarray(block), chunks=(spd * days_per_block, -1, -1))
+    block = block.rechunk({0: spd * days_per_block})
     if variable == "tmax":
         reducer, words = np.max, "maximum"
     elif variable == "tmin":

@@ -9,7 +9,9 @@ when theirs is the same, else on a new grid.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import tempfile
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -19,6 +21,7 @@ import xarray as xr
 
 from service.errors import IngestError, StoreError
 from service.ingest import timeaxis
+from service.ingest.blocks import stage_dataset
 from service.ingest.daily import DailyVariable, DayOptions, daily_variables, open_sources
 from service.ingest.readers import FileGrid
 from service.ingest.variables import VARIABLES, Choice, choices_from
@@ -35,9 +38,12 @@ from service.store import (
     update_store,
     write_store,
 )
+from service.store.location import _is_url
 
 # Root attribute: the product's time convention (timeaxis.LEAP_DROPS_DEC31), listed by describe among the notes
 TIME_CONVENTION_ATTR = "wxshock_note_time_convention"
+# Daily values (as float64) above which ingest streams by time blocks unless told (ingest_files' ``stream``)
+STREAM_BYTES = 1 << 30
 RECORD_ATTR = "wxshock_ingest"  # on each daily variable: what ingest did, in words
 ORIGIN_ATTR = "wxshock_origin"  # on each daily variable: "daily" or "sub-daily"
 
@@ -62,6 +68,7 @@ def ingest_files(
     storage_options: dict | None = None,
     progress: bool = True,
     notes: list[str] | None = None,
+    stream: bool | None = None,
 ) -> str:
     """Ingest CF NetCDF files into the store at ``out`` (created, or added to); returns its new fingerprint.
 
@@ -72,6 +79,10 @@ def ingest_files(
     when None); ``period_stamp`` says where the stamp of a sub-daily sum, mean or extreme without time bounds sits
     in its time step ("end", as hourly reanalysis accumulations are stamped, "start" or "middle"). ``notes``
     collects what the user should be told (days left out, conventions found).
+
+    ``stream`` reads the input by time blocks of whole days and stages them on disk before the store is written
+    (service/ingest/blocks.py), so that input larger than memory ingests in bounded memory; None (the default)
+    streams when the daily values would pass STREAM_BYTES as float64. Both give the same store.
     """
     if not files:
         raise IngestError("no input files given; name one or more CF NetCDF files", field="files")
@@ -101,14 +112,46 @@ def ingest_files(
                 if group.variables}  # fmt: skip
     if not datasets:
         raise IngestError(f"store {str(out)!r} already holds every day of these files; nothing to add")
+    if stream is None:
+        stream = _daily_bytes(datasets) > STREAM_BYTES
     try:
-        if existing is None:
-            return write_store(datasets, target, storage_options=storage_options, progress=progress)
-        return update_store(datasets, target, storage_options=storage_options, progress=progress)
+        with _staging(target, stream) as staging:
+            if staging is not None:
+                datasets = {name: stage_dataset(ds, staging / str(name), _daily_names(ds), progress=progress)
+                            for name, ds in datasets.items()}  # fmt: skip
+            if existing is None:
+                return write_store(datasets, target, storage_options=storage_options, progress=progress)
+            return update_store(datasets, target, storage_options=storage_options, progress=progress)
     except StoreError as exc:
         raise IngestError(
             f"ingest into {str(out)!r} failed, the previous store is unchanged: {exc.detail}"
         ) from exc
+
+
+def _daily_names(ds: xr.Dataset) -> list[str]:
+    """The daily variables of a Dataset for the store, in its order."""
+    return [v for v in VARIABLES if v in ds.data_vars]
+
+
+def _daily_bytes(datasets: dict[Any, xr.Dataset]) -> int:
+    """Bytes of the daily values of the Datasets as float64 (what reading them at once would take)."""
+    return sum(8 * ds[v].size for ds in datasets.values() for v in _daily_names(ds))
+
+
+@contextmanager
+def _staging(target: str, stream: bool) -> Iterator[Path | None]:
+    """A staging directory for streamed ingest (beside a local store, on the same disk; else the system's
+    temporary directory), removed afterwards; None when not streaming."""
+    if not stream:
+        yield None
+        return
+    local = not _is_url(target)
+    parent = Path(target).parent if local else None
+    if parent is not None:
+        parent.mkdir(parents=True, exist_ok=True)
+    prefix = f".{Path(target).name}.staging-" if local else "wxshock-staging-"
+    with tempfile.TemporaryDirectory(prefix=prefix, dir=parent) as directory:
+        yield Path(directory)
 
 
 def store_grid(grid: FileGrid) -> Grid:
