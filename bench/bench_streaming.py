@@ -34,9 +34,9 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from _results import write_section  # noqa: E402
 from tests._support_memory import MemoryCap  # noqa: E402
 
-RESULTS = ROOT / "bench" / "RESULTS.md"
 START = "<!-- bench_streaming: start -->"
 END = "<!-- bench_streaming: end -->"
 CELLS = 256
@@ -219,18 +219,6 @@ def section(results: dict, facts: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-def write_section(text: str) -> None:
-    """Replace this benchmark's section of bench/RESULTS.md (or append it)."""
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.is_file() else "# Benchmark results\n\n"
-    if START in old and END in old:
-        head, rest = old.split(START, 1)
-        _, tail = rest.split(END, 1)
-        new = head + text.rstrip("\n") + tail
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new, encoding="utf-8")
-
-
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--workdir", default=str(ROOT / "bench" / "out" / "streaming"))
@@ -311,7 +299,7 @@ def main() -> int:
     text = section(results, facts)
     print(text)
     if not args.no_write:
-        write_section(text)
+        write_section(START, END, text)
     return 0
 
 
