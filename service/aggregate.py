@@ -229,33 +229,53 @@ def aggregate(
     *,
     variables: Sequence[str] = ("tmax", "tmin", "prcp"),
     time: slice = slice(None),
+    grid: str | None = None,
 ) -> xr.Dataset:
     """Lazy daily weighted means per feature: Dataset (feature, time) of float64, dask-backed.
 
     One variable per requested name (tmax, tmin in degC, prcp in mm/day; tmean = (tmax + tmin) / 2 is
-    added when both temperatures are there). A cell missing on a day drops out of that day's mean and
-    the remaining weights renormalise; a day with no cell left is NaN. ``time`` selects store days by
-    index. Per-feature coverage, n_cells, area_km2, latitude and longitude ride along as coordinates.
+    added when both temperatures are there). Every variable must lie on one grid of the store, ``grid``
+    (default: the grid of the variables), and ``weights`` are on that grid: a store with several grids is
+    aggregated once per grid, each with its own weights. A cell missing on a day drops out of that day's
+    mean and the remaining weights renormalise; a day with no cell left is NaN (so is a day outside the
+    days a variable was given). ``time`` selects store days by index. Per-feature coverage, n_cells,
+    area_km2, latitude and longitude ride along as coordinates.
     """
     n_features = len(weights.feature_ids)
-    ny, nx = store.grid.shape
-    if weights.matrix.shape != (n_features, ny * nx):
-        raise ValueError(
-            f"weights of shape {weights.matrix.shape} do not fit store {store.name!r} with {ny} x {nx} cells"
-        )
     unknown = [v for v in variables if v not in store.variables]
     if unknown:
         raise RequestError(
             f"dataset {store.name!r} has no variable {unknown[0]!r}; it has {list(store.variables)!r}",
             field="variables",
         )
+    on = {v: store.grid_of(v) for v in variables}
+    if grid is None:
+        names = list(dict.fromkeys(on.values()))
+        if len(names) > 1:
+            raise ValueError(
+                f"variables {list(variables)!r} lie on grids {names!r} of dataset {store.name!r}; aggregate "
+                "each grid with its own weights (one call per grid)"
+            )
+        grid = names[0] if names else store.main_grid
+    elsewhere = [v for v, g in on.items() if g != grid]
+    if elsewhere:
+        raise ValueError(f"variables {elsewhere!r} of dataset {store.name!r} do not lie on grid {grid!r}")
+    ny, nx = store.grids[grid].shape
+    if weights.matrix.shape != (n_features, ny * nx):
+        raise ValueError(
+            f"weights of shape {weights.matrix.shape} do not fit grid {grid!r} of store {store.name!r} with "
+            f"{ny} x {nx} cells"
+        )
     start, stop = _time_range(time, store.n_times)
-    cy, cx, ct = store.chunk_shape
-    plan = chunk_weights(weights, (ny, nx), (cy, cx))
-    blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
-    token = dask.base.tokenize(weights.key, store.location, store.fingerprint, start, stop)
+    token = dask.base.tokenize(weights.key, store.location, store.fingerprint, grid, start, stop)
+    plans: dict[tuple[int, int], list[ChunkWeights]] = {}
     arrays: dict[str, da.Array] = {}
     for var in variables:
+        cy, cx, ct = store.chunk_shape_of(var)
+        plan = plans.get((cy, cx))
+        if plan is None:
+            plan = plans[(cy, cx)] = chunk_weights(weights, (ny, nx), (cy, cx))
+        blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
         enc = store.encoding(var)
         name = f"wxshock-{var}-{token}"
         # A hand-built graph: dask.delayed would walk every argument (the weights) for each of the tasks.
@@ -297,6 +317,7 @@ def aggregate(
     ds.attrs.update(
         {
             "dataset": store.name,
+            "grid": grid,
             "fingerprint": store.fingerprint,
             "weights_key": weights.key,
             "weighting": weights.weighting,
