@@ -11,7 +11,7 @@ Three synthetic stores over one invented region (0 to 9.6 E, 0 to 9.6 S: open se
 For N invented polygons (seeded random convex quadrilaterals of 8 to 30 km across) each phase runs in its own
 process, three times (best and median reported), and times the aggregation as the pipeline does it: exact weights
 on each grid the request reads (parse once), then the weighted daily means of every feature over all days,
-computed on dask threads (service.pipeline.aggregate_grids):
+computed on dask threads in one computation (pipeline.features_and_weights, aggregate.aggregate, cluster.compute):
   fine     on the fine store: prcp (one grid)
   coarse   on the coarse store: tmax, tmin (one grid)
   both     on the two-grid store: prcp on the fine grid and tmax, tmin on the coarse grid, one computation
@@ -113,14 +113,19 @@ def polygons(n: int, seed: int = 11) -> dict[str, Any]:
         ring = [[float(cx + r * np.cos(a)), float(cy + r * np.sin(a))] for a in angles]
         ring.append(ring[0])
         features.append(
-            {"type": "Feature", "properties": {"id": f"p{i:05d}"}, "geometry": {"type": "Polygon", "coordinates": [ring]}}
+            {
+                "type": "Feature",
+                "properties": {"id": f"p{i:05d}"},
+                "geometry": {"type": "Polygon", "coordinates": [ring]},
+            }
         )
     return {"type": "FeatureCollection", "features": features}
 
 
 def phase(which: str, n: int, quick: bool) -> dict[str, Any]:
     """One timed aggregation in this process (see the module docstring)."""
-    from service import pipeline
+    from service import cluster, pipeline
+    from service.aggregate import GridWeights, aggregate
     from service.schemas import SeriesRequest
     from service.settings import Settings
     from service.store import open_store
@@ -134,12 +139,13 @@ def phase(which: str, n: int, quick: bool) -> dict[str, Any]:
     settings = Settings(stores=[], threads=None, weights_cache_size=0, max_cells_per_feature=10_000_000)
     span = slice(0, store.n_times)
     wall, cpu = time.perf_counter(), time.process_time()
-    grids = pipeline.grids_for(store, variables)
-    _, by_grid = pipeline.features_and_grid_weights(request, store, settings, grids)
+    _, weights = pipeline.features_and_weights(request, store, settings)
     weights_wall, weights_cpu = time.perf_counter() - wall, time.process_time() - cpu
-    values = pipeline.aggregate_grids(store, by_grid, variables, span, settings)
+    lazy = aggregate(store, weights, variables=variables, time=span).drop_vars("tmean", errors="ignore")
+    (values,) = cluster.compute(lazy, settings=settings)
     wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
-    check = {v: float(np.nansum(values[v])) for v in variables}
+    check = {v: float(np.nansum(values[v].values)) for v in variables}
+    by_grid = weights.by_grid if isinstance(weights, GridWeights) else {store.main_grid: weights}
     return {
         "which": which,
         "wall": wall,
@@ -166,7 +172,9 @@ def load_average() -> float:
 
 
 def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--features", type=int, default=None)
     parser.add_argument("--repeat", type=int, default=3)
@@ -183,7 +191,11 @@ def main() -> int:
         for which in ("fine", "coarse", "both"):  # interleaved, so that a load spike hits every phase alike
             loads.append(load_average())
             runs[which].append(run_phase(which, n, args.quick))
-            print(which, {k: round(v, 2) for k, v in runs[which][-1].items() if k in ("wall", "cpu")}, file=sys.stderr)
+            print(
+                which,
+                {k: round(v, 2) for k, v in runs[which][-1].items() if k in ("wall", "cpu")},
+                file=sys.stderr,
+            )
     both_check = runs["both"][0]["check"]
     for which, variables in (("fine", ("prcp",)), ("coarse", ("tmax", "tmin"))):
         for v in variables:  # the two-grid dataset gives the single-grid series exactly

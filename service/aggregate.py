@@ -67,6 +67,57 @@ class Partial:
     correction: np.ndarray | None
 
 
+@dataclass(frozen=True)
+class GridWeights:
+    """The weights of the same features on several grids of one dataset: grid name -> Weights, the first grid
+    (where features are batched by their cells) first.
+
+    It reads as the first grid's Weights for what is per feature (feature_ids, area_km2, latitude, matrix, ...),
+    so code written for one grid runs unchanged; :func:`aggregate` takes each variable's grid's weights, and
+    ``per_grid_columns`` (the dataset has several grids) names coverage and cells per grid in the results.
+    """
+
+    by_grid: dict[str, Weights]
+    per_grid_columns: bool = True
+
+    def __getattr__(self, name: str) -> Any:
+        if name.startswith("__") or name in ("by_grid", "per_grid_columns"):
+            raise AttributeError(name)
+        return getattr(next(iter(self.by_grid.values())), name)
+
+    @property
+    def first(self) -> Weights:
+        """The weights on the first grid."""
+        return next(iter(self.by_grid.values()))
+
+    @property
+    def key(self) -> str:
+        """A key of every grid's weights (their cache keys, by grid)."""
+        return "|".join(f"{grid}={w.key}" for grid, w in self.by_grid.items())
+
+    @property
+    def skipped(self) -> list[Any]:
+        """The features service.geometry skipped on any grid (each once, in the order reported)."""
+        seen: dict[Any, Any] = {}
+        for w in self.by_grid.values():
+            for entry in getattr(w, "skipped", None) or ():
+                index = entry[0] if isinstance(entry, tuple | list) else getattr(entry, "index", id(entry))
+                seen.setdefault(index, entry)
+        return list(seen.values())
+
+
+def weights_on(weights: Weights | GridWeights, grid: str) -> Weights:
+    """The weights on ``grid`` (plain Weights are taken to be on it)."""
+    if isinstance(weights, GridWeights):
+        try:
+            return weights.by_grid[grid]
+        except KeyError:
+            raise ValueError(
+                f"no weights on grid {grid!r}; weights were computed on {list(weights.by_grid)!r}"
+            ) from None
+    return weights
+
+
 def chunk_weights(weights: Weights, shape: tuple[int, int], chunk: tuple[int, int]) -> list[ChunkWeights]:
     """The weight matrix split by the store's spatial chunks, only chunks with some weight, in grid order."""
     ny, nx = shape
@@ -225,56 +276,54 @@ def _time_range(time: slice, n_times: int) -> tuple[int, int]:
 
 def aggregate(
     store: Store,
-    weights: Weights,
+    weights: Weights | GridWeights,
     *,
     variables: Sequence[str] = ("tmax", "tmin", "prcp"),
     time: slice = slice(None),
-    grid: str | None = None,
 ) -> xr.Dataset:
     """Lazy daily weighted means per feature: Dataset (feature, time) of float64, dask-backed.
 
     One variable per requested name (tmax, tmin in degC, prcp in mm/day; tmean = (tmax + tmin) / 2 is
-    added when both temperatures are there). Every variable must lie on one grid of the store, ``grid``
-    (default: the grid of the variables), and ``weights`` are on that grid: a store with several grids is
-    aggregated once per grid, each with its own weights. A cell missing on a day drops out of that day's
-    mean and the remaining weights renormalise; a day with no cell left is NaN (so is a day outside the
-    days a variable was given). ``time`` selects store days by index. Per-feature coverage, n_cells,
-    area_km2, latitude and longitude ride along as coordinates.
+    added when both temperatures are there). Each variable is aggregated on its own grid with that grid's
+    weights: ``weights`` is a GridWeights of every grid read, or, for a variable set on one grid, plain
+    Weights on that grid. A cell missing on a day drops out of that day's mean and the remaining weights
+    renormalise; a day with no cell left is NaN (so is a day outside the days a variable was given).
+    ``time`` selects store days by index. Per-feature coverage, n_cells, area_km2, latitude and longitude
+    (of the first grid's weights) ride along as coordinates.
     """
-    n_features = len(weights.feature_ids)
+    first = weights.first if isinstance(weights, GridWeights) else weights
+    weights_key = weights.key
+    n_features = len(first.feature_ids)
     unknown = [v for v in variables if v not in store.variables]
     if unknown:
         raise RequestError(
             f"dataset {store.name!r} has no variable {unknown[0]!r}; it has {list(store.variables)!r}",
             field="variables",
         )
-    on = {v: store.grid_of(v) for v in variables}
-    if grid is None:
-        names = list(dict.fromkeys(on.values()))
+    if not isinstance(weights, GridWeights):
+        names = list(dict.fromkeys(store.grid_of(v) for v in variables))
         if len(names) > 1:
             raise ValueError(
-                f"variables {list(variables)!r} lie on grids {names!r} of dataset {store.name!r}; aggregate "
-                "each grid with its own weights (one call per grid)"
+                f"variables {list(variables)!r} lie on grids {names!r} of dataset {store.name!r}; give "
+                "GridWeights with the weights of each grid"
             )
-        grid = names[0] if names else store.main_grid
-    elsewhere = [v for v, g in on.items() if g != grid]
-    if elsewhere:
-        raise ValueError(f"variables {elsewhere!r} of dataset {store.name!r} do not lie on grid {grid!r}")
-    ny, nx = store.grids[grid].shape
-    if weights.matrix.shape != (n_features, ny * nx):
-        raise ValueError(
-            f"weights of shape {weights.matrix.shape} do not fit grid {grid!r} of store {store.name!r} with "
-            f"{ny} x {nx} cells"
-        )
     start, stop = _time_range(time, store.n_times)
-    token = dask.base.tokenize(weights.key, store.location, store.fingerprint, grid, start, stop)
-    plans: dict[tuple[int, int], list[ChunkWeights]] = {}
+    token = dask.base.tokenize(weights_key, store.location, store.fingerprint, start, stop)
+    plans: dict[tuple[str, int, int], list[ChunkWeights]] = {}
     arrays: dict[str, da.Array] = {}
     for var in variables:
+        grid = store.grid_of(var)
+        on_grid = weights_on(weights, grid)
+        ny, nx = store.grids[grid].shape
+        if on_grid.matrix.shape != (n_features, ny * nx):
+            raise ValueError(
+                f"weights of shape {on_grid.matrix.shape} do not fit store {store.name!r}: its grid {grid!r} has "
+                f"{ny} x {nx} cells"
+            )
         cy, cx, ct = store.chunk_shape_of(var)
-        plan = plans.get((cy, cx))
+        plan = plans.get((grid, cy, cx))
         if plan is None:
-            plan = plans[(cy, cx)] = chunk_weights(weights, (ny, nx), (cy, cx))
+            plan = plans[(grid, cy, cx)] = chunk_weights(on_grid, (ny, nx), (cy, cx))
         blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
         enc = store.encoding(var)
         name = f"wxshock-{var}-{token}"
@@ -296,6 +345,7 @@ def aggregate(
             arrays[var] = da.zeros((n_features, 0), dtype=np.float64)
     if "tmax" in arrays and "tmin" in arrays:
         arrays["tmean"] = (arrays["tmax"] + arrays["tmin"]) / 2.0
+    weights = first
     coords = {
         "feature": np.asarray(weights.feature_ids, dtype=object),
         "time": store.times[start:stop],
@@ -317,9 +367,8 @@ def aggregate(
     ds.attrs.update(
         {
             "dataset": store.name,
-            "grid": grid,
             "fingerprint": store.fingerprint,
-            "weights_key": weights.key,
+            "weights_key": weights_key,
             "weighting": weights.weighting,
         }
     )

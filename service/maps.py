@@ -125,6 +125,26 @@ def mappable(indicator: str) -> tuple[tuple[str, ...], str, str, str]:
     return MAP_INDICATORS[indicator]
 
 
+def map_grid(store: Any, indicator: str) -> Any:
+    """The grid the map of ``indicator`` is drawn on: that of its variables (a dataset may have several)."""
+    variables = mappable(indicator)[0]
+    lacking = [v for v in variables if v not in store.variables]
+    if lacking:
+        raise RequestError(
+            f"indicator {indicator!r} needs variable {lacking[0]!r}, which dataset {store.name!r} does not hold "
+            f"(it has {list(store.variables)!r}); map an indicator of its variables",
+            field="indicator",
+        )
+    grids = list(dict.fromkeys(store.grid_of(v) for v in variables))
+    if len(grids) > 1:
+        raise RequestError(
+            f"indicator {indicator!r} reads variables on grids {grids!r} of dataset {store.name!r}; a map is "
+            "drawn on one grid",
+            field="indicator",
+        )
+    return store.grids[grids[0]]
+
+
 def anomaly_field(
     store: Any,
     indicator: str,
@@ -143,7 +163,7 @@ def anomaly_field(
     the last season-year with data.
     """
     variables, reducer, unit, family = mappable(indicator)
-    ny, nx = store.grid.shape
+    ny, nx = map_grid(store, indicator).shape
     if ny * nx > max_cells:
         raise RequestError(
             f"the grid has {ny * nx} cells; the map draws at most {max_cells}", field="indicator"

@@ -9,7 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 import uuid
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
@@ -18,15 +18,17 @@ import dask
 import numpy as np
 import pandas as pd
 import pyproj
+from scipy import sparse
 
 from service import __version__, cluster, request_text
-from service.aggregate import aggregate
+from service.aggregate import GridWeights, aggregate
 from service.encode import RunResult
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import (
     FeatureError,
     LimitExceededError,
     OutOfRangeError,
+    RequestError,
     RunCancelledError,
     UnknownDatasetError,
 )
@@ -175,31 +177,89 @@ def weights_for(
     settings: Settings,
     *,
     invalid: str = "fail",
-) -> Weights:
-    """The weights of parsed features on the store's grid under the request's weighting."""
-    skip_option = _skip_option(invalid)
+) -> Weights | GridWeights:
+    """The weights of parsed features under the request's weighting: on the store's grid, or, in a dataset
+    with several grids, a GridWeights with exact weights on each grid the request reads (each with that grid's
+    data mask and copy of the weight layer). A feature skipped on one grid has empty rows on every grid."""
+    grids = grids_for(store, request_variables(request, store))
     weighting = request.weighting
-    layer = None
+    layer_name = None
     if not isinstance(weighting, str):
-        if weighting.layer not in store.layers:
+        layer_name = weighting.layer
+        lacking = [g for g in grids if layer_name not in store.layers_on(g)]
+        if lacking:
+            where = (
+                f"dataset {store.name!r}"
+                if len(store.grids) == 1
+                else f"grid {lacking[0]!r} of dataset {store.name!r}"
+            )
             raise UnknownDatasetError(
-                f"dataset {store.name!r} has no weight layer {weighting.layer!r}; its layers: "
-                f"{', '.join(store.layers) or 'none'}",
+                f"{where} has no weight layer {layer_name!r}; its layers: "
+                f"{', '.join(store.layers_on(lacking[0])) or 'none'}",
                 field="weighting.layer",
                 pointer="/weighting/layer",
             )
-        layer = store.read_layer(weighting.layer)
         weighting = "area"
-    return compute_weights(
-        parsed,
-        store.grid,
-        weighting=weighting,
-        layer=layer,
-        data_mask=store.data_mask(),
-        max_cells=settings.max_cells_per_feature,
-        cache_size=settings.weights_cache_size,
-        **skip_option,
-    )
+    by_grid = {
+        grid: compute_weights(
+            parsed,
+            store.grids[grid],
+            weighting=weighting,
+            layer=store.read_layer(layer_name, grid) if layer_name is not None else None,
+            data_mask=store.data_mask(grid),
+            max_cells=settings.max_cells_per_feature,
+            cache_size=settings.weights_cache_size,
+            **_skip_option(invalid),
+        )
+        for grid in grids
+    }
+    if len(store.grids) == 1:
+        return by_grid[grids[0]]
+    weights = GridWeights(by_grid)
+    skipped = {e["feature_id"] for e in skipped_of(weights)}
+    if skipped and len(by_grid) > 1:
+        weights = GridWeights({g: _without_rows(w, skipped) for g, w in by_grid.items()})
+    return weights
+
+
+def grids_for(store: Store, variables: Sequence[str]) -> list[str]:
+    """The grids that hold ``variables``, in the store's order (the main grid when none does)."""
+    wanted = {store.grid_of(v) for v in variables if v in store.variables}
+    return [g for g in store.grids if g in wanted] or [store.main_grid]
+
+
+def request_variables(request: IndicatorRequest | SeriesRequest, store: Store) -> tuple[str, ...]:
+    """The stored daily variables a request reads: a series request's (tmean from tmax and tmin), a resolved
+    indicator request's indicators'; every variable of the store when its indicators are not resolved yet."""
+    if isinstance(request, SeriesRequest):
+        return series_variables(request)
+    if not request.indicators:
+        return tuple(store.variables)
+    return needed_variables(request)
+
+
+def series_variables(request: SeriesRequest) -> tuple[str, ...]:
+    """The stored daily variables a series request reads (tmean from tmax and tmin), in the order of VARIABLES."""
+    asked = set(request.variables)
+    if "tmean" in asked:
+        asked |= {"tmax", "tmin"}
+    return tuple(v for v in VARIABLES if v in asked)
+
+
+def _without_rows(weights: Weights, feature_ids: set[str]) -> Weights:
+    """The weights with the rows of ``feature_ids`` emptied (no cell, no coverage)."""
+    rows = [i for i, fid in enumerate(weights.feature_ids) if fid in feature_ids]
+    if not rows:
+        return weights
+    keep = np.ones(weights.matrix.shape[0])
+    keep[rows] = 0.0
+    matrix = (sparse.diags(keep) @ weights.matrix).tocsr()
+    matrix.eliminate_zeros()
+    n_cells = np.asarray(weights.n_cells).copy()
+    coverage = np.asarray(weights.coverage, dtype=np.float64).copy()
+    n_cells[rows] = 0
+    coverage[rows] = 0.0
+    return replace(weights, matrix=matrix, n_cells=n_cells, coverage=coverage)
 
 
 def _skip_option(invalid: str) -> dict[str, str]:
@@ -211,8 +271,12 @@ def _skip_option(invalid: str) -> dict[str, str]:
     return {"invalid": invalid}
 
 
-def take_weights(weights: Weights, rows: np.ndarray) -> Weights:
-    """The weights of a subset of features (rows in the given order)."""
+def take_weights(weights: Weights | GridWeights, rows: np.ndarray) -> Weights | GridWeights:
+    """The weights of a subset of features (rows in the given order), on every grid of a GridWeights."""
+    if isinstance(weights, GridWeights):
+        return GridWeights(
+            {g: take_weights(w, rows) for g, w in weights.by_grid.items()}, weights.per_grid_columns
+        )
     n = weights.matrix.shape[0]
     changes: dict[str, Any] = {}
     for f in fields(weights):
@@ -267,6 +331,24 @@ def daily_values(ds: Any, store: Store, var: str) -> np.ndarray | None:
     return snap_daily(values, snap_decimals(enc.scale_factor, enc.add_offset))
 
 
+def check_cells_grids(request: IndicatorRequest, store: Store) -> None:
+    """Under aggregation 'cells' an indicator is computed on the cells of one grid: refuse (422) one whose
+    variables lie on different grids of the dataset, naming it and the grids."""
+    order = list(store.grids)
+    for i, planned in enumerate(plan_indicators(request.indicators or [])):
+        present = [v for v in planned.indicator.variables if v in store.variables]
+        grids = sorted({store.grid_of(v) for v in present}, key=order.index)
+        if len(grids) > 1:
+            on = ", ".join(f"{v} on {store.grid_of(v)!r}" for v in present)
+            raise RequestError(
+                f"indicator {planned.column!r} reads variables on different grids of dataset {store.name!r} "
+                f"({on}); under aggregation 'cells' an indicator is computed on the cells of one grid: ask for "
+                f"aggregation 'series' (or leave {planned.column!r} out)",
+                field=f"indicators[{i}]",
+                pointer="/aggregation",
+            )
+
+
 def needed_variables(request: IndicatorRequest) -> tuple[str, ...]:
     """The daily variables a resolved request's indicators read, in the order of VARIABLES."""
     used = {v for p in plan_indicators(request.indicators or []) for v in p.indicator.variables}
@@ -289,22 +371,28 @@ def _daily_series(ds: Any, store: Store, span: slice, latitude: np.ndarray) -> D
     )
 
 
-def _feature_columns(frame: pd.DataFrame, weights: Weights, rows: np.ndarray) -> pd.DataFrame:
+def _feature_columns(frame: pd.DataFrame, weights: Weights | GridWeights, rows: np.ndarray) -> pd.DataFrame:
     """Add each feature's coverage, cell count and area to its rows."""
     merged = frame.merge(_feature_frame(weights, rows), on="feature_id", how="left", sort=False)
     return merged
 
 
-def _feature_frame(weights: Weights, rows: np.ndarray) -> pd.DataFrame:
-    """feature_id, coverage, cells and area_km2 of the features ``rows``."""
-    return pd.DataFrame(
-        {
-            "feature_id": [weights.feature_ids[i] for i in rows],
-            "coverage": np.asarray(weights.coverage)[rows],
-            "cells": np.asarray(weights.n_cells)[rows].astype("int64"),
-            "area_km2": np.asarray(weights.area_km2)[rows],
-        }
-    )
+def _feature_frame(weights: Weights | GridWeights, rows: np.ndarray) -> pd.DataFrame:
+    """feature_id, coverage, cells and area_km2 of the features ``rows``: ``coverage`` and ``cells`` on its one
+    grid, or, in a dataset with several grids, ``coverage_<grid>`` and ``cells_<grid>`` on each grid the
+    request read (CONTRACTS.md); ``area_km2`` the feature's area (on the first grid read)."""
+    if isinstance(weights, GridWeights):
+        by_grid, suffixed = weights.by_grid, weights.per_grid_columns
+    else:
+        by_grid, suffixed = {"": weights}, False
+    first = next(iter(by_grid.values()))
+    columns: dict[str, Any] = {"feature_id": [first.feature_ids[i] for i in rows]}
+    for grid, grid_weights in by_grid.items():
+        suffix = f"_{grid}" if suffixed else ""
+        columns[f"coverage{suffix}"] = np.asarray(grid_weights.coverage)[rows]
+        columns[f"cells{suffix}"] = np.asarray(grid_weights.n_cells)[rows].astype("int64")
+    columns["area_km2"] = np.asarray(first.area_km2)[rows]
+    return pd.DataFrame(columns)
 
 
 # Bytes of daily means (features x days x variables, float64) a feature batch may hold at once: long records
@@ -329,7 +417,7 @@ def _without_features(request: IndicatorRequest) -> IndicatorRequest:
 
 def lazy_batch_table(
     store: Store,
-    weights: Weights,
+    weights: Weights | GridWeights,
     rows: np.ndarray,
     properties: list[dict | None],
     resolved: IndicatorRequest,
@@ -1339,11 +1427,20 @@ def series_table(request: SeriesRequest, store: Store, settings: Settings) -> Se
             pointer="/years",
         )
     _check_years(years, settings)
+    stored = series_variables(request)
+    lacking = [v for v in stored if v not in store.variables]
+    if lacking:
+        raise RequestError(
+            f"dataset {store.name!r} has no variable {lacking[0]!r} (it has {list(store.variables)!r}); ask "
+            "for the variables it holds",
+            field="variables",
+            pointer="/variables",
+        )
     parsed, weights = features_and_weights(request, store, settings)
     start = int(np.searchsorted(dates.year, years[0], side="left"))
     stop = int(np.searchsorted(dates.year, years[1], side="right"))
     span = slice(start, stop)
-    daily_lazy = aggregate(store, weights, time=span).drop_vars("tmean", errors="ignore")  # made below
+    daily_lazy = aggregate(store, weights, variables=stored, time=span).drop_vars("tmean", errors="ignore")
     (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
     # the same snapped daily means the indicators use (daily_values), so sums of the series match the table
     values = {v: daily_values(daily_ds, store, v) for v in ("tmax", "tmin", "prcp") if v in daily_ds}

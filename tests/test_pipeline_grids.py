@@ -121,3 +121,27 @@ def test_under_cells_an_indicator_whose_variables_lie_on_two_grids_is_refused_na
     with pytest.raises(RequestError, match=r"indicator 'hotdry_days' reads variables on different grids of "
                                            r"dataset 'both' \(tmax on 'coarse', prcp on 'fine'\)"):  # fmt: skip
         check_cells_grids(_request(["prcp_total", "hotdry_days"]), stores["both"])
+
+
+def test_a_feature_skipped_on_one_grid_has_no_values_from_any(settings, tmp_path: Path) -> None:
+    """The coarse grid has no data in its north-west cell; a community inside it can be computed on the fine
+    grid only: skipped, it gets null values and no cells on every grid, the other keeps its values."""
+    fine = make_dataset(ny=6, nx=6, years=YEARS, variables=("prcp",), layers=(), seed=1)
+    coarse = make_dataset(ny=2, nx=2, years=YEARS, variables=("tmax", "tmin"), layers=(), cell_size=1.5,
+                          missing_cells=[(0, 0)], seed=2)  # fmt: skip
+    write_store({"fine": fine, "coarse": coarse}, tmp_path / "s.zarr")
+    store = open_store(tmp_path / "s.zarr")
+    water = _community("w", -149.8, -38.2, 0.6)  # inside the coarse north-west cell (-150..-148.5, -38.5..-37)
+    body = {
+        "features": {"type": "FeatureCollection", "features": [water, FEATURES[1]]},
+        "indicators": ["prcp_total", "tmean"],
+        "season": {"start": "01-01", "end": "12-31"},
+        "baseline": {"start": 2000, "end": 2004},
+        "invalid_features": "skip",
+    }
+    result = run(validate_request(IndicatorRequest, body), store, settings)
+    frame = result.frame.set_index("feature_id")
+    assert frame.loc["w", "prcp_total"].isna().all() and frame.loc["w", "tmean"].isna().all()
+    assert (frame.loc["w", "cells_fine"] == 0).all() and (frame.loc["w", "cells_coarse"] == 0).all()
+    assert frame.loc["b", "prcp_total"].notna().all() and frame.loc["b", "tmean"].notna().all()
+    assert [w["code"] for w in result.warnings if w["feature_id"] == "w"] == ["feature_skipped"]

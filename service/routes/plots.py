@@ -181,7 +181,7 @@ def plot_map(
     from service import pipeline
     from service.encode.codebook import season_text
     from service.indicators.table import resolve_request
-    from service.maps import anomaly_field, mappable, to_grid_crs
+    from service.maps import anomaly_field, map_grid, mappable, to_grid_crs
     from service.plots import map_plot, map_title
 
     check_on_demand(body, settings)
@@ -205,7 +205,7 @@ def plot_map(
             body.max_missing_share if body.max_missing_share is not None else settings.max_missing_share
         ),
     )
-    grid = store.grid
+    grid = map_grid(store, indicator)
     outlines = to_grid_crs([f.geometry for f in parsed.features], parsed.crs, grid.crs())
     first, last = field.baseline_years
     png = map_plot(
