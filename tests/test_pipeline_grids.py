@@ -21,8 +21,19 @@ YEARS = (2000, 2004)
 
 
 def _community(fid: str, west: float, south: float, size: float) -> dict[str, Any]:
-    ring = [[west, south], [west + size, south], [west + size, south + size], [west, south + size], [west, south]]
-    return {"type": "Feature", "id": fid, "properties": {}, "geometry": {"type": "Polygon", "coordinates": [ring]}}
+    ring = [
+        [west, south],
+        [west + size, south],
+        [west + size, south + size],
+        [west, south + size],
+        [west, south],
+    ]
+    return {
+        "type": "Feature",
+        "id": fid,
+        "properties": {},
+        "geometry": {"type": "Polygon", "coordinates": [ring]},
+    }
 
 
 # Two communities over the invented corner of make_dataset's grids (-150..-147 E, -40..-37 N, open sea).
@@ -79,7 +90,9 @@ def test_each_grid_gets_its_own_weights_and_the_values_of_its_single_grid_store(
     np.testing.assert_allclose(both["area_km2"], fine["area_km2"])
 
 
-def test_a_request_reading_one_grid_of_a_two_grid_dataset_names_its_columns_by_that_grid(stores, settings) -> None:
+def test_a_request_reading_one_grid_of_a_two_grid_dataset_names_its_columns_by_that_grid(
+    stores, settings
+) -> None:
     frame = run(_request(["prcp_total"]), stores["both"], settings).frame
     assert {"coverage_fine", "cells_fine"} <= set(frame.columns) and "cells_coarse" not in frame.columns
 
@@ -98,17 +111,23 @@ def test_the_daily_series_of_two_grids_equal_those_of_each_grid_alone(stores, se
 
 
 def test_layer_weighting_uses_each_grids_copy_of_the_layer(stores, settings, tmp_path: Path) -> None:
-    frame = run(_request(["prcp_total", "tmean"], weighting={"layer": "population"}), stores["both"], settings)
+    frame = run(
+        _request(["prcp_total", "tmean"], weighting={"layer": "population"}), stores["both"], settings
+    )
     alone = run(_request(["prcp_total"], weighting={"layer": "population"}), stores["fine"], settings)
     pd.testing.assert_series_equal(frame.frame["prcp_total"], alone.frame["prcp_total"])
     # a layer on one grid only: the request that reads the other grid is refused, naming that grid
     fine = make_dataset(ny=6, nx=6, years=YEARS, variables=("prcp",), layers=(), seed=1)
-    coarse = make_dataset(ny=2, nx=2, years=YEARS, variables=("tmax", "tmin"), layers=(), cell_size=1.5, seed=2)
+    coarse = make_dataset(
+        ny=2, nx=2, years=YEARS, variables=("tmax", "tmin"), layers=(), cell_size=1.5, seed=2
+    )
     write_store({"fine": fine, "coarse": coarse}, tmp_path / "s.zarr")
     write_layer(tmp_path / "s.zarr", "cropland", {"fine": np.full((6, 6), 0.5)})
     store = open_store(tmp_path / "s.zarr")
     run(_request(["prcp_total"], weighting={"layer": "cropland"}), store, settings)  # fine grid only: fine
-    with pytest.raises(UnknownDatasetError, match=r"grid 'coarse' of dataset 's' has no weight layer 'cropland'"):
+    with pytest.raises(
+        UnknownDatasetError, match=r"grid 'coarse' of dataset 's' has no weight layer 'cropland'"
+    ):
         run(_request(["prcp_total", "tmean"], weighting={"layer": "cropland"}), store, settings)
 
 
@@ -131,7 +150,9 @@ def test_a_feature_skipped_on_one_grid_has_no_values_from_any(settings, tmp_path
                           missing_cells=[(0, 0)], seed=2)  # fmt: skip
     write_store({"fine": fine, "coarse": coarse}, tmp_path / "s.zarr")
     store = open_store(tmp_path / "s.zarr")
-    water = _community("w", -149.8, -38.2, 0.6)  # inside the coarse north-west cell (-150..-148.5, -38.5..-37)
+    water = _community(
+        "w", -149.8, -38.2, 0.6
+    )  # inside the coarse north-west cell (-150..-148.5, -38.5..-37)
     body = {
         "features": {"type": "FeatureCollection", "features": [water, FEATURES[1]]},
         "indicators": ["prcp_total", "tmean"],
