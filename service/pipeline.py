@@ -21,7 +21,7 @@ import pyproj
 from scipy import sparse
 
 from service import __version__, cluster, request_text
-from service.aggregate import GridWeights, aggregate
+from service.aggregate import GridWeights, aggregate, weights_on
 from service.encode import RunResult
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import (
@@ -41,7 +41,7 @@ from service.indicators.table import (
     cell_groups,
     compute_cell_values,
     compute_table,
-    compute_table_from_cells,
+    compute_table_from_grid_cells,
     concat_raw,
     methods_statement,
     plan_indicators,
@@ -523,6 +523,8 @@ def run(
         )
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
+    if resolved.aggregation == "cells":
+        check_cells_grids(resolved, store)
     variables = needed_variables(resolved)
     if prepared is None:
         prepared = _prepare_resolved(resolved, store, settings, invalid_features)
@@ -635,6 +637,8 @@ def prepare(
         return prepare_events(request, store, settings, invalid_features=invalid_features)[0]
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
+    if resolved.aggregation == "cells":
+        check_cells_grids(resolved, store)
     prepared = _prepare_resolved(resolved, store, settings, invalid_features, keep_shapes)
     _dry_run(resolved, store, prepared)
     return prepared
@@ -1253,9 +1257,12 @@ def _aggregated_daily(
     return _daily_series(daily_ds, store, span, np.asarray(weights.latitude))
 
 
-def cell_centres_lonlat(store: Store, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Longitude and latitude (degrees, WGS84) of the centres of grid cells ``cells`` (iy * nx + ix)."""
-    grid = store.grid
+def cell_centres_lonlat(
+    store: Store, cells: np.ndarray, grid_name: str | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Longitude and latitude (degrees, WGS84) of the centres of cells ``cells`` (iy * nx + ix) of a grid
+    (the store's first grid when not named)."""
+    grid = store.grids[grid_name or store.main_grid]
     iy, ix = np.divmod(np.asarray(cells, dtype=np.int64), grid.shape[1])
     x, y = np.asarray(grid.x)[ix], np.asarray(grid.y)[iy]
     # through PROJ even for a geographic grid: a rotated-pole grid is geographic in its own coordinates
@@ -1265,14 +1272,15 @@ def cell_centres_lonlat(store: Store, cells: np.ndarray) -> tuple[np.ndarray, np
 
 
 def cell_daily_series(
-    store: Store, cells: np.ndarray, span: slice, variables: tuple[str, ...]
+    store: Store, cells: np.ndarray, span: slice, variables: tuple[str, ...], grid: str | None = None
 ) -> DailySeries:
     """The stored daily values of grid cells ``cells`` (iy * nx + ix, best all in one read unit) over ``span``.
 
     Decoded and snapped like every daily mean (daily_values), so a stored 25.0 is exactly 25.0; one window
     read per variable over the cells' bounding box. Latitude is each cell centre's (for SPEI's radiation).
+    The cells are those of ``grid`` (the store's first grid when not named), where ``variables`` all lie.
     """
-    ny, nx = store.grid.shape
+    ny, nx = store.grids[grid or store.main_grid].shape
     iy, ix = np.divmod(np.asarray(cells, dtype=np.int64), nx)
     y, x = slice(int(iy.min()), int(iy.max()) + 1), slice(int(ix.min()), int(ix.max()) + 1)
     arrays: dict[str, np.ndarray | None] = dict.fromkeys(VARIABLES)
@@ -1293,7 +1301,7 @@ def cell_daily_series(
         values[raw == enc.fill_value] = np.nan
         arrays[var] = values
     dates = store.dates
-    _, lat = cell_centres_lonlat(store, cells)
+    _, lat = cell_centres_lonlat(store, cells, grid)
     return DailySeries(
         **arrays,
         year=np.asarray(dates.year[span]),
@@ -1312,14 +1320,15 @@ def cell_chunk_values(
     variables: tuple[str, ...],
     resolved: IndicatorRequest,
     groups: list[Any],
+    grid: str | None = None,
 ) -> list[RawValues]:
     """One task of aggregation "cells": the raw indicator values of some cells of one read unit, per group."""
-    return compute_cell_values(cell_daily_series(store, cells, span, variables), resolved, groups)
+    return compute_cell_values(cell_daily_series(store, cells, span, variables, grid), resolved, groups)
 
 
 def cells_table(
     store: Store,
-    batch: Weights,
+    batch: Weights | GridWeights,
     properties: list[dict | None],
     resolved: IndicatorRequest,
     span: slice,
@@ -1334,32 +1343,65 @@ def cells_table(
     travel and the tasks run on the cluster like the aggregation's. A cell's series is its stored value
     (snapped as every daily mean); SPEI's radiation uses the cell centre's latitude. The features' weights
     (area, or area times a layer) weigh the cell values: see service.indicators.table.combine_cells for
-    cells without a value.
+    cells without a value. In a dataset with several grids each indicator is computed on the cells of the
+    grid of its variables (check_cells_grids refuses one across grids), all grids' tasks in one computation.
     """
-    matrix = batch.matrix.tocsr()
-    cells = np.unique(matrix.indices[matrix.data > 0]).astype(np.int64)
-    if not cells.size:  # no feature of the batch has a cell (skipped features): their rows stay null
+    check_cells_grids(resolved, store)
+    groups = cell_groups(batch.feature_ids, properties, resolved)
+    parts = []  # per grid: (its indicators' request, its weights, cells, one task per read unit)
+    for grid, request, grid_vars in _cells_requests(store, resolved, variables):
+        matrix = weights_on(batch, grid).matrix.tocsr()
+        cells = np.unique(matrix.indices[matrix.data > 0]).astype(np.int64)
+        if not cells.size:  # no feature of the batch has a cell on this grid (skipped features)
+            continue
+        ny, nx = store.grids[grid].shape
+        cy, cx, _ = store.chunk_shape_of(grid_vars[0])
+        iy, ix = np.divmod(cells, nx)
+        unit = (iy // cy) * (-(-nx // cx)) + ix // cx
+        order = np.argsort(unit, kind="stable")
+        cells, unit = cells[order], unit[order]
+        starts = np.flatnonzero(np.r_[True, np.diff(unit) != 0])
+        light = dask.delayed(request.model_copy(update={"features": _first_feature(resolved)}))
+        tasks = [
+            dask.delayed(cell_chunk_values, pure=False)(store, piece, span, grid_vars, light, groups, grid)
+            for piece in np.split(cells, starts[1:])
+        ]
+        parts.append((matrix[:, cells], tasks))
+    if len(parts) < len(_cells_requests(store, resolved, variables)):
+        # some grid has no cell for the batch (only skipped features): their rows stay null
         daily = _aggregated_daily(store, batch, span, variables, settings)
         return compute_table(daily, list(batch.feature_ids), [p or {} for p in properties], resolved)
-    ny, nx = store.grid.shape
-    cy, cx, _ = store.chunk_shape
-    iy, ix = np.divmod(cells, nx)
-    unit = (iy // cy) * (-(-nx // cx)) + ix // cx
-    order = np.argsort(unit, kind="stable")
-    cells, unit = cells[order], unit[order]
-    starts = np.flatnonzero(np.r_[True, np.diff(unit) != 0])
-    pieces = np.split(cells, starts[1:])
-    groups = cell_groups(batch.feature_ids, properties, resolved)
-    light = dask.delayed(resolved.model_copy(update={"features": _first_feature(resolved)}))
-    tasks = [
-        dask.delayed(cell_chunk_values, pure=False)(store, piece, span, variables, light, groups)
-        for piece in pieces
-    ]
-    results = cluster.compute(*tasks, settings=settings)
-    cell_values = [concat_raw([r[g] for r in results]) for g in range(len(groups))]
-    return compute_table_from_cells(
-        cell_values, matrix[:, cells], list(batch.feature_ids), [p or {} for p in properties], resolved
+    results = cluster.compute(*(t for _, tasks in parts for t in tasks), settings=settings)
+    joined, at = [], 0
+    for matrix, tasks in parts:
+        mine = results[at : at + len(tasks)]
+        at += len(tasks)
+        joined.append(([concat_raw([r[g] for r in mine]) for g in range(len(groups))], matrix))
+    return compute_table_from_grid_cells(
+        joined, list(batch.feature_ids), [p or {} for p in properties], resolved
     )
+
+
+def _cells_requests(
+    store: Store, resolved: IndicatorRequest, variables: tuple[str, ...]
+) -> list[tuple[str, IndicatorRequest, tuple[str, ...]]]:
+    """Per grid read under aggregation "cells": the grid, the request of the indicators on it, their variables
+    (one entry with the whole request in a single-grid dataset or when every variable lies on one grid)."""
+    grids = list(dict.fromkeys(store.grid_of(v) for v in variables))
+    if len(grids) <= 1:
+        return [(grids[0] if grids else store.main_grid, resolved, variables)]
+    specs = list(resolved.indicators or [])
+    out = []
+    for grid in grids:
+        mine = [
+            spec
+            for spec, planned in zip(specs, plan_indicators(specs), strict=True)
+            if any(store.grid_of(v) == grid for v in planned.indicator.variables if v in store.variables)
+        ]
+        used = {v for p in plan_indicators(mine) for v in p.indicator.variables}
+        grid_vars = tuple(v for v in variables if v in used)
+        out.append((grid, resolved.model_copy(update={"indicators": mine}), grid_vars))
+    return out
 
 
 def _first_feature(request: IndicatorRequest) -> Any:

@@ -166,3 +166,33 @@ def test_a_feature_skipped_on_one_grid_has_no_values_from_any(settings, tmp_path
     assert (frame.loc["w", "cells_fine"] == 0).all() and (frame.loc["w", "cells_coarse"] == 0).all()
     assert frame.loc["b", "prcp_total"].notna().all() and frame.loc["b", "tmean"].notna().all()
     assert [w["code"] for w in result.warnings if w["feature_id"] == "w"] == ["feature_skipped"]
+
+
+def test_under_cells_each_indicator_is_computed_on_the_cells_of_its_own_grid(stores, settings) -> None:
+    """Aggregation 'cells' on a two-grid dataset: the precipitation indicators from the fine grid's cells, the
+    temperature ones from the coarse grid's, each equal to the same request on that grid's store alone."""
+    cells = {"aggregation": "cells"}
+    both = run(_request(["prcp_total", "wet_days", "tmean", "gdd"], **cells), stores["both"], settings)
+    fine = run(_request(["prcp_total", "wet_days"], **cells), stores["fine"], settings).frame
+    coarse = run(_request(["tmean", "gdd"], **cells), stores["coarse"], settings).frame
+    for column in ("prcp_total", "prcp_total_z", "wet_days"):
+        pd.testing.assert_series_equal(both.frame[column], fine[column])
+    for column in ("tmean", "tmean_z", "gdd"):
+        pd.testing.assert_series_equal(both.frame[column], coarse[column])
+    # wet_days of the cells' means differs from the mean series' (a check that 'cells' was really used)
+    series = run(_request(["wet_days"]), stores["fine"], settings).frame
+    assert not series["wet_days"].equals(fine["wet_days"])
+    # the share of days with every variable is the smaller of the grids' (both full here)
+    np.testing.assert_allclose(both.frame["season_complete"], np.fmin(fine["season_complete"],
+                               coarse["season_complete"]))  # fmt: skip
+
+
+def test_under_cells_a_request_with_an_indicator_across_grids_is_refused_before_any_work(stores, settings):
+    from service.errors import RequestError
+    from service.pipeline import prepare
+
+    request = _request(["prcp_total", "hotdry_days"], aggregation="cells")
+    for call in (prepare, run):
+        with pytest.raises(RequestError, match=r"indicator 'hotdry_days' reads variables on different grids"):
+            call(request, stores["both"], settings)
+    run(_request(["prcp_total", "hotdry_days"]), stores["both"], settings)  # under 'series' it is computed

@@ -1012,24 +1012,64 @@ def compute_table_from_cells(
     Each feature's raw value is the weighted mean of its cells' (:func:`combine_cells`); z, classes, lags
     and spells are computed on that mean, as for aggregation "series".
     """
+    return compute_table_from_grid_cells([(cell_values, weights)], feature_ids, properties, request)
+
+
+def compute_table_from_grid_cells(
+    parts: Sequence[tuple[Sequence[RawValues], sparse.csr_matrix]],
+    feature_ids: list[str],
+    properties: list[dict],
+    request: IndicatorRequest,
+) -> IndicatorTable:
+    """:func:`compute_table_from_cells` of a dataset with several grids: one part per grid, each the cell
+    values of the request's indicators on that grid (per season group) and the features' (feature, cell)
+    weights on its cells. Each indicator's feature values are the weighted means of its own grid's cells;
+    z, classes, lags, pairs and spells are then computed on the joined values as for one grid.
+
+    ``season_complete`` (the share of days with every variable of the row) becomes the smallest of the
+    grids' shares: the days each grid has are not known here, and the smallest is the share of the grid
+    with most days missing (an upper bound on the share with every variable present).
+    """
     groups = cell_groups(feature_ids, properties, request)
-    if len(cell_values) != len(groups):
-        raise RuntimeError(f"{len(cell_values)} sets of cell values for {len(groups)} season groups")
-    if weights.shape[0] != len(feature_ids):
-        raise RuntimeError(f"cell weights for {weights.shape[0]} features, {len(feature_ids)} feature ids")
     planned = plan_indicators(request.indicators or [])
-    cells = CellAggregation(weights=sparse.csr_matrix(weights))
-    raws = []
-    for group, raw in zip(groups, cell_values, strict=True):
-        used = cells.cells_of(group.feature_index)
-        subset = RawValues(
-            years=raw.years,
-            values={c: v[used] for c, v in raw.values.items()},
-            present={c: v[used] for c, v in raw.present.items()},
-            flags={c: {code: m[used] for code, m in marks.items()} for c, marks in raw.flags.items()},
-        )
-        raws.append(combine_cells(subset, cells, group.feature_index, used, request))
+    joined: list[RawValues | None] = [None] * len(groups)
+    for cell_values, weights in parts:
+        if len(cell_values) != len(groups):
+            raise RuntimeError(f"{len(cell_values)} sets of cell values for {len(groups)} season groups")
+        if weights.shape[0] != len(feature_ids):
+            raise RuntimeError(
+                f"cell weights for {weights.shape[0]} features, {len(feature_ids)} feature ids"
+            )
+        cells = CellAggregation(weights=sparse.csr_matrix(weights))
+        for g, (group, raw) in enumerate(zip(groups, cell_values, strict=True)):
+            used = cells.cells_of(group.feature_index)
+            subset = RawValues(
+                years=raw.years,
+                values={c: v[used] for c, v in raw.values.items()},
+                present={c: v[used] for c, v in raw.present.items()},
+                flags={c: {code: m[used] for code, m in marks.items()} for c, marks in raw.flags.items()},
+            )
+            combined = combine_cells(subset, cells, group.feature_index, used, request)
+            joined[g] = combined if joined[g] is None else _join_raw(joined[g], combined)
+    raws = [r for r in joined if r is not None]
+    if len(raws) != len(groups):
+        raise RuntimeError("aggregation 'cells' was given no grid")
+    missing = [p.column for p in planned if p.column not in raws[0].values] if raws else []
+    if missing:
+        raise RuntimeError(f"no grid computed the cell values of {missing!r}")
     return _assemble(request, planned, groups, raws, feature_ids, " (in at least one of its cells)")
+
+
+def _join_raw(a: RawValues, b: RawValues) -> RawValues:
+    """Raw values of the same rows and season-years for two disjoint sets of indicators, joined; the shares
+    of days with every variable ("") the smaller of the two."""
+    if not np.array_equal(a.years, b.years):
+        raise RuntimeError("raw values of different season-years cannot be joined")
+    present = {**a.present, **b.present}
+    present[""] = np.fmin(a.present[""], b.present[""])
+    return RawValues(
+        years=a.years, values={**a.values, **b.values}, present=present, flags={**a.flags, **b.flags}
+    )
 
 
 def _assemble(
