@@ -23,12 +23,14 @@ import pytest
 
 from service.errors import StoreError
 from service.store import (
+    add_variables,
     append_store,
     migrate_store,
     open_store,
     recover,
     store_exists,
     verify_store,
+    write_layer,
     write_store,
 )
 from service.store import swap as swap_module
@@ -106,7 +108,7 @@ def test_a_crash_at_every_step_of_an_append_leaves_the_old_or_the_new_store(
     assert len(store.dates) == (731 if step in COMMITTED else 366)
 
 
-@pytest.mark.parametrize("step", ["aside-complete", "journal", "moved-new", "done"])
+@pytest.mark.parametrize("step", STEPS)
 def test_a_crash_while_creating_a_store_leaves_none_or_the_whole_store(
     tmp_path: Path, two_years, step
 ) -> None:
@@ -120,7 +122,7 @@ def test_a_crash_while_creating_a_store_leaves_none_or_the_whole_store(
     assert _siblings(path) == []
 
 
-@pytest.mark.parametrize("step", ["migration-linked", "aside-complete", "moved-old", "done"])
+@pytest.mark.parametrize("step", ("migration-linked", *STEPS))
 def test_a_crash_during_migration_leaves_the_layout1_store_or_the_migrated_one(tmp_path: Path, step) -> None:
     path = tmp_path / "old.zarr"
     shutil.copytree(DATA / "store_layout1.zarr", path)
@@ -135,6 +137,68 @@ def test_a_crash_during_migration_leaves_the_layout1_store_or_the_migrated_one(t
     else:
         assert store.layout_version == 1 and store.fingerprint == before
     assert verify_store(path).ok and _siblings(path) == []
+
+
+# The writes of several grids (issue 11): each goes through the same swap, by one of its two paths (a hard-linked
+# copy of the store changed in place, or a whole rewrite when days come before the store's first day).
+def _fine() -> object:
+    return make_dataset(ny=4, nx=4, years=(2001, 2001), variables=("prcp",), layers=(), seed=3)
+
+
+def _coarse(years: tuple[int, int]) -> object:
+    return make_dataset(ny=2, nx=2, years=years, variables=("tmax", "tmin"), layers=(), cell_size=1.0, seed=4)
+
+
+GRID_WRITES: dict[str, Callable[[Path], object]] = {
+    "variables on a new grid": lambda path: add_variables(_coarse((2001, 2001)), path, grid="coarse"),
+    "variables before the first day (rewrite)": lambda path: add_variables(
+        _coarse((2000, 2001)), path, grid="coarse"
+    ),
+    "a weight layer": lambda path: write_layer(path, "cropland", {"grid": np.full((4, 4), 0.25)}),
+}
+
+
+@pytest.fixture(scope="module")
+def grid_writes_done(tmp_path_factory) -> dict[str, str]:
+    """The fingerprint each write of GRID_WRITES gives when it completes (made on a store of its own)."""
+    done = {}
+    for name, write in GRID_WRITES.items():
+        path = tmp_path_factory.mktemp("done") / "s.zarr"
+        write_store(_fine(), path)
+        done[name] = write(path)
+    return done
+
+
+@pytest.mark.parametrize("write", list(GRID_WRITES))
+@pytest.mark.parametrize("step", STEPS)
+def test_a_crash_at_every_step_of_a_write_of_grids_or_layers_leaves_the_old_or_the_new_store(
+    tmp_path: Path, grid_writes_done, write: str, step: str
+) -> None:
+    path = tmp_path / "s.zarr"
+    before = write_store(_fine(), path)
+    assert _crash_at(step, lambda: GRID_WRITES[write](path)) == CRASHED
+    store = open_store(path)  # recovers
+    assert store.fingerprint == (grid_writes_done[write] if step in COMMITTED else before)
+    assert list(store.grids) == (
+        ["grid"] if step not in COMMITTED or write == "a weight layer" else ["grid", "coarse"]
+    )
+    assert verify_store(path).ok and _siblings(path) == []
+
+
+@pytest.mark.parametrize("recovery_step", ["moved-new", "removed-old", "done"])
+def test_a_crash_during_recovery_is_finished_by_the_next_open(
+    tmp_path: Path, two_years, recovery_step
+) -> None:
+    """Recovery runs the same journaled steps: killed in the middle of finishing a swap, it is finished by the next
+    open, whatever step it had reached."""
+    ds, first, second, after = two_years
+    path = tmp_path / "s.zarr"
+    write_store(first, path)
+    assert _crash_at("moved-old", lambda: append_store(second, path)) == CRASHED  # no store at its path
+    assert not path.exists()
+    assert _crash_at(recovery_step, lambda: open_store(path)) == CRASHED
+    store = open_store(path)
+    assert store.fingerprint == after and verify_store(path).ok and _siblings(path) == []
 
 
 def test_an_error_after_the_commit_leaves_the_write_to_recovery(
