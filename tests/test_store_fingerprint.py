@@ -136,6 +136,35 @@ def test_the_fingerprint_covers_values_metadata_grids_and_layers(tmp_path: Path,
     )
 
 
+def test_the_fingerprint_covers_every_grid_its_values_its_layers_and_their_kind(tmp_path: Path) -> None:
+    """Each grid of a two-grid store counts alike: one value on the second grid, a layer on it, the layer's
+    kind (a count and a share of the same numbers mean different weights), and the calendar."""
+    fine = make_dataset(ny=4, nx=4, years=(2000, 2001), variables=("prcp",), layers=(), seed=3)
+    coarse = make_dataset(ny=2, nx=2, years=(2000, 2001), variables=("tmax", "tmin"), layers=(), cell_size=1.0,
+                          seed=4)  # fmt: skip
+    base = write_store({"fine": fine, "coarse": coarse}, tmp_path / "base.zarr")
+    assert write_store({"fine": fine, "coarse": coarse}, tmp_path / "again.zarr") == base
+    nudged = coarse.copy(deep=True)
+    nudged["tmax"][100, 1, 1] = nudged["tmax"][100, 1, 1] + 0.1
+    swapped = {"fine": fine, "coarse": coarse.rename({"tmax": "tmin", "tmin": "tmax"})}
+    noleap = make_dataset(
+        ny=4, nx=4, years=(2000, 2001), variables=("prcp",), layers=(), seed=3, calendar="noleap"
+    )
+    others = {
+        write_store({"fine": fine, "coarse": nudged}, tmp_path / "nudged.zarr"),
+        write_store(swapped, tmp_path / "swapped.zarr"),
+        write_store({"fine": noleap, "coarse": coarse.convert_calendar("noleap")}, tmp_path / "noleap.zarr"),
+    }
+    assert len(others) == 3 and base not in others
+    for name in ("count", "share"):
+        shutil.copytree(tmp_path / "base.zarr", tmp_path / f"{name}.zarr")
+    people = {"coarse": np.full((2, 2), 3.0)}
+    as_count = write_layer(tmp_path / "count.zarr", "people", people, attrs={"wxshock_layer_kind": "count"})
+    as_share = write_layer(tmp_path / "share.zarr", "people", people, attrs={"wxshock_layer_kind": "share"})
+    assert len({base, as_count, as_share}) == 3
+    assert verify_store(tmp_path / "count.zarr").ok and verify_store(tmp_path / "share.zarr").ok
+
+
 def test_the_layout1_store_reads_verifies_and_migrates_recording_its_old_fingerprint(tmp_path: Path) -> None:
     path = tmp_path / "old.zarr"
     shutil.copytree(DATA / "store_layout1.zarr", path)

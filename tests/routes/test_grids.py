@@ -132,3 +132,23 @@ def test_a_request_across_both_grids_on_demand_and_as_a_job(server, weighting: A
     assert all(r["tmean"] is not None and r["gdd"] is not None for r in rows)
     if weighting == "area":  # the rain grid of 'both' holds the same values as dataset 'rain'
         assert [r["prcp_total"] for r in rows] == [r["prcp_total"] for r in rain_only]
+
+
+def test_maps_are_drawn_on_the_grid_of_the_indicators_variables(server) -> None:
+    from service.maps import anomaly_field
+    from service.store import open_store
+
+    body = {"dataset": "both", "features": FEATURES, "baseline": BASELINE}
+    with server.client() as client:
+        rain = client.post("/v1/plots/map", params={"year": 2006, "indicator": "prcp_total"}, json=body)
+        heat = client.post("/v1/plots/map", params={"year": 2006, "indicator": "tmean"}, json=body)
+        none = client.post(
+            "/v1/plots/map", params={"year": 2006, "indicator": "tmean"}, json={**body, "dataset": "rain"}
+        )
+    assert rain.status_code == 200 and heat.status_code == 200, (rain.text, heat.text)
+    assert rain.content.startswith(b"\x89PNG") and rain.content != heat.content
+    assert none.status_code == 422 and "tmax" in none.json()["detail"], none.text
+    # the fields behind them: 6 x 8 cells of rain, 2 x 2 of temperature
+    store = open_store(server.data_dir.parent / "both.zarr")
+    assert anomaly_field(store, "prcp_total", 2006).z.shape == (6, 8)
+    assert anomaly_field(store, "tmean", 2006).z.shape == (2, 2)
