@@ -1422,7 +1422,7 @@ def methods_statement(request: IndicatorRequest, snap: Mapping[str, int]) -> dic
         if p.indicator.bounds is not None:
             entry["bounds"] = list(p.indicator.bounds)
         indicators[p.column] = entry
-    return {
+    statement: dict[str, Any] = {
         "daily_values": "area- or layer-weighted daily means of the cells with data, snapped to "
         + ", ".join(f"{v} {d} decimals" for v, d in snap.items())
         + " (the storage step plus three), so values exact in storage units meet thresholds exactly",
@@ -1439,3 +1439,9 @@ def methods_statement(request: IndicatorRequest, snap: Mapping[str, int]) -> dic
         "carry the warning short_baseline_fit",
         "indicators": indicators,
     }
+    if request.spells:
+        statement["spells"] = (
+            "a count is null when a season of its window has a null class or z (spell_unknown) or lacks its "
+            "whole baseline (spell_before_baseline): never a count over fewer seasons than the window"
+        )
+    return statement

@@ -334,6 +334,7 @@ def test_spells_use_the_whole_trailing_baseline_or_are_null(tmp_path: Path) -> N
     assert all("spell_before_baseline" in n.split() for n in from_b.loc[1999:2001, "notes"])
     [before] = [w for w in result_b.warnings if w["code"] == "spell_before_baseline"]
     assert "1999-2001" in before["reason"] and before["feature_id"] is None
+    assert "spell_before_baseline" in result_b.provenance["methods"]["spells"]
     assert from_a.loc[1999:2001, "dry_count"].notna().all()
     assert from_a.loc[2002:2008, "dry_count"].tolist() == from_b.loc[2002:2008, "dry_count"].tolist()
     assert from_a["prcp_total_z"].tolist() == from_b["prcp_total_z"].tolist()  # the z of the years asked for
@@ -557,6 +558,52 @@ def test_fitted_indices_say_how_they_were_fitted_and_where_they_are_clipped(tmp_
     assert "generalized logistic" in result.provenance["methods"]["indicators"]["spei"]["definition"]
     # the percentile indices' in-base bias is stated where a reader of the result finds it
     assert "Zhang et al. 2005" in methods["tx90p"]["details"] and "biased low" in methods["tx90p"]["details"]
+    assert methods["tx90p"]["parameters"] == {"in_base": "plain"}
+
+
+def test_tx90p_offers_the_in_base_bootstrap_and_records_it(tmp_path: Path) -> None:
+    # stationary independent daily TX, baseline 2000-2005, June: the bootstrap changes only the baseline's own
+    # years (Zhang et al. 2005), and the column name, the resolved request and the methods say which was used
+    time = days(2000, 2007)
+    tmax = np.round(np.random.default_rng(15).normal(25.0, 3.0, time.size), 1)[:, None, None]
+    store = write_grid(tmp_path / "tx.zarr", time, {"tmax": tmax, "tmin": tmax - 10, "prcp": tmax * 0})
+    fields = {"season": {"months": [6]}, "baseline": {"start": 2000, "end": 2005}}
+    village = [feature("v", cell_box(0, 0, 1))]
+    plain = run_chain(store, village, tmp_path, indicators=["tx90p"], **fields)
+    resampled = run_chain(
+        store, village, tmp_path, indicators=[{"name": "tx90p", "in_base": "bootstrap"}], **fields
+    )
+    column = "tx90p_in_basebootstrap"
+    a, b = plain.frame.set_index("year")["tx90p"], resampled.frame.set_index("year")[column]
+    assert (a.loc[2006:] == b.loc[2006:]).all() and (a.loc[:2005] != b.loc[:2005]).any()
+    assert resampled.provenance["request"]["indicators"] == [{"name": "tx90p", "in_base": "bootstrap"}]
+    entry = resampled.provenance["methods"]["indicators"][column]
+    assert entry["parameters"] == {"in_base": "bootstrap"} and "bootstrap" in entry["details"]
+
+
+def test_the_default_baseline_is_the_first_30_seasons_or_all_the_data_serve(tmp_path: Path) -> None:
+    # WMO-No. 1090 (2012) asks for 30 years to fit SPI: with 40 years of data the default is the first 30,
+    # with 12 it is all 12 (and the fit is noted short_baseline_fit)
+    time = days(1981, 2020)
+    rng = np.random.default_rng(30)
+    year = time.year.to_numpy()
+    totals = rng.gamma(4.0, 200.0, 40)[year - 1981]
+    prcp = np.round(totals / np.where(year % 4 == 0, 366, 365), 1)
+    tmax = np.full(time.size, 25.0)
+    values = {"tmax": tmax, "tmin": tmax - 10.0, "prcp": prcp}
+    village = [feature("v", cell_box(0, 0, 1))]
+    long = write_grid(tmp_path / "long.zarr", time, {k: v[:, None, None] for k, v in values.items()})
+    result = run_chain(long, village, tmp_path, indicators=["spi"], years={"start": 2011, "end": 2020})
+    assert result.provenance["request"]["baseline"] == {"start": 1981, "end": 2010}
+    assert "1981-2010 (30)" in result.provenance["methods"]["baseline"]
+    assert not any(w["code"] == "short_baseline_fit" for w in result.warnings)
+    short_time = time[year >= 2009]
+    short = write_grid(
+        tmp_path / "short.zarr", short_time, {k: v[year >= 2009, None, None] for k, v in values.items()}
+    )
+    result = run_chain(short, village, tmp_path, indicators=["spi"])
+    assert result.provenance["request"]["baseline"] == {"start": 2009, "end": 2020}
+    assert all("short_baseline_fit" in n.split() for n in result.frame["notes"])
 
 
 def test_the_catalog_states_each_choice() -> None:
@@ -572,6 +619,9 @@ def test_the_catalog_states_each_choice() -> None:
     assert pool.default == "year" and pool.choices == ["year", "season"]
     for name in ("tx90p", "tn10p", "hotdry_days", "hotdry_spell"):
         assert "not applied" in catalog[name].details and "in base" in catalog[name].details, name
+    for name in ("tx90p", "tn10p"):
+        in_base = catalog[name].parameters["in_base"]
+        assert in_base.default == "plain" and in_base.choices == ["plain", "bootstrap"], name
     assert catalog["su"].reduction == "count" and catalog["tmean"].reduction == "mean"
 
 
@@ -604,11 +654,11 @@ def test_r95ptot_takes_its_threshold_from_the_pool_asked_for(tmp_path: Path) -> 
     )
     assert 19 < season_pool < 20 and 67 < year_pool < 69
     default = run_chain(store, village, tmp_path, indicators=["r95ptot"], **fields).frame
+    # ETCCDI (Zhang et al. 2011): the base period's wet days of whole years; no March day of 2003 is above 67 mm
+    assert default["r95ptot"].iloc[0] == 0.0
     seasonal = run_chain(
         store, village, tmp_path, indicators=[{"name": "r95ptot", "threshold_pool": "season"}], **fields
     ).frame
-    # ETCCDI (Zhang et al. 2011): the base period's wet days of whole years; no March day of 2003 is above 67 mm
-    assert default["r95ptot"].iloc[0] == 0.0
     # the seasonal variant: March's own wet days; 25 + 40 + 55 mm are above its 19.7 mm
     assert seasonal["r95ptot_threshold_poolseason"].iloc[0] == pytest.approx(120.0)
 
