@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import uuid
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, fields, replace
@@ -900,6 +901,7 @@ class _VariantRun:
     name: str
     request: IndicatorRequest
     store: Store
+    given: frozenset[str] = frozenset()  # the fields the variant itself gives (its errors point into it)
     resolved: IndicatorRequest | None = None  # a season request, resolved
     events: ResolvedEvents | None = None  # a request with events, resolved
     skipped: list[dict[str, Any]] = field(default_factory=list)
@@ -953,17 +955,28 @@ def _variant_runs(
                     field="variants.dataset",
                     pointer=f"/variants/{index}/dataset",
                 ) from None
-        runs.append(_VariantRun(index=index, name=name, request=variant, store=chosen))
+        given = frozenset((request.variants or [])[index].model_fields_set - {"name"})
+        runs.append(_VariantRun(index=index, name=name, request=variant, store=chosen, given=given))
     return runs
 
 
 def _named(exc: Exception, run_: _VariantRun) -> Exception:
-    """A request error of one variant, its message naming the variant."""
-    from service.errors import RequestError
+    """A request error of one variant, its message naming the variant and its pointer into the variant where
+    the field at fault is one the variant gives (else the request's own field, which the variant inherits)."""
+    from service.errors import WxshockError
 
-    if isinstance(exc, RequestError) and not str(exc.detail).startswith("variant "):
+    if not isinstance(exc, WxshockError):
+        return exc
+    if not str(exc.detail).startswith("variant "):
         exc.detail = f"variant {run_.name!r} (variants[{run_.index}]): {exc.detail}"
         exc.args = (exc.detail,)
+    if exc.pointer is not None:
+        if exc.pointer.split("/")[1:2] and exc.pointer.split("/")[1] in run_.given:
+            exc.pointer = f"/variants/{run_.index}{exc.pointer}"
+    elif exc.field:
+        head = re.split(r"[.\[]", exc.field, maxsplit=1)[0]  # 'indicators.gdd.base': the variant's list
+        if head in run_.given:
+            exc.pointer = f"/variants/{run_.index}/{head}"
     return exc
 
 

@@ -145,6 +145,8 @@ def case_body(case: dict[str, Any], town: dict[str, Any], *, series: bool = Fals
         body = {k: v for k, v in body.items() if k in SERIES_FIELDS}
     for pointer, value in case.get("set", {}).items():
         _set(body, pointer, generated(value, town))
+    for pointer in case.get("drop", []):
+        body.pop(pointer.lstrip("/"), None)  # a top-level field left out (events refuse 'years')
     text = json.dumps(body)
     for old, new in case.get("text_replace", []):
         text = text.replace(old, new)
@@ -200,6 +202,29 @@ def test_the_corpus_is_large_and_each_case_is_named_once() -> None:
     names = [c["name"] for c in CASES]
     assert len(CASES) >= 150 and len(set(names)) == len(names)
     assert {c["level"] for c in CASES} == {"body", "request", "feature", "limit"}
+
+
+def _fields_attacked() -> set[str]:
+    """The top-level request fields that some case sets, drops or writes in its raw body."""
+    from service.schemas import IndicatorRequest
+
+    hit: set[str] = set()
+    for case in CASES:
+        hit |= {p.split("/")[1] for p in [*case.get("set", {}), *case.get("drop", [])]}
+        texts = [p for p in case.get("raw", []) if isinstance(p, str)] + [
+            o for o, _ in case.get("text_replace", [])
+        ]
+        hit |= {f for f in IndicatorRequest.model_fields for t in texts if f'"{f}"' in t}
+    return hit
+
+
+def test_every_request_field_is_attacked_by_some_case() -> None:
+    # A field added to the request (as events, windows, variants, lag_values, aggregation, partial_seasons
+    # and invalid_features were) needs cases of its own here, so that a job's submission is shown to refuse
+    # its faults as the on-demand route does.
+    from service.schemas import IndicatorRequest
+
+    assert set(IndicatorRequest.model_fields) - _fields_attacked() == set()
 
 
 def test_the_base_request_is_served_by_every_route(
