@@ -466,6 +466,15 @@ def batch_table(
 
     The means are snapped in place (they are this task's own arrays), as :func:`daily_values` snaps them.
     """
+    daily = batch_daily(arrays, store, span, latitude)
+    table = compute_table(daily, feature_ids, properties, resolved)
+    return table.frame.merge(by_id, on="feature_id", how="left", sort=False), table.warnings
+
+
+def batch_daily(
+    arrays: dict[str, np.ndarray], store: Store, span: slice, latitude: np.ndarray
+) -> DailySeries:
+    """A batch task's (feature, day) means of each variable over ``span``, snapped in place, as a DailySeries."""
     values: dict[str, np.ndarray | None] = dict.fromkeys(VARIABLES)
     for var, array in arrays.items():
         array = np.asarray(array, dtype=np.float64)
@@ -474,7 +483,7 @@ def batch_table(
         enc = store.encoding(var)
         values[var] = snap_daily(array, snap_decimals(enc.scale_factor, enc.add_offset))
     dates = store.dates
-    daily = DailySeries(
+    return DailySeries(
         **values,
         year=np.asarray(dates.year[span]),
         month=np.asarray(dates.month[span]),
@@ -483,8 +492,78 @@ def batch_table(
         calendar=store.calendar,
         latitude=latitude,
     )
-    table = compute_table(daily, feature_ids, properties, resolved)
-    return table.frame.merge(by_id, on="feature_id", how="left", sort=False), table.warnings
+
+
+@dataclass(frozen=True)
+class BatchJob:
+    """One table that a batch task computes from the batch's daily means: season rows or event rows.
+
+    ``events`` holds the batch's events alone (:func:`_batch_events`) and ``daily_rows`` the row of each
+    one's feature in the batch; a season job has ``resolved`` (its features dropped) instead.
+    """
+
+    resolved: IndicatorRequest | None = None
+    events: ResolvedEvents | None = None
+    daily_rows: np.ndarray | None = None
+
+
+def lazy_batch_tables(
+    store: Store,
+    weights: Weights | GridWeights,
+    rows: np.ndarray,
+    properties: list[dict | None],
+    jobs: list[BatchJob],
+    span: slice,
+    variables: tuple[str, ...],
+) -> Any:
+    """One feature batch aggregated once, as a dask graph ending in one task that returns every job's table.
+
+    As :func:`lazy_batch_table` (the chunk tasks and the reduction are the aggregation's, the last task runs
+    where they ran, only the tables come back), for events and for variants that share one aggregation.
+    """
+    batch = take_weights(weights, rows)
+    daily = aggregate(store, batch, variables=variables, time=span)
+    arrays = {v: daily[v].data for v in variables}
+    by_id = _feature_frame(batch, np.arange(len(rows)))
+    token = f"wxshock-table-{uuid.uuid4().hex}"  # a key of its own, as in lazy_batch_table
+    return dask.delayed(batch_tables, pure=False)(
+        arrays,
+        store,
+        span,
+        np.asarray(batch.latitude, dtype=np.float64),
+        list(batch.feature_ids),
+        properties,
+        jobs,
+        by_id,
+        dask_key_name=token,
+    )
+
+
+def batch_tables(
+    arrays: dict[str, np.ndarray],
+    store: Store,
+    span: slice,
+    latitude: np.ndarray,
+    feature_ids: list[str],
+    properties: list[dict | None],
+    jobs: list[BatchJob],
+    by_id: pd.DataFrame,
+) -> list[tuple[pd.DataFrame, list[dict[str, Any]]]]:
+    """The last task of a batch with events or variants: the daily means -> each job's rows and warnings."""
+    daily = batch_daily(arrays, store, span, latitude)
+    out = []
+    for job in jobs:
+        if job.events is not None and job.daily_rows is not None:
+            events = np.arange(job.daily_rows.size)
+            table = compute_event_table(daily, job.daily_rows, events, feature_ids, job.events)
+            frame, warnings = table.frame, table.warnings
+        elif job.resolved is not None:
+            made = compute_table(daily, feature_ids, properties, job.resolved)
+            frame, warnings = made.frame, made.warnings
+        else:
+            raise RuntimeError("a batch job needs a season request or events")
+        out.append((frame.merge(by_id, on="feature_id", how="left", sort=False), warnings))
+    return out
 
 
 # --- the runs -------------------------------------------------------------------------------------------------
@@ -793,36 +872,43 @@ def _event_batches(plan_rows: np.ndarray, weights: Weights, batch_size: int) -> 
     return [with_events[rows] for rows in feature_batches(subset, batch_size)]
 
 
-def _aggregate_batch(
-    store: Store,
-    weights: Weights,
-    rows: np.ndarray,
-    variables: tuple[str, ...],
-    span: slice,
-    settings: Settings,
-) -> tuple[Weights, DailySeries]:
-    """The weights of a feature batch and its computed daily series over ``span``."""
-    batch = take_weights(weights, rows)
-    # the indicators take tmean from tmax and tmin themselves (see run)
-    daily_lazy = aggregate(store, batch, variables=variables, time=span).drop_vars("tmean", errors="ignore")
-    (daily_ds,) = cluster.compute(daily_lazy, settings=settings)
-    return batch, _daily_series(daily_ds, store, span, np.asarray(batch.latitude))
+def _batch_events(resolved: ResolvedEvents, light: IndicatorRequest, events: np.ndarray) -> ResolvedEvents:
+    """What a batch task needs of a resolution: the plan of the events ``events`` alone and the request
+    ``light`` (without features and events), so that no task carries every event and community."""
+    plan = resolved.plan
+    own = replace(
+        plan,
+        event_ids=plan.event_ids[events],
+        feature_rows=plan.feature_rows[events],
+        date_ordinals=plan.date_ordinals[events],
+        range_of=plan.range_of[events],
+        window_year=plan.window_year[events],
+    )
+    return ResolvedEvents(request=light, plan=own, groups=resolved.groups)
 
 
-def _event_table(
-    resolved: ResolvedEvents, daily: DailySeries, batch: Weights, rows: np.ndarray, n_features: int
-) -> tuple[Any, np.ndarray] | None:
-    """The event table of a feature batch and, per row, the index of its event (None: no event there)."""
+def _light_events_request(resolved: ResolvedEvents) -> IndicatorRequest:
+    """The resolved request without its features and events (a batch task's copy)."""
+    return _without_features(resolved.request).model_copy(update={"events": None})
+
+
+def _events_job(
+    resolved: ResolvedEvents, light: IndicatorRequest, rows: np.ndarray, n_features: int
+) -> tuple[BatchJob, np.ndarray]:
+    """The job of a feature batch's events and, per event of the batch, its index in the request."""
     plan = resolved.plan
     position = np.full(n_features, -1, dtype=np.int64)
     position[rows] = np.arange(rows.size)
     events = np.flatnonzero(position[plan.feature_rows] >= 0)
-    if not events.size:
-        return None
-    table = compute_event_table(
-        daily, position[plan.feature_rows[events]], events, list(batch.feature_ids), resolved
+    job = BatchJob(
+        events=_batch_events(resolved, light, events), daily_rows=position[plan.feature_rows[events]]
     )
-    return table, np.repeat(events, len(table.frame) // events.size)
+    return job, events
+
+
+def _row_order(frame: pd.DataFrame, events: np.ndarray) -> np.ndarray:
+    """The request index of each row of an event table (each event's rows come together)."""
+    return np.repeat(events, len(frame) // max(events.size, 1))
 
 
 def run_events(
@@ -851,27 +937,32 @@ def run_events(
     plan = resolved.plan
     variables = needed_variables(resolved.request)
     span = slice(0, int(store.dates.year.size))  # the plan is made on the whole record
-    batches = _event_batches(plan.feature_rows, weights, batch_size)
+    batches = _event_batches(plan.feature_rows, weights, batch_size_for(batch_size, span, variables))
     total = int(sum(b.size for b in batches))
-    frames: list[pd.DataFrame] = []
-    orders: list[np.ndarray] = []
-    warnings: list[dict[str, Any]] = []
+    light = _light_events_request(resolved)
+    events_of: dict[int, np.ndarray] = {}
+
+    def lazy() -> Iterator[tuple[int, Any]]:
+        for k, rows in enumerate(batches):
+            job, events_of[k] = _events_job(resolved, light, rows, len(weights.feature_ids))
+            yield k, lazy_batch_tables(store, weights, rows, [None] * rows.size, [job], span, variables)
+
+    parts: dict[int, tuple[pd.DataFrame, list[dict[str, Any]]]] = {}
     done = 0
     if progress is not None:
         progress(0, total)
-    for rows in batches:
-        if cancelled is not None and cancelled():
-            raise RunCancelledError(f"cancelled after {done} of {total} features")
-        batch, daily = _aggregate_batch(store, weights, rows, variables, span, settings)
-        made = _event_table(resolved, daily, batch, rows, len(weights.feature_ids))
-        if made is not None:
-            table, order = made
-            frames.append(_feature_columns(table.frame, weights, rows))
-            orders.append(order)
-            warnings.extend(table.warnings)
-        done += rows.size
+    # as run: each batch's aggregation and its event table run where the chunks are read; only the table
+    # comes back, batches finish in any order and are put in order below
+    for k, (part,) in cluster.compute_each(lazy(), settings=settings, cancelled=cancelled):
+        parts[k] = part
+        done += batches[k].size
         if progress is not None:
             progress(done, total)
+    if len(parts) < len(batches):
+        raise RunCancelledError(f"cancelled after {done} of {total} features")
+    frames = [parts[k][0] for k in range(len(batches))]
+    orders = [_row_order(parts[k][0], events_of[k]) for k in range(len(batches))]
+    warnings = [w for k in range(len(batches)) for w in parts[k][1]]
     frame = pd.concat(frames, ignore_index=True)
     frame = frame.iloc[np.argsort(np.concatenate(orders), kind="stable")].reset_index(drop=True)
     warnings = _warnings_in_order(warnings, weights.feature_ids)
@@ -1080,21 +1171,127 @@ def run_variants(
     work = []
     for members in groups.values():
         group_weights = weights[members[0].weights_key][0]
-        work.append((members, group_weights, _variant_batches(members, group_weights, batch_size)))
-    total = int(sum(rows.size for _, _, batches in work for rows in batches))
-    done = 0
+        span, variables = _group_span(members)
+        size = batch_size_for(batch_size, span, variables)
+        work.append((members, group_weights, span, variables, _variant_batches(members, group_weights, size)))
+    total = int(sum(rows.size for *_, batches in work for rows in batches))
+    count = [0]
+
+    def step(features: int) -> None:
+        count[0] += features
+        if progress is not None:
+            progress(count[0], total)
+
     if progress is not None:
         progress(0, total)
     properties = [f.properties for f in parsed.features]
-    for members, group_weights, batches in work:
-        for rows in batches:
-            if cancelled is not None and cancelled():
-                raise RunCancelledError(f"cancelled after {done} of {total} feature computations")
-            _variant_batch(members, group_weights, rows, properties, settings)
-            done += rows.size
-            if progress is not None:
-                progress(done, total)
+    for members, group_weights, span, variables, batches in work:
+        if members[0].final.aggregation == "cells":
+            _cells_variants(members, group_weights, batches, properties, span, settings, cancelled, step)
+        else:
+            _shared_variants(
+                members, group_weights, batches, properties, span, variables, settings, cancelled, step
+            )
+        if cancelled is not None and cancelled():
+            raise RunCancelledError(f"cancelled after {count[0]} of {total} feature computations")
     return _combine_variants(request, runs, parsed, store)
+
+
+def _group_span(members: list[_VariantRun]) -> tuple[slice, tuple[str, ...]]:
+    """The days and variables that a group of variants sharing one aggregation reads (the union of theirs)."""
+    store = members[0].store
+    used = {v for m in members for v in needed_variables(m.final)}
+    variables = tuple(v for v in VARIABLES if v in used)
+    if members[0].events is not None:
+        return slice(0, int(store.dates.year.size)), variables
+    last_year = max(
+        max(m.final.years.end, getattr(m.final.baseline, "end", m.final.years.end))  # type: ignore[union-attr]
+        for m in members
+    )
+    return time_span(store, last_year), variables
+
+
+def _shared_variants(
+    members: list[_VariantRun],
+    weights: Weights,
+    batches: list[np.ndarray],
+    properties: list[dict | None],
+    span: slice,
+    variables: tuple[str, ...],
+    settings: Settings,
+    cancelled: Cancelled | None,
+    step: Callable[[int], None],
+) -> None:
+    """Each feature batch aggregated once, every member variant's table computed from it in the batch's
+    last task (where the chunks are read: threads or the cluster's workers); only the tables come back."""
+    store = members[0].store
+    n_features = len(weights.feature_ids)
+    lights = [
+        _light_events_request(m.events) if m.events is not None else _without_features(m.final)
+        for m in members
+    ]
+    events_of: dict[int, list[np.ndarray | None]] = {}
+
+    def lazy() -> Iterator[tuple[int, Any]]:
+        for k, rows in enumerate(batches):
+            jobs, events_of[k] = [], []
+            for m, light in zip(members, lights, strict=True):
+                if m.events is not None:
+                    job, events = _events_job(m.events, light, rows, n_features)
+                    jobs.append(job)
+                    events_of[k].append(events)
+                else:
+                    jobs.append(BatchJob(resolved=light))
+                    events_of[k].append(None)
+            batch_properties = [properties[i] for i in rows]
+            yield k, lazy_batch_tables(store, weights, rows, batch_properties, jobs, span, variables)
+
+    parts: dict[int, list[tuple[pd.DataFrame, list[dict[str, Any]]]]] = {}
+    for k, tables in cluster.compute_each(lazy(), settings=settings, cancelled=cancelled):
+        parts[k] = tables
+        step(batches[k].size)
+    if len(parts) < len(batches):
+        return  # cancelled: the caller says so
+    for k in range(len(batches)):
+        for i, (m, (frame, warnings)) in enumerate(zip(members, parts[k], strict=True)):
+            events = events_of[k][i]
+            if events is not None:
+                m.orders.append(_row_order(frame, events))
+            m.frames.append(frame)
+            m.warnings.extend(warnings)
+
+
+def _cells_variants(
+    members: list[_VariantRun],
+    weights: Weights,
+    batches: list[np.ndarray],
+    properties: list[dict | None],
+    span: slice,
+    settings: Settings,
+    cancelled: Cancelled | None,
+    step: Callable[[int], None],
+) -> None:
+    """Variants of aggregation "cells" (season requests): each member's cell tables, batch after batch (as
+    run's "cells"; the cells' own series are read per member, as a separate request would read them)."""
+    store = members[0].store
+    for rows in batches:
+        batch = take_weights(weights, rows)
+        for m in members:
+            if cancelled is not None and cancelled():
+                return
+            resolved = m.final
+            table = cells_table(
+                store,
+                batch,
+                [properties[i] for i in rows],
+                resolved,
+                span,
+                needed_variables(resolved),
+                settings,
+            )
+            m.frames.append(_feature_columns(table.frame, weights, rows))
+            m.warnings.extend(table.warnings)
+        step(rows.size)
 
 
 def _variant_batches(members: list[_VariantRun], weights: Weights, batch_size: int) -> list[np.ndarray]:
@@ -1102,39 +1299,6 @@ def _variant_batches(members: list[_VariantRun], weights: Weights, batch_size: i
     if members[0].events is not None:  # variants cannot add or drop events: all of them have events, or none
         return _event_batches(members[0].events.plan.feature_rows, weights, batch_size)
     return feature_batches(weights, batch_size)
-
-
-def _variant_batch(
-    members: list[_VariantRun],
-    weights: Weights,
-    rows: np.ndarray,
-    properties: list[dict | None],
-    settings: Settings,
-) -> None:
-    """Aggregate one feature batch once, then compute every member variant's table from it."""
-    store = members[0].store
-    used = {v for m in members for v in needed_variables(m.final)}
-    variables = tuple(v for v in VARIABLES if v in used)
-    if members[0].events is not None:
-        span = slice(0, int(store.dates.year.size))
-    else:
-        last_year = max(
-            max(m.final.years.end, getattr(m.final.baseline, "end", m.final.years.end))  # type: ignore[union-attr]
-            for m in members
-        )
-        span = time_span(store, last_year)
-    batch, daily = _aggregate_batch(store, weights, rows, variables, span, settings)
-    for m in members:
-        if m.events is not None:
-            made = _event_table(m.events, daily, batch, rows, len(weights.feature_ids))
-            if made is None:
-                continue
-            table, order = made
-            m.orders.append(order)
-        else:
-            table = compute_table(daily, list(batch.feature_ids), [properties[i] for i in rows], m.final)
-        m.frames.append(_feature_columns(table.frame, weights, rows))
-        m.warnings.extend(table.warnings)
 
 
 def _variant_frame(run_: _VariantRun, parsed: ParsedFeatures) -> tuple[pd.DataFrame, list[dict[str, Any]]]:

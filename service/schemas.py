@@ -574,6 +574,7 @@ class Variant(_Model):
     classes: Classes | None = None
     indicators: list[IndicatorChoice] | None = Field(default=None, min_length=1)
     weighting: Weighting | None = None
+    aggregation: Literal["series", "cells"] | None = None
     partial_seasons: Literal["scale", "null", "as_is"] | None = None
     max_missing_share: Number | None = Field(default=None, ge=0.0, le=1.0)
 
@@ -707,7 +708,8 @@ class IndicatorRequest(_FeatureRequest):
         min_length=1,
         max_length=20,
         description="Named specifications computed in one request: each overrides some of dataset, baseline, "
-        "season, classes, indicators, weighting, partial_seasons, max_missing_share. The result holds every "
+        "season, classes, indicators, weighting, aggregation, partial_seasons, max_missing_share. The result "
+        "holds every "
         "variant (a 'variant' column in the long layout, '<variant>__' column prefixes in the wide one).",
     )
     lag_values: StrictBool = Field(
@@ -765,6 +767,14 @@ class IndicatorRequest(_FeatureRequest):
                     'events need "windows", e.g. [{"name": "prior_year", "start": {"months": -12}, '
                     '"end": {"days": -1}}]',
                 )
+            if self.aggregation == "cells":
+                raise _field_error(
+                    "IndicatorRequest",
+                    ("aggregation",),
+                    "aggregation 'cells' is not available with 'events': event windows are computed on each "
+                    "community's mean daily series; drop 'aggregation' (or give \"series\")",
+                    "cells",
+                )
             for name in ("years", "season"):
                 if name in given:
                     raise _field_error(
@@ -797,6 +807,14 @@ class IndicatorRequest(_FeatureRequest):
                     "IndicatorRequest", (field,), f"{field[:-1]} names {dupes!r} are used more than once"
                 )
         for i, variant in enumerate(self.variants or []):
+            if self.events is not None and variant.aggregation == "cells":
+                raise _field_error(
+                    "IndicatorRequest",
+                    ("variants", i, "aggregation"),
+                    f"variant {variant.name!r} gives aggregation 'cells', but the request has events (whose "
+                    f"windows are computed on each community's mean daily series); drop its 'aggregation'",
+                    "cells",
+                )
             if self.events is not None and "season" in variant.model_fields_set:
                 raise _field_error(
                     "IndicatorRequest",

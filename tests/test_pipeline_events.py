@@ -22,6 +22,9 @@ from service.pipeline import run, run_series
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
 from service.store import open_store, write_store
+from tests import _support_cluster as support
+
+dask_cluster = support.dask_cluster  # the session fixture, used by name below
 
 PRIOR_YEAR = {"name": "prior_year", "start": {"months": -12}, "end": {"days": -1}}
 TRIMESTER_3 = {"name": "tri3", "start": {"days": -91}, "end": {"days": -1}}
@@ -373,3 +376,66 @@ def test_lag_values_of_seasons(store, settings, few) -> None:
     assert "value_lag3" in long.columns
     one = long[(long["indicator"] == "tmean") & (long["year"] == 2000)].iloc[0]
     assert one["value_lag3"] == value[(one["feature_id"], 1997)]
+
+
+def test_variant_with_aggregation_cells_equals_the_request_alone(store, settings, few) -> None:
+    variants = [{"name": "series"}, {"name": "cells", "aggregation": "cells"}]
+    combined = run(
+        _season_request(few, variants=variants, years={"start": 2000, "end": 2004}), store, settings
+    )
+    alone = run(
+        _season_request(few, aggregation="cells", years={"start": 2000, "end": 2004}), store, settings
+    ).frame
+    frame = combined.frame
+    assert frame["cells__tmean"].tolist() == alone["tmean"].tolist()
+    assert frame["cells__prcp_total_z"].tolist() == alone["prcp_total_z"].tolist()
+    series = run(_season_request(few, years={"start": 2000, "end": 2004}), store, settings).frame
+    assert frame["series__tmean"].tolist() == series["tmean"].tolist()
+    entries = {e["name"]: e for e in combined.provenance["variants"]}
+    assert entries["cells"]["request"]["aggregation"] == "cells"
+
+
+def test_events_refuse_aggregation_cells(few) -> None:
+    with pytest.raises(RequestError, match="aggregation 'cells' is not available with 'events'"):
+        _request(few, aggregation="cells")
+    with pytest.raises(RequestError, match="variant 'c' gives aggregation 'cells'"):
+        _request(few, variants=[{"name": "c", "aggregation": "cells"}])
+
+
+# --- on a dask cluster: the batch path (one graph per feature batch, only its tables come back) -----------------
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+def test_events_and_variants_on_the_cluster_send_tables_and_give_the_same_rows(
+    store, few, tiny_communities, dask_cluster
+) -> None:
+    """Events and variants run as one graph per feature batch on the workers, like the season batch: the
+    server gets one table task back per batch (no daily series), and the rows are the threaded run's."""
+    from distributed import Client
+
+    dask_cluster.ensure_workers()
+    remote = Settings(scheduler=dask_cluster.address)
+    local = Settings(threads=2, scheduler=None)
+    some = {**tiny_communities, "features": tiny_communities["features"][:12]}
+    bodies = [
+        _request(some),
+        _request(
+            some, variants=[{"name": "main"}, {"name": "recent", "baseline": {"start": 1991, "end": 2020}}]
+        ),
+        _season_request(some, variants=VARIANTS),
+    ]
+    with Client(dask_cluster.address, set_as_default=False) as observer:
+        workers = set(observer.scheduler_info(n_workers=-1)["workers"])
+
+        def sent() -> list[str]:
+            logs = observer.run(lambda dask_worker: list(dask_worker.transfer_outgoing_log))
+            return [k for log in logs.values() for e in log if e.get("who") not in workers for k in e["keys"]]
+
+        for body in bodies:
+            before = len(sent())
+            on_cluster = run(body, store, remote, batch_size=5)
+            keys = sent()[before:]
+            on_threads = run(body, store, local, batch_size=5)
+            assert on_cluster.frame.equals(on_threads.frame)
+            assert len(keys) == 3 and all(str(k).startswith("wxshock-table-") for k in keys), keys
