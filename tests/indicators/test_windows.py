@@ -468,3 +468,26 @@ def test_every_kernel_equals_the_indicator_on_cubes(calendar: str, policy: str) 
                 fast.flags[p.column][code], slow.flags[p.column][code], err_msg=f"{p.column} {code}"
             )
     assert np.isfinite(fast.values["tmean"][~served]).any()  # the partial window at the record's start
+
+
+def test_the_methods_page_states_the_window_rule() -> None:
+    from pathlib import Path
+
+    text = (Path(__file__).parents[2] / "docs" / "methods.md").read_text(encoding="utf-8")
+    section = text.split("## 6. Event windows", 1)[1].split("\n## ", 1)[0]
+    for part in (
+        "same calendar days",
+        "29 February",
+        "starts on the next day (1 March)",
+        "ends on the day before (28 February)",
+        "1 March 2003 to 28 February 2004",
+        "`360_day`",
+        "`noleap`",
+        "crosses it\n  in every year",
+        "window-year",
+        '`{"trailing": N}`',
+        "Lag k is the same window k years earlier",
+        "`max_missing_share`",
+        '`"aggregation": "cells"` is refused',
+    ):
+        assert part in section, part

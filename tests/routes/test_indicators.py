@@ -160,3 +160,26 @@ def test_the_same_request_twice_gives_the_same_bytes(
         first = client.post("/v1/indicators", json=_body(tiny_communities, 2), params={"format": "json"})
         second = client.post("/v1/indicators", json=_body(tiny_communities, 2), params={"format": "json"})
     assert first.status_code == 200 and first.content == second.content
+
+
+def test_the_catalog_states_the_event_window_rule(live_server: server_support.LiveServer) -> None:
+    from service.indicators.windows.instances import WINDOW_RULE
+
+    with live_server.client() as client:
+        rule = client.get("/v1/indicators").json()["event_windows"]
+    assert rule == WINDOW_RULE
+    # the parts of the rule a reader needs: the same calendar days, 29 February, calendars, the new year,
+    # the baseline and lags (docs/methods.md, "Event windows", says the same; tests/indicators/test_windows.py)
+    for part in (
+        "same calendar days",
+        "29 February",
+        "1 March",
+        "28 February",
+        "noleap and 360_day",
+        "crossing the new year",
+        "window-year",
+        "trailing",
+        "Lag k is the same window k years earlier",
+        "max_missing_share",
+    ):
+        assert part in rule, part
