@@ -8,6 +8,7 @@ import subprocess
 import sys
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pytest
@@ -16,6 +17,7 @@ from service.cli import main as wxshock
 from service.client import Client, events_list
 from service.encode import read_parquet_provenance
 from service.errors import RequestError
+from tests._support_events import easternmost_community, west_communities, write_west_product
 from tests._support_server import live_server  # noqa: F401 - fixture
 
 EXAMPLES = Path(__file__).parents[1] / "examples"
@@ -186,3 +188,70 @@ def test_command_line_submit_with_an_events_file(
     assert "main__prior_year__prcp_total_z" in table.columns
     sidecar = json.loads(out.with_name(out.name + ".provenance.json").read_text())
     assert "main=demo@sha256:" in json.dumps(sidecar)
+
+
+# --- a variant naming another served dataset ----------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def two_products(tiny_demo: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Any, Path]]:
+    """A server serving the tiny demo ('demo') and a warmer western product ('west'), and west's path."""
+    from service.settings import Settings
+    from tests._support_server import thread_server
+
+    west = write_west_product(tmp_path_factory.mktemp("west") / "west.zarr")
+    settings = Settings(
+        stores=[str(tiny_demo), str(west)], data_dir=tmp_path_factory.mktemp("two-data"), threads=2
+    )
+    with thread_server(settings) as server:
+        yield server, west
+
+
+def test_a_variant_on_another_dataset_through_api_jobs_client_and_command(
+    two_products: tuple[Any, Path], tiny_demo: Path, tiny_communities: dict, tmp_path: Path
+) -> None:
+    """Events with a variant on another product: the API (on demand 'fail', jobs 'skip' for a community
+    outside that product's grid), the Python client and `wxshock compute --store A --store B` agree."""
+    server, west_path = two_products
+    inside = west_communities(tiny_communities, count=2)
+    outside = easternmost_community(tiny_communities)
+    some = {**inside, "features": [*inside["features"], outside]}
+    events = [
+        {"id": f"ev-{k}", "feature_id": str(f["id"]), "date": "2010-06-15"}
+        for k, f in enumerate(some["features"])
+    ]
+    variants = [{"name": "demo"}, {"name": "west", "dataset": "west"}]
+    body = {"features": some, "events": events, "variants": variants, **REQUEST}
+    with server.client() as http:  # on demand, invalid_features defaults to 'fail': one 422 names the variant
+        refused = http.post("/v1/indicators", json=body)
+    assert refused.status_code == 422, refused.text
+    assert "variant 'west'" in refused.json()["detail"] and str(outside["id"]) in refused.text
+    with Client(server.base_url) as client:
+        job = client.submit(some, events=events, variants=variants, **REQUEST)  # jobs skip by default
+        table = job.wait(progress=False).result()
+        alone = client.indicators(inside, events=events[:2], dataset="west", **REQUEST)
+    provenance = table.attrs["provenance"]
+    entries = {v["name"]: v for v in provenance["variants"]}
+    assert entries["west"]["dataset"] == "west" and entries["demo"]["dataset"] == "demo"
+    assert entries["west"]["fingerprint"] != entries["demo"]["fingerprint"]
+    skipped = entries["west"]["request"]["features"]["skipped"]
+    assert [s["feature_id"] for s in skipped] == [str(outside["id"])]
+    assert not entries["demo"]["request"]["features"]["skipped"]
+    last = table[table["event_id"] == "ev-2"].iloc[0]
+    assert pd.isna(last["west__prior_year__tmean"]) and pd.notna(last["demo__prior_year__tmean"])
+    assert last["west__notes"] == "feature_skipped"
+    first_two = table[table["event_id"].isin(["ev-0", "ev-1"])]
+    assert first_two["west__prior_year__tmean"].tolist() == alone["prior_year__tmean"].tolist()
+    assert (first_two["west__prior_year__tmean"] > first_two["demo__prior_year__tmean"]).all()  # warmer
+    # the command: one --store per dataset, the first the request's own
+    request = tmp_path / "request.json"
+    request.write_text(
+        json.dumps({"features": inside, "events": events[:2], "variants": variants, **REQUEST}),
+        encoding="utf-8",
+    )
+    out = tmp_path / "sweep.parquet"
+    command = ["compute", "--store", str(tiny_demo), "--store", str(west_path), "--request", str(request)]
+    assert wxshock([*command, "--out", str(out), "--quiet"]) == 0
+    from_command = pd.read_parquet(out)
+    assert from_command["west__prior_year__tmean"].tolist() == alone["prior_year__tmean"].tolist()
+    assert from_command["demo__tri3__prcp_total"].tolist() == first_two["demo__tri3__prcp_total"].tolist()

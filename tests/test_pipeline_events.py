@@ -21,8 +21,9 @@ from service.errors import RequestError
 from service.pipeline import run, run_series
 from service.schemas import IndicatorRequest, SeriesRequest, validate_request
 from service.settings import Settings
-from service.store import open_store, write_store
+from service.store import open_store
 from tests import _support_cluster as support
+from tests._support_events import west_communities, write_west_product
 
 dask_cluster = support.dask_cluster  # the session fixture, used by name below
 
@@ -290,32 +291,12 @@ def test_event_variants_with_a_weighting_of_their_own(store, settings, few) -> N
 @pytest.fixture(scope="module")
 def second_product(tmp_path_factory: pytest.TempPathFactory, tiny_demo: Path):
     """Another invented product over the western part of the demo region only, 0.5 degC warmer."""
-    import xarray as xr
-
-    from service.demo import demo_dataset
-
-    ds = demo_dataset("tiny").isel(x=slice(0, 24))
-    ds = ds.assign(tmax=ds["tmax"] + np.float32(0.5), tmin=ds["tmin"] + np.float32(0.5))
-    assert isinstance(ds, xr.Dataset)
-    path = tmp_path_factory.mktemp("second") / "west.zarr"
-    write_store(ds, path)
+    path = write_west_product(tmp_path_factory.mktemp("second") / "west.zarr")
     return open_store(path, name="west")
 
 
-def _west(collection: dict, limit: float = -39.45) -> dict:
-    """The communities lying wholly west of ``limit`` (inside the second product's grid)."""
-
-    def xs(value: Any) -> list[float]:
-        if isinstance(value[0], int | float):
-            return [float(value[0])]
-        return [x for item in value for x in xs(item)]
-
-    inside = [f for f in collection["features"] if max(xs(f["geometry"]["coordinates"])) < limit]
-    return {**collection, "features": inside[:3]}
-
-
 def test_variant_on_another_dataset(store, second_product, settings, tiny_communities) -> None:
-    west = _west(tiny_communities)
+    west = west_communities(tiny_communities)
     assert west["features"]
     stores = {"demo": store, "west": second_product}
     body = _season_request(west, variants=[{"name": "demo"}, {"name": "west", "dataset": "west"}])
