@@ -39,8 +39,10 @@ from pathlib import Path
 from typing import Any
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
-sys.path.insert(0, str(ROOT / "bench"))
+# The code measured: this checkout, or (--old-code) another one, e.g. a worktree of the commit before issue 15.
+CODE = Path(os.environ.get("WXSHOCK_BENCH_CODE") or ROOT)
+sys.path.insert(0, str(CODE))
+sys.path.insert(0, str(CODE / "bench"))
 
 OUT = ROOT / "bench" / "out"
 RESULTS = ROOT / "bench" / "RESULTS.md"
@@ -379,9 +381,9 @@ PHASES = {
 }
 
 
-def run_phase(name: str, argv: list[str]) -> dict[str, Any]:
-    """One phase in a fresh process; its JSON result."""
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
+def run_phase(name: str, argv: list[str], code: Path = ROOT) -> dict[str, Any]:
+    """One phase in a fresh process, on the code of checkout ``code``; its JSON result."""
+    env = dict(os.environ, PYTHONPATH=str(code), WXSHOCK_BENCH_CODE=str(code))
     done = subprocess.run(
         [sys.executable, __file__, "--phase", name, *argv],
         capture_output=True,
@@ -401,6 +403,11 @@ def main() -> int:
     parser.add_argument("--store", default=str(DEFAULT_STORE))
     parser.add_argument(
         "--old-store", help="the same data on the previous layout (its batch time is shown beside)"
+    )
+    parser.add_argument(
+        "--old-code",
+        help="a checkout of the code before (e.g. `git worktree add /tmp/wx-c6fa956 c6fa956`): its batch time "
+        "and its cluster bytes are measured in the same run, beside this code's",
     )
     parser.add_argument("--features", type=int, default=5000)
     parser.add_argument("--cluster-features", type=int, default=500)
@@ -426,6 +433,13 @@ def main() -> int:
         print(f"[{time.strftime('%H:%M:%S')}] {name} (load {load():.1f}) ...", file=sys.stderr, flush=True)
         results[name] = run_phase(name, argv)
         print(json.dumps(results[name], default=str), file=sys.stderr, flush=True)
+    if args.old_code:
+        for name in ("batch", "cluster"):
+            if name in args.only:
+                print(f"[{time.strftime('%H:%M:%S')}] {name} on {args.old_code} (load {load():.1f}) ...",
+                      file=sys.stderr, flush=True)  # fmt: skip
+                results[f"{name}_old_code"] = run_phase(name, argv, Path(args.old_code))
+                print(json.dumps(results[f"{name}_old_code"], default=str), file=sys.stderr, flush=True)
     if args.old_store and "batch" in args.only:
         old_argv = [*argv]
         old_argv[old_argv.index("--store") + 1] = args.old_store
@@ -468,6 +482,12 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"{batch['wall_s']:.2f} | {batch['cpu_s']:.2f} | {batch['load']:.1f} | {batch['rows']:,} rows x "
             f"{batch['columns']} columns, {batch['chunk_reads']} chunk reads, peak RSS {batch['peak_mb']:,.0f} MB |"
         )
+    before = results.get("batch_old_code")
+    if before:
+        lines.append(
+            f"| the same batch on the code before issue 15 (`{args.old_code}`) | {before['wall_s']:.2f} | "
+            f"{before['cpu_s']:.2f} | {before['load']:.1f} | peak RSS {before['peak_mb']:,.0f} MB |"
+        )
     old = results.get("batch_old_layout")
     if old:
         lines.append(
@@ -478,7 +498,13 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
         lines += [
             "",
             f"**batch / raw decode: {batch['wall_s'] / decode['wall_s']:.1f} in wall time, "
-            f"{batch['cpu_s'] / decode['cpu_s']:.1f} in CPU time** (target <= 4).",
+            f"{batch['cpu_s'] / decode['cpu_s']:.1f} in CPU time** (target <= 4)"
+            + (
+                f"; the code before: {before['wall_s'] / decode['wall_s']:.1f} in wall time, "
+                f"{before['cpu_s'] / decode['cpu_s']:.1f} in CPU time."
+                if before
+                else "."
+            ),
         ]
     costs = results.get("costs")
     if costs:
@@ -509,6 +535,14 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"each batch's daily series, **{cl['series_bytes_per_feature'] / 1024:.0f} kB per feature** (measured "
             f"in the same run from the workers' transfer logs). Run with tables on the workers "
             f"{cl['run_wall_s']:.1f} s; the aggregation alone, series gathered, {cl['aggregation_only_wall_s']:.1f} s.",
+        ]
+    cl_old = results.get("cluster_old_code")
+    if cl_old:
+        lines += [
+            "",
+            f"The code before issue 15 (`{args.old_code}`), same cluster, same villages (load {cl_old['load']:.1f}): "
+            f"the server received **{cl_old['table_bytes_per_feature'] / 1024:.0f} kB per feature** during "
+            f"`pipeline.run` (the daily series; it computed the tables itself); run {cl_old['run_wall_s']:.1f} s.",
         ]
     lines += ["", END]
     return "\n".join(lines)

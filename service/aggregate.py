@@ -29,9 +29,10 @@ if TYPE_CHECKING:
     from service.store import Store
 
 VARIABLE_UNITS = {"tmax": "degC", "tmin": "degC", "prcp": "mm/day", "tmean": "degC"}
-# Partial sums combined per reduction step: few levels (each level copies the partial sums once),
-# while no step holds more than this many partials at a time.
-REDUCTION_FAN_IN = 8
+# Partial sums combined per reduction step: few levels (each level copies the partial sums into fresh memory
+# once), while no step holds more than this many partials at a time. 32: a 1,000-feature batch of the large
+# demo touches about 20 spatial chunks, so its partials go straight to ``finish`` (bench/RESULTS.md, "Scale").
+REDUCTION_FAN_IN = 32
 # A day's mean is missing when the weight of its cells with data is below this share of the feature's
 # total weight (guards a denominator that is zero up to rounding).
 MIN_WEIGHT_SHARE = 1e-9
@@ -219,13 +220,19 @@ def combine(partials: Sequence[Partial]) -> Partial:
     return Partial(rows, weighted_sum, total, correction)
 
 
-def finish(partials: Sequence[Partial], n_features: int, days: int, add_offset: float) -> np.ndarray:
+def finish(
+    partials: Sequence[Partial], n_features: int, days: int, add_offset: float, out: np.ndarray | None = None
+) -> np.ndarray:
     """(feature, day) means in the variable's units from the last partial sums; NaN where no weight.
 
     The last reduction step and the division share one (feature, day) array: fresh memory is the costly
-    part of this step (page faults), so it is allocated once.
+    part of this step (page faults), so it is allocated once. ``out``, when given, is that array (it may be a
+    view, e.g. one time block of a longer series) and is overwritten.
     """
-    out = np.zeros((n_features, days))
+    if out is None:
+        out = np.zeros((n_features, days))
+    else:
+        out[...] = 0.0
     total = np.zeros(n_features)
     correction = None
     for p in partials:
@@ -294,48 +301,13 @@ def aggregate(
     first = weights.first if isinstance(weights, GridWeights) else weights
     weights_key = weights.key
     n_features = len(first.feature_ids)
-    unknown = [v for v in variables if v not in store.variables]
-    if unknown:
-        raise RequestError(
-            f"dataset {store.name!r} has no variable {unknown[0]!r}; it has {list(store.variables)!r}",
-            field="variables",
-        )
-    if not isinstance(weights, GridWeights):
-        names = list(dict.fromkeys(store.grid_of(v) for v in variables))
-        if len(names) > 1:
-            raise ValueError(
-                f"variables {list(variables)!r} lie on grids {names!r} of dataset {store.name!r}; give "
-                "GridWeights with the weights of each grid"
-            )
     start, stop = _time_range(time, store.n_times)
-    token = dask.base.tokenize(weights_key, store.location, store.fingerprint, start, stop)
-    plans: dict[tuple[str, int, int], list[ChunkWeights]] = {}
+    graphs = _partial_graphs(store, weights, variables, start, stop)
     arrays: dict[str, da.Array] = {}
     for var in variables:
-        grid = store.grid_of(var)
-        on_grid = weights_on(weights, grid)
-        ny, nx = store.grids[grid].shape
-        if on_grid.matrix.shape != (n_features, ny * nx):
-            raise ValueError(
-                f"weights of shape {on_grid.matrix.shape} do not fit store {store.name!r}: its grid {grid!r} has "
-                f"{ny} x {nx} cells"
-            )
-        cy, cx, ct = store.chunk_shape_of(var)
-        plan = plans.get((grid, cy, cx))
-        if plan is None:
-            plan = plans[(grid, cy, cx)] = chunk_weights(on_grid, (ny, nx), (cy, cx))
-        blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
+        dsk, name, blocks, lasts = graphs[var]
         enc = store.encoding(var)
-        name = f"wxshock-{var}-{token}"
-        # A hand-built graph: dask.delayed would walk every argument (the weights) for each of the tasks.
-        dsk: dict[Any, Any] = {}
-        for b, (t0, t1) in enumerate(blocks):
-            leaves = []
-            for k, chunk in enumerate(plan):
-                key = (f"{name}-chunk", b, k)
-                dsk[key] = (chunk_sums, store, var, chunk, slice(t0, t1), enc.scale_factor, enc.fill_value)
-                leaves.append(key)
-            last = _tree(dsk, leaves, f"{name}-{b}")
+        for b, ((t0, t1), last) in enumerate(zip(blocks, lasts, strict=True)):
             dsk[(name, 0, b)] = (finish, last, n_features, t1 - t0, enc.add_offset)
         if blocks:
             graph = HighLevelGraph.from_collections(name, dsk, dependencies=())
@@ -373,6 +345,100 @@ def aggregate(
         }
     )
     return ds
+
+
+def _partial_graphs(
+    store: Store, weights: Weights | GridWeights, variables: Sequence[str], start: int, stop: int
+) -> dict[str, tuple[dict[Any, Any], str, list[tuple[int, int]], list[list[Any]]]]:
+    """The chunk tasks and reduction tree of each variable, on its own grid: {var: (graph, name, time blocks,
+    the last keys of each block)}; the last keys of a block are the partial sums ``finish`` takes."""
+    first = weights.first if isinstance(weights, GridWeights) else weights
+    n_features = len(first.feature_ids)
+    unknown = [v for v in variables if v not in store.variables]
+    if unknown:
+        raise RequestError(
+            f"dataset {store.name!r} has no variable {unknown[0]!r}; it has {list(store.variables)!r}",
+            field="variables",
+        )
+    if not isinstance(weights, GridWeights):
+        names = list(dict.fromkeys(store.grid_of(v) for v in variables))
+        if len(names) > 1:
+            raise ValueError(
+                f"variables {list(variables)!r} lie on grids {names!r} of dataset {store.name!r}; give "
+                "GridWeights with the weights of each grid"
+            )
+    token = dask.base.tokenize(weights.key, store.location, store.fingerprint, start, stop)
+    plans: dict[tuple[str, int, int], list[ChunkWeights]] = {}
+    graphs = {}
+    for var in variables:
+        grid = store.grid_of(var)
+        on_grid = weights_on(weights, grid)
+        ny, nx = store.grids[grid].shape
+        if on_grid.matrix.shape != (n_features, ny * nx):
+            raise ValueError(
+                f"weights of shape {on_grid.matrix.shape} do not fit store {store.name!r}: its grid {grid!r} has "
+                f"{ny} x {nx} cells"
+            )
+        cy, cx, ct = store.chunk_shape_of(var)
+        plan = plans.get((grid, cy, cx))
+        if plan is None:
+            plan = plans[(grid, cy, cx)] = chunk_weights(on_grid, (ny, nx), (cy, cx))
+        blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
+        enc = store.encoding(var)
+        name = f"wxshock-{var}-{token}"
+        # A hand-built graph: dask.delayed would walk every argument (the weights) for each of the tasks.
+        dsk: dict[Any, Any] = {}
+        lasts = []
+        for b, (t0, t1) in enumerate(blocks):
+            leaves = []
+            for k, chunk in enumerate(plan):
+                key = (f"{name}-chunk", b, k)
+                dsk[key] = (chunk_sums, store, var, chunk, slice(t0, t1), enc.scale_factor, enc.fill_value)
+                leaves.append(key)
+            lasts.append(_tree(dsk, leaves, f"{name}-{b}"))
+        graphs[var] = (dsk, name, blocks, lasts)
+    return graphs
+
+
+def finish_series(
+    lasts: Sequence[Sequence[Partial]], blocks: Sequence[tuple[int, int]], n_features: int, add_offset: float
+) -> np.ndarray:
+    """(feature, day) means over all the time blocks at once, from each block's last partial sums.
+
+    One array for the whole series, each block finished into its own columns: the same values as
+    ``finish`` per block joined along time, without a fresh array per block and the copy that joins them.
+    """
+    start = blocks[0][0] if blocks else 0
+    out = np.empty((n_features, (blocks[-1][1] - start) if blocks else 0))
+    for partials, (t0, t1) in zip(lasts, blocks, strict=True):
+        finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start])
+    return out
+
+
+def lazy_series(
+    store: Store, weights: Weights | GridWeights, *, variables: Sequence[str], time: slice = slice(None)
+) -> dict[str, Any]:
+    """Lazy daily weighted means per feature as one dask Delayed per variable: (feature, day) float64.
+
+    The values of :func:`aggregate`, bit for bit (same chunk tasks, same reduction), each variable's whole
+    series made by one task into one array: for a caller that wants the arrays, not an xarray Dataset.
+    """
+    from dask.delayed import Delayed
+
+    first = weights.first if isinstance(weights, GridWeights) else weights
+    n_features = len(first.feature_ids)
+    start, stop = _time_range(time, store.n_times)
+    graphs = _partial_graphs(store, weights, variables, start, stop)
+    series = {}
+    for var in variables:
+        dsk, name, blocks, lasts = graphs[var]
+        key = f"{name}-series"
+        if blocks:
+            dsk[key] = (finish_series, lasts, blocks, n_features, store.encoding(var).add_offset)
+        else:
+            dsk[key] = (np.zeros, (n_features, 0))
+        series[var] = Delayed(key, HighLevelGraph.from_collections(key, dsk, dependencies=()))
+    return series
 
 
 def _block_starts(start: int, stop: int, ct: int) -> list[int]:

@@ -22,7 +22,7 @@ import pyproj
 from scipy import sparse
 
 from service import __version__, cluster, request_text
-from service.aggregate import GridWeights, aggregate, weights_on
+from service.aggregate import GridWeights, aggregate, lazy_series, weights_on
 from service.encode import RunResult
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import (
@@ -434,8 +434,8 @@ def lazy_batch_table(
     import dask
 
     batch = take_weights(weights, rows)
-    daily = aggregate(store, batch, variables=variables, time=span)
-    arrays = {v: daily[v].data for v in variables}
+    # one task per variable finishes its whole series into one array (no per-block arrays joined by dask)
+    arrays = lazy_series(store, batch, variables=variables, time=span)
     by_id = _feature_frame(batch, np.arange(len(rows)))
     # a key of its own: two runs with the same features but other indicators must not share a table
     token = f"wxshock-table-{uuid.uuid4().hex}"
