@@ -411,6 +411,64 @@ def run_with_pipeline(
     return encode.encode(result, fmt)
 
 
+def run_to_file(
+    request: IndicatorRequest,
+    registry: StoreRegistry,
+    settings: Settings,
+    fmt: str,
+    path: Path,
+    *,
+    progress: Callable[[int, int], None],
+    cancelled: Callable[[], bool],
+    prepared: Prepared | None = None,
+) -> tuple[int, str, dict[str, str]] | None:
+    """Compute a job's table batch by batch and write it to ``path`` as it comes: (bytes, media type,
+    headers), or None where the table is made whole (Stata, bundle, events, variants: run_with_pipeline).
+
+    Memory stays flat in the number of features: each batch's rows wait in a spill directory beside ``path``
+    until they are encoded in request order (pipeline.run_in_pieces, service.encode.stream). The bytes are
+    those of run_with_pipeline (JSON, CSV) or the same table in more row groups (Parquet).
+    """
+    import shutil
+
+    from service import pipeline
+    from service.encode import FORMATS, provenance_headers
+    from service.encode.stream import STREAMED_FORMATS, stream
+
+    if fmt not in STREAMED_FORMATS or request.variants or request.events is not None:
+        return None
+    store = registry.get_dataset(request.dataset)
+    spill = path.with_name(path.name + ".spill")
+    partial = path.with_name(path.name + ".partial")
+    try:
+        table = pipeline.run_in_pieces(
+            request,
+            store,
+            settings,
+            spill,
+            progress=progress,
+            cancelled=cancelled,
+            invalid_features=JOB_INVALID_FEATURES,
+            prepared=prepared,
+        )
+        if table is None:
+            return None
+        size = 0
+        with open(partial, "wb") as handle:
+            for data in stream(table.frames, table.columns, table.provenance, table.warnings, fmt):
+                handle.write(data)
+                size += len(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(partial, path)
+    except BaseException:
+        partial.unlink(missing_ok=True)
+        raise
+    finally:
+        shutil.rmtree(spill, ignore_errors=True)
+    return size, FORMATS[fmt], provenance_headers(table.provenance)
+
+
 # What a job does with a feature that cannot be computed when the request does not say (CONTRACTS.md): a
 # batch that loses 0.1 % of its features should not lose the other 99.9 %.
 JOB_INVALID_FEATURES = "skip"
@@ -785,21 +843,32 @@ class JobRunner:
             prepared = self._load_prepared(job.id)
             if prepared is not None:
                 kwargs["prepared"] = prepared
-            body, media_type, headers = self._run_job(
-                request, self.registry, self.settings, job.format, **kwargs
-            )
-            if cancelled_by_user():
-                raise RunCancelledError(f"job {job.id} was cancelled")
             name = f"{job.id}.{SUFFIXES[job.format]}"
-            result = self.results / name
-            write_atomically(result, body)
+            written = None
+            if self._run_job is run_with_pipeline:  # written batch by batch where the format allows
+                result = self.results / name
+                written = run_to_file(request, self.registry, self.settings, job.format, result, **kwargs)
+            if written is None:
+                result = None
+                body, media_type, headers = self._run_job(
+                    request, self.registry, self.settings, job.format, **kwargs
+                )
+                written = (len(body), media_type, headers)
+            size, media_type, headers = written
+            if cancelled_by_user():
+                if result is not None:  # written batch by batch before the cancel was seen
+                    result.unlink(missing_ok=True)
+                raise RunCancelledError(f"job {job.id} was cancelled")
+            if result is None:
+                result = self.results / name
+                write_atomically(result, body)
             end = _Unrecorded(
                 "succeeded", time.time(), result_file=name, media_type=media_type, headers=headers
             )
             if not self._finish(job.id, end):
                 result.unlink(missing_ok=True)
             else:
-                log.info("job %s: succeeded (%d bytes)", job.id, len(body))
+                log.info("job %s: succeeded (%d bytes)", job.id, size)
         except RunCancelledError:
             if self._stop.is_set():
                 log.info("job %s: interrupted by the server stopping; it will run again on start", job.id)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import io
 import json
 import threading
 import time
@@ -11,6 +12,9 @@ from pathlib import Path
 from typing import Any
 
 import httpx
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
 import pytest
 
 from service import encode, pipeline
@@ -30,6 +34,7 @@ from service.jobs import (
     Principal,
     feature_count,
     request_digest,
+    run_to_file,
     run_with_pipeline,
 )
 from service.registry import StoreRegistry
@@ -215,6 +220,42 @@ def test_a_job_gives_the_same_bytes_as_an_on_demand_run(runner: JobRunner, tiny_
     assert path.read_bytes() == expected
     assert finished.media_type == media_type and finished.headers == headers
     assert not list(runner.results.glob("*.partial"))
+
+
+def test_a_job_written_batch_by_batch_is_the_whole_table(
+    tiny_demo: Path, tmp_path: Path, tiny_communities: dict, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # batches of 2 features, pieces of 3: a piece gathers rows of several batches, a batch feeds several pieces
+    monkeypatch.setattr(pipeline, "batch_size_for", lambda *args: 2)
+    monkeypatch.setattr(pipeline, "PIECE_FEATURES", 3)
+    store = open_store(tiny_demo)
+    registry, settings = StoreRegistry({store.name: store}), Settings(data_dir=tmp_path)
+    request = _request(tiny_communities, 7)
+    weights = pipeline.prepare(request, store, settings).weights
+    batches = pipeline.feature_batches(weights, 2)
+    assert any(np.any(np.diff(np.sort(rows)) > 1) for rows in batches)  # batches are not request-order runs
+    whole = pipeline.run(request, store, settings, batch_size=2, invalid_features="skip")
+    done: list[tuple[int, int]] = []
+    for fmt in ("csv", "json", "parquet"):
+        path = tmp_path / f"table.{fmt}"
+        size, media_type, headers = run_to_file(
+            request,
+            registry,
+            settings,
+            fmt,
+            path,
+            progress=lambda d, t: done.append((d, t)),
+            cancelled=lambda: False,
+        )
+        expected, expected_type, expected_headers = encode.encode(whole, fmt)
+        assert size == path.stat().st_size and (media_type, headers) == (expected_type, expected_headers)
+        if fmt == "parquet":  # the same table and metadata, in more row groups
+            pd.testing.assert_frame_equal(pd.read_parquet(path), pd.read_parquet(io.BytesIO(expected)))
+            assert pq.read_schema(path).metadata == pq.read_schema(io.BytesIO(expected)).metadata
+        else:
+            assert path.read_bytes() == expected
+        assert not list(tmp_path.glob("*.spill")) and not list(tmp_path.glob("*.partial"))
+    assert done[-1] == (7, 7) and len(done) == 3 * (len(batches) + 1)  # progress per batch
 
 
 def test_a_repeated_submission_with_the_same_key_is_one_job(
