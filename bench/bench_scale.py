@@ -191,6 +191,9 @@ def phase_costs(args: argparse.Namespace) -> dict[str, Any]:
     from service.settings import Settings
     from service.store import open_store
 
+    from numcodecs import blosc
+
+    blosc.use_threads = False  # decoded in this thread, as the pipeline's task threads do: thread_time sees it all
     store = open_store(args.store)
     request = batch_request(polygons(store, args.features))
     resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
@@ -230,15 +233,31 @@ def phase_costs(args: argparse.Namespace) -> dict[str, Any]:
     nnz = statistics.median(c.matrix.nnz for c in picks)
     span = pipeline.time_span(store, resolved.years.end)
     variables = pipeline.needed_variables(resolved)
-    lazy = pipeline.lazy_batch_table(
-        store, weights, rows[:200], [None] * 200, pipeline._without_features(resolved), span, variables
-    )
     import dask
 
+    few = rows[:200]
+    lazy = pipeline.lazy_batch_table(
+        store, weights, few, [None] * len(few), pipeline._without_features(resolved), span, variables
+    )
     start = time.process_time()
     dask.compute(lazy, scheduler="sync")
     whole_ms = (time.process_time() - start) * 1000
+    # the table alone (snap, seasons, indicators, feature columns) from computed daily means, per feature
+    part = pipeline.take_weights(weights, few)
+    series = dask.compute(
+        aggregate.lazy_series(store, part, variables=variables, time=span), scheduler="sync"
+    )[0]
+    by_id = pipeline._feature_frame(part, np.arange(len(few)))
+    tables = []
+    for _ in range(3):
+        arrays = {v: a.copy() for v, a in series.items()}
+        start = time.process_time()
+        pipeline.batch_table(arrays, store, span, np.asarray(part.latitude), list(part.feature_ids),
+                             [None] * len(few), pipeline._without_features(resolved), by_id)  # fmt: skip
+        tables.append((time.process_time() - start) * 1000 / len(few))
     return {
+        "table_ms_per_feature": min(tables),
+        "years": len(range(store.dates.year[span.start], store.dates.year[span.stop - 1] + 1)),
         "chunk_cells": int(np.prod(store.chunk_shape[:2])),
         "chunk_days": ct,
         "read_decode_ms": read_ms,
@@ -270,27 +289,34 @@ def phase_latency(args: argparse.Namespace) -> dict[str, Any]:
                 best = (feature, cells)
         feature, cells = best
         request = validate_request(IndicatorRequest, {"features": feature})
-        for _ in range(5):
-            pipeline.run(request, store, settings)
-        times, cpus = [], []
-        for _ in range(args.requests):
-            start, cpu = time.perf_counter(), time.process_time()
-            result = pipeline.run(request, store, settings)
-            encode(result, "json")
-            times.append((time.perf_counter() - start) * 1000)
-            cpus.append((time.process_time() - cpu) * 1000)
         import numpy as np
 
-        out[str(location)] = {
-            "community": feature.get("id"),
-            "cells": cells,
-            "rows": len(result.frame),
-            "p50_ms": float(np.percentile(times, 50)),
-            "p95_ms": float(np.percentile(times, 95)),
-            "cpu_ms_median": statistics.median(cpus),
-            "chunks": describe_chunks(store),
-            "load": load(),
-        }
+        from service.store.chunks import configure_tile_cache, tile_cache
+
+        # without the decoded-tile cache (every request decodes its chunks), then with the server's default
+        for cache_mb in (0, Settings().tile_cache_mb):
+            configure_tile_cache(cache_mb << 20)
+            for _ in range(5):
+                pipeline.run(request, store, settings)
+            times, cpus = [], []
+            for _ in range(args.requests):
+                start, cpu = time.perf_counter(), time.process_time()
+                result = pipeline.run(request, store, settings)
+                encode(result, "json")
+                times.append((time.perf_counter() - start) * 1000)
+                cpus.append((time.process_time() - cpu) * 1000)
+            out[f"{location} (tile cache {cache_mb} MB)"] = {
+                "community": feature.get("id"),
+                "cells": cells,
+                "rows": len(result.frame),
+                "p50_ms": float(np.percentile(times, 50)),
+                "p95_ms": float(np.percentile(times, 95)),
+                "cpu_ms_median": statistics.median(cpus),
+                "chunks": describe_chunks(store),
+                "cache_mb": cache_mb,
+                "cached_mb": tile_cache().nbytes / 2**20,
+                "load": load(),
+            }
     return out
 
 
@@ -364,15 +390,88 @@ def phase_cluster(args: argparse.Namespace) -> dict[str, Any]:
         "features": n,
         "days": int(span.stop - span.start),
         "variables": list(variables),
-        "table_bytes_per_feature": sum(v for k, v in now.items() if k not in before) / n,
-        "series_bytes_per_feature": sum(v for k, v in old.items() if k not in now) / n,
+        "table_bytes_per_feature": (now - before) / n,
+        "series_bytes_per_feature": (old - now) / n,
         "run_wall_s": after_wall,
         "aggregation_only_wall_s": old_wall,
         "load": load(),
     }
 
 
+NO_TRIM = """# bench_scale: the server without malloc_trim (service.memory.release_memory made a no-op before app imports it)
+import service.memory
+
+service.memory.release_memory = lambda: False
+"""
+
+
+def phase_job(args: argparse.Namespace) -> dict[str, Any]:
+    """Server peak RSS for a job of --job-features buffered points over the small demo, CSV and Parquet; RSS
+    after the job with and without malloc_trim. Each case in its own server (`wxshock serve`, 127.0.0.1)."""
+    import tempfile
+
+    import httpx
+    from bench_hardening import points
+
+    from tests import _support_memory as memory
+
+    store = Path(args.job_store) if args.job_store else DEFAULT_SMALL
+    body = json.dumps({"features": points(store, args.job_features)})
+    out: dict[str, Any] = {"features": args.job_features, "store": str(store)}
+    cases = [("csv", True), ("parquet", True), ("csv", False)]
+    with tempfile.TemporaryDirectory() as root:
+        no_trim = Path(root) / "no-trim"
+        no_trim.mkdir()
+        (no_trim / "sitecustomize.py").write_text(NO_TRIM, encoding="utf-8")
+        for fmt, trim in cases:
+            path = f"{CODE}:{no_trim}" if not trim else str(CODE)
+            server = memory.start_capped(
+                stores=[store], data_dir=Path(root) / f"{fmt}-{trim}", cap_bytes=4 << 30,
+                env={"PYTHONPATH": path, "WXSHOCK_JOB_WORKERS": "1"}, cwd=CODE,
+            )  # fmt: skip
+            try:
+                server.sample()
+                idle = server.samples[-1]
+                with httpx.Client(base_url=server.server.base_url, timeout=600) as client:
+                    start = time.perf_counter()
+                    submitted = client.post(f"/v1/jobs?format={fmt}", content=body,
+                                            headers={"Content-Type": "application/json"})  # fmt: skip
+                    if submitted.status_code != 202:
+                        raise SystemExit(f"job refused: {submitted.status_code} {submitted.text[:500]}")
+                    location = submitted.headers["Location"]
+                    state: dict[str, Any] = {}
+                    deadline = time.monotonic() + args.job_limit_s
+                    while time.monotonic() < deadline:
+                        server.sample()
+                        state = client.get(location).json()
+                        if state.get("state") not in ("queued", "running"):
+                            break
+                        time.sleep(0.5)
+                    wall = time.perf_counter() - start
+                    time.sleep(2.0)  # the trim runs after the job's end is recorded
+                    server.sample()
+                    after = server.samples[-1]
+                    size = None
+                    if state.get("state") == "succeeded":
+                        result = client.get(location + "/result")
+                        size = len(result.content)
+            finally:
+                server.stop()
+            out[f"{fmt}{'' if trim else '_no_trim'}"] = {
+                "state": state.get("state"),
+                "wall_s": wall,
+                "peak_rss_mb": server.peak_rss / 2**20,
+                "idle_rss_mb": idle / 2**20,
+                "rss_after_mb": after / 2**20,
+                "result_mb": None if size is None else size / 2**20,
+                "cap": server.report()["cap"],
+                "load": load(),
+            }
+    return out
+
+
 PHASES = {
+    "job": phase_job,
     "decode": phase_decode,
     "batch": phase_batch,
     "costs": phase_costs,
@@ -411,6 +510,11 @@ def main() -> int:
     )
     parser.add_argument("--features", type=int, default=5000)
     parser.add_argument("--cluster-features", type=int, default=500)
+    parser.add_argument("--job-features", type=int, default=50_000)
+    parser.add_argument(
+        "--job-store", help="store of the job phase (default: the small demo of bench_hardening)"
+    )
+    parser.add_argument("--job-limit-s", type=float, default=1800.0)
     parser.add_argument("--requests", type=int, default=60)
     parser.add_argument("--latency-store", action="append", default=None)
     parser.add_argument("--only", default="decode,batch,costs,latency,cluster")
@@ -424,7 +528,8 @@ def main() -> int:
         return 0
     argv = [
         "--store", args.store, "--features", str(args.features), "--requests", str(args.requests),
-        "--cluster-features", str(args.cluster_features),
+        "--cluster-features", str(args.cluster_features), "--job-features", str(args.job_features),
+        "--job-limit-s", str(args.job_limit_s), *(["--job-store", args.job_store] if args.job_store else []),
     ]  # fmt: skip
     for location in args.latency_store:
         argv += ["--latency-store", location]
@@ -513,16 +618,19 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"Per-unit costs (CPU ms, medians; load {costs['load']:.1f}): read + decode of one chunk "
             f"({costs['chunk_cells']} cells x {costs['chunk_days']} days) through `Store.read_raw` "
             f"{costs['read_decode_ms']:.1f}; its weighted sums ({costs['nnz_per_chunk']:.0f} weights) "
-            f"{costs['weighted_sums_ms']:.1f}; a 200-feature batch, aggregation and table, one thread "
-            f"{costs['batch_200_ms']:.0f} ({costs['batch_200_ms'] / 200:.1f} per feature).",
+            f"{costs['weighted_sums_ms']:.1f}; the indicator table alone (default indicators, "
+            f"{costs['years']} years) {costs['table_ms_per_feature']:.2f} per feature; a 200-feature batch, "
+            f"aggregation and table, one thread {costs['batch_200_ms']:.0f} ({costs['batch_200_ms'] / 200:.1f} "
+            "per feature).",
         ]
     latency = results.get("latency")
     if latency:
-        lines += ["", "| on-demand, in-process (`pipeline.run` + JSON) | community | p50 ms | p95 ms | CPU ms | load |",
-                  "|---|---|---:|---:|---:|---:|"]  # fmt: skip
+        lines += ["", "| on-demand, in-process (`pipeline.run` + JSON), layout | decoded-tile cache | community | "
+                  "p50 ms | p95 ms | CPU ms | load |", "|---|---|---|---:|---:|---:|---:|"]  # fmt: skip
         for location, r in latency.items():
             lines.append(
-                f"| {r['chunks']} (`{Path(location).name}`) | {r['community']} ({r['cells']} cells, {r['rows']} rows) | "
+                f"| {r['chunks']} (`{Path(location.split(' (')[0]).name}`) | {r['cache_mb']} MB (holding "
+                f"{r['cached_mb']:.0f} MB) | {r['community']} ({r['cells']} cells, {r['rows']} rows) | "
                 f"{r['p50_ms']:.0f} | {r['p95_ms']:.0f} | {r['cpu_ms_median']:.0f} | {r['load']:.1f} |"
             )
     cl = results.get("cluster")
@@ -536,6 +644,25 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"in the same run from the workers' transfer logs). Run with tables on the workers "
             f"{cl['run_wall_s']:.1f} s; the aggregation alone, series gathered, {cl['aggregation_only_wall_s']:.1f} s.",
         ]
+    job = results.get("job")
+    if job:
+        lines += [
+            "",
+            f"A job of {job['features']:,} buffered points (one cell each) over `{Path(job['store']).name}`, every "
+            "default indicator, every season-year, one job worker; each case in its own `wxshock serve` "
+            "(127.0.0.1), RSS sampled every 0.5 s and the kernel's peak (VmHWM):",
+            "",
+            "| case | state | wall s | server peak RSS MB | RSS idle before MB | RSS 2 s after MB | result MB | load |",
+            "|---|---|---:|---:|---:|---:|---:|---:|",
+        ]
+        names = {"csv": "CSV", "parquet": "Parquet", "csv_no_trim": "CSV, malloc_trim disabled"}
+        for key, name in names.items():
+            r = job.get(key)
+            if r:
+                lines.append(
+                    f"| {name} | {r['state']} | {r['wall_s']:.0f} | {r['peak_rss_mb']:,.0f} | {r['idle_rss_mb']:,.0f} "
+                    f"| {r['rss_after_mb']:,.0f} | {r['result_mb'] or 0:,.0f} | {r['load']:.1f} |"
+                )
     cl_old = results.get("cluster_old_code")
     if cl_old:
         lines += [

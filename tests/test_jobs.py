@@ -610,7 +610,11 @@ def test_the_run_reuses_the_weights_computed_at_submission(
     monkeypatch.setattr(pipeline, "features_and_weights", no_second_time)
     done = _wait(runner, job.id, {"succeeded", "failed"})
     assert done.state == "succeeded", done.error
-    assert not (runner.prepared / f"{job.id}.pickle").exists()  # kept only until the job ends
+    # kept only until the job ends: removed just after its end is recorded, so give the worker a moment
+    deadline = time.monotonic() + 10.0
+    while (runner.prepared / f"{job.id}.pickle").exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert not (runner.prepared / f"{job.id}.pickle").exists()
     monkeypatch.undo()
     store = runner.registry.get_dataset(None)
     expected, _, _ = encode.encode(pipeline.run(request, store, runner.settings), "parquet")
