@@ -17,6 +17,10 @@ computed on dask threads in one computation (pipeline.features_and_weights, aggr
   both     on the two-grid store: prcp on the fine grid and tmax, tmin on the coarse grid, one computation
 The target: both <= 1.2 x (fine + coarse). CPU time (all threads of the process) is the steadier measure on a
 shared machine; wall time is reported beside it.
+
+The same three phases are then timed as whole requests (pipeline.run: weights, aggregation and indicator tables
+of every feature batch as one graph each, growing season May-Oct, baseline over all 30 years): prcp_total and
+wet_days on the fine store, tmean and gdd on the coarse one, all four on the two-grid store.
 """
 
 from __future__ import annotations
@@ -33,10 +37,10 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from _results import write_section
 
 ROOT = Path(__file__).resolve().parent.parent
 OUT = ROOT / "bench" / "out" / "multigrid"
-RESULTS = ROOT / "bench" / "RESULTS.md"
 START, END = "<!-- bench_multigrid: start -->", "<!-- bench_multigrid: end -->"
 REGION = (0.0, -9.6, 9.6, 0.0)  # west, south, east, north (degrees; open sea)
 
@@ -122,6 +126,46 @@ def polygons(n: int, seed: int = 11) -> dict[str, Any]:
     return {"type": "FeatureCollection", "features": features}
 
 
+INDICATORS = {"fine": ["prcp_total", "wet_days"], "coarse": ["tmean", "gdd"]}
+INDICATORS["both"] = INDICATORS["fine"] + INDICATORS["coarse"]
+
+
+def run_request(which: str, n: int, quick: bool) -> dict[str, Any]:
+    """One timed whole request (pipeline.run) in this process."""
+    from service import pipeline
+    from service.schemas import IndicatorRequest
+    from service.settings import Settings
+    from service.store import open_store
+
+    store = open_store(build(quick)[which])
+    years = (int(store.dates.year[0]), int(store.dates.year[-1]))
+    request = IndicatorRequest.model_validate(
+        {
+            "features": polygons(n),
+            "id_property": "id",
+            "indicators": INDICATORS[which],
+            "season": {"months": [5, 6, 7, 8, 9, 10]},
+            "years": {"start": years[0], "end": years[1]},
+            "baseline": {"start": years[0], "end": years[1]},
+        }
+    )
+    settings = Settings(stores=[], threads=None, weights_cache_size=0, max_cells_per_feature=10_000_000)
+    wall, cpu = time.perf_counter(), time.process_time()
+    frame = pipeline.run(request, store, settings).frame
+    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    check = {c: float(np.nansum(frame[c].to_numpy(dtype=np.float64))) for c in INDICATORS[which]}
+    return {
+        "which": which,
+        "wall": wall,
+        "cpu": cpu,
+        "weights_wall": float("nan"),
+        "weights_cpu": float("nan"),
+        "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+        "check": check,
+        "cells": {},
+    }
+
+
 def phase(which: str, n: int, quick: bool) -> dict[str, Any]:
     """One timed aggregation in this process (see the module docstring)."""
     from service import cluster, pipeline
@@ -158,9 +202,10 @@ def phase(which: str, n: int, quick: bool) -> dict[str, Any]:
     }
 
 
-def run_phase(which: str, n: int, quick: bool) -> dict[str, Any]:
+def run_phase(which: str, n: int, quick: bool, mode: str = "aggregate") -> dict[str, Any]:
     """A phase in a fresh process (so that no cache or warm allocator of another phase helps it)."""
-    cmd = [sys.executable, __file__, "--phase", which, "--features", str(n)] + (["--quick"] if quick else [])
+    cmd = [sys.executable, __file__, "--phase", which, "--mode", mode, "--features", str(n)]
+    cmd += ["--quick"] if quick else []
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     out = subprocess.run(cmd, check=True, capture_output=True, text=True, env=env)
     return json.loads(out.stdout.strip().splitlines()[-1])
@@ -179,31 +224,44 @@ def main() -> int:
     parser.add_argument("--features", type=int, default=None)
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--phase", choices=["fine", "coarse", "both"])
+    parser.add_argument("--mode", choices=["aggregate", "run"], default="aggregate")
     args = parser.parse_args()
     n = args.features or (200 if args.quick else 1000)
     if args.phase:
-        print(json.dumps(phase(args.phase, n, args.quick)))
+        measure = phase if args.mode == "aggregate" else run_request
+        print(json.dumps(measure(args.phase, n, args.quick)))
         return 0
     build(args.quick)
-    runs: dict[str, list[dict[str, Any]]] = {"fine": [], "coarse": [], "both": []}
+    measured: dict[str, dict[str, list[dict[str, Any]]]] = {}
     loads = []
-    for _ in range(args.repeat):
-        for which in ("fine", "coarse", "both"):  # interleaved, so that a load spike hits every phase alike
-            loads.append(load_average())
-            runs[which].append(run_phase(which, n, args.quick))
-            print(
-                which,
-                {k: round(v, 2) for k, v in runs[which][-1].items() if k in ("wall", "cpu")},
-                file=sys.stderr,
-            )
-    both_check = runs["both"][0]["check"]
-    for which, variables in (("fine", ("prcp",)), ("coarse", ("tmax", "tmin"))):
-        for v in variables:  # the two-grid dataset gives the single-grid series exactly
-            assert abs(runs[which][0]["check"][v] - both_check[v]) <= 1e-6 * max(1.0, abs(both_check[v])), v
-    text = report(n, runs, loads, args.quick)
+    for mode in ("aggregate", "run"):
+        runs: dict[str, list[dict[str, Any]]] = {"fine": [], "coarse": [], "both": []}
+        for _ in range(args.repeat):
+            for which in (
+                "fine",
+                "coarse",
+                "both",
+            ):  # interleaved, so that a load spike hits every phase alike
+                loads.append(load_average())
+                runs[which].append(run_phase(which, n, args.quick, mode))
+                print(
+                    mode,
+                    which,
+                    {k: round(v, 2) for k, v in runs[which][-1].items() if k in ("wall", "cpu")},
+                    f"load {loads[-1]:.1f}",
+                    file=sys.stderr,
+                )
+        both_check = runs["both"][0]["check"]
+        for which in ("fine", "coarse"):
+            for v in runs[which][0]["check"]:  # the two-grid dataset gives the single-grid values exactly
+                want = runs[which][0]["check"][v]
+                assert abs(want - both_check[v]) <= 1e-6 * max(1.0, abs(both_check[v])), (mode, v)
+        measured[mode] = runs
+    loads.append(load_average())
+    text = report(n, measured, loads, args.quick)
     print(text)
     if not args.quick:
-        write_section(text)
+        write_section(START, END, text)
     return 0
 
 
@@ -212,23 +270,40 @@ def _stat(runs: list[dict[str, Any]], key: str) -> tuple[float, float]:
     return values[0], values[len(values) // 2]
 
 
-def report(n: int, runs: dict[str, list[dict[str, Any]]], loads: list[float], quick: bool) -> str:
-    """The RESULTS.md section."""
+def _table(runs: dict[str, list[dict[str, Any]]], with_weights: bool) -> tuple[list[str], dict]:
+    """Rows of one mode's table and its ratios both / (fine + coarse), by (wall|cpu, best|median)."""
     rows = []
     for which in ("fine", "coarse", "both"):
         wall_best, wall_median = _stat(runs[which], "wall")
         cpu_best, cpu_median = _stat(runs[which], "cpu")
-        wcpu_best, _ = _stat(runs[which], "weights_cpu")
+        weights = f" {_stat(runs[which], 'weights_cpu')[0]:.2f} |" if with_weights else ""
         rows.append(
-            f"| {which} | {wall_best:.2f} / {wall_median:.2f} | {cpu_best:.2f} / {cpu_median:.2f} | {wcpu_best:.2f} "
-            f"| {max(r['peak_mb'] for r in runs[which]):,.0f} |"
+            f"| {which} | {wall_best:.2f} / {wall_median:.2f} | {cpu_best:.2f} / {cpu_median:.2f} |{weights} "
+            f"{max(r['peak_mb'] for r in runs[which]):,.0f} |"
         )
     sums = {}
     for key in ("wall", "cpu"):
         for pick in (0, 1):
             total = _stat(runs["fine"], key)[pick] + _stat(runs["coarse"], key)[pick]
             sums[(key, pick)] = _stat(runs["both"], key)[pick] / total
+    return rows, sums
+
+
+def _ratios(sums: dict) -> str:
+    return (
+        f"**{sums[('cpu', 0)]:.2f} x** in CPU time (best runs; medians {sums[('cpu', 1)]:.2f} x), "
+        f"{sums[('wall', 0)]:.2f} x in wall time (medians {sums[('wall', 1)]:.2f} x)"
+    )
+
+
+def report(
+    n: int, measured: dict[str, dict[str, list[dict[str, Any]]]], loads: list[float], quick: bool
+) -> str:
+    """The RESULTS.md section."""
+    aggregate_rows, aggregate_sums = _table(measured["aggregate"], True)
+    run_rows, run_sums = _table(measured["run"], False)
     stamp = time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime())
+    runs = measured["aggregate"]
     cells = runs["both"][0]["cells"]
     return "\n".join(
         [
@@ -242,32 +317,30 @@ def report(n: int, runs: dict[str, list[dict[str, Any]]], loads: list[float], qu
             "0.2 degrees, both = the two grids in one dataset. "
             f"{n} invented quadrilaterals of 8 to 30 km ({cells.get('fine', 0):,} fine and "
             f"{cells.get('coarse', 0):,} coarse cell weights). Each phase in a fresh process, "
-            f"{len(runs['both'])} runs interleaved; the aggregation as the pipeline does it (weights on each grid "
-            "read, then every feature's daily means over all days on dask threads, one computation).",
+            f"{len(runs['both'])} runs interleaved.",
+            "",
+            "The aggregation as the pipeline does it (weights on each grid read, then every feature's daily means "
+            "over all days on dask threads, one computation):",
             "",
             "| phase | wall s, best / median | CPU s, best / median | of which weights, CPU s | peak MB |",
             "|---|---|---|---|---|",
-            *rows,
+            *aggregate_rows,
             "",
-            f"Two grids against the sum of the two single-grid aggregations: **{sums[('cpu', 0)]:.2f} x** in CPU "
-            f"time (best runs; medians {sums[('cpu', 1)]:.2f} x), {sums[('wall', 0)]:.2f} x in wall time (medians "
-            f"{sums[('wall', 1)]:.2f} x); target at most 1.2 x. The two-grid series equal the single-grid ones "
-            "(sums checked).",
+            f"Two grids against the sum of the two single-grid aggregations: {_ratios(aggregate_sums)}; target "
+            "at most 1.2 x. The two-grid series equal the single-grid ones (sums checked).",
+            "",
+            "Whole requests (pipeline.run; May-Oct, baseline all 30 years; prcp_total and wet_days on fine, tmean "
+            "and gdd on coarse, all four on both):",
+            "",
+            "| phase | wall s, best / median | CPU s, best / median | peak MB |",
+            "|---|---|---|---|",
+            *run_rows,
+            "",
+            f"Two grids against the sum of the two single-grid requests: {_ratios(run_sums)}. The two-grid values "
+            "equal the single-grid ones (sums checked).",
             END,
         ]
     )
-
-
-def write_section(text: str) -> None:
-    """Replace this benchmark's section of bench/RESULTS.md (or append it)."""
-    old = RESULTS.read_text(encoding="utf-8") if RESULTS.is_file() else "# Benchmark results\n\n"
-    if START in old and END in old:
-        head, rest = old.split(START, 1)
-        _, tail = rest.split(END, 1)
-        new = head + text + tail
-    else:
-        new = old.rstrip("\n") + "\n\n" + text + "\n"
-    RESULTS.write_text(new, encoding="utf-8")
 
 
 if __name__ == "__main__":
