@@ -87,6 +87,9 @@ def test_a_precipitation_only_dataset_serves_the_precipitation_indicators(server
             client.post("/v1/indicators", json=_body("rain", ["prcp_total", "cdd", "spi", "rx5day"]))
         )
         refused = client.post("/v1/indicators", json=_body("rain", ["prcp_total", "tmean"]))
+        refused_job = client.post("/v1/jobs", json=_body("rain", ["tmean"]))
+        series = {"dataset": "rain", "features": FEATURES, "variables": ["prcp", "tmax"]}
+        refused_series = client.post("/v1/series", json=series)
         defaults = _rows(client.post("/v1/indicators", json=_body("rain", None)))
     assert len(rows) == len(YEARS)
     for column in ("prcp_total", "cdd", "spi", "rx5day"):
@@ -94,6 +97,10 @@ def test_a_precipitation_only_dataset_serves_the_precipitation_indicators(server
     assert refused.status_code == 422 and refused.headers["content-type"] == "application/problem+json"
     detail = refused.json()["detail"]
     assert "'tmean'" in detail and "tmax" in detail, detail
+    assert refused_job.status_code == 422 and "'tmean'" in refused_job.json()["detail"], refused_job.text
+    assert refused_series.status_code == 422 and "'tmax'" in refused_series.json()["detail"], (
+        refused_series.text
+    )
     # with no indicators named, the defaults are those its variables can compute: none of temperature
     assert "prcp_total" in defaults[0] and "tmean" not in defaults[0]
 
@@ -152,3 +159,9 @@ def test_maps_are_drawn_on_the_grid_of_the_indicators_variables(server) -> None:
     store = open_store(server.data_dir.parent / "both.zarr")
     assert anomaly_field(store, "prcp_total", 2006).z.shape == (6, 8)
     assert anomaly_field(store, "tmean", 2006).z.shape == (2, 2)
+
+
+def test_describe_shows_every_grid(server, capsys: pytest.CaptureFixture[str]) -> None:
+    assert wxshock(["describe", str(server.data_dir.parent / "both.zarr")]) == 0
+    out = capsys.readouterr().out
+    assert "grid2" in out and "population" in out and "prcp" in out and "tmax" in out
