@@ -555,7 +555,7 @@ def bootstrap_in_base_shares(cube: SeasonCube, baseline: Baseline, variable: str
     n_feature, n_year = cube.feature_index.size, cube.years.size
     out = np.full((n_feature, n_year), np.nan)
     members = np.flatnonzero(np.asarray(baseline.members, dtype=bool)[0]) if baseline.fixed else np.array([])
-    if members.size < MIN_BASELINE_SEASONS + 1:  # a year left out must leave a baseline of three
+    if members.size < 2:  # no other year to put in the place of the one left out
         return out
     daily = cube.daily
     record = getattr(daily, variable)
@@ -609,7 +609,12 @@ def _with_in_base(
     years = np.flatnonzero(np.asarray(baseline.members, dtype=bool)[0])
     values = plain.values.copy()
     values[:, years] = np.where(np.isnan(plain.values[:, years]), np.nan, in_base[:, years])
-    return IndicatorValues(values, plain.flags)
+    # a season with a plain value but no resampled threshold on any of its days is null, and says so
+    flags = dict(plain.flags)
+    lost = np.isnan(values) & ~np.isnan(plain.values)
+    if lost.any():
+        flags["no_fit"] = flags.get("no_fit", np.zeros(values.shape, dtype=bool)) | lost
+    return IndicatorValues(values, flags)
 
 
 def tx90p(cube: SeasonCube, baseline: Baseline, params: Mapping[str, object]) -> IndicatorValues:

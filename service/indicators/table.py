@@ -1445,3 +1445,40 @@ def methods_statement(request: IndicatorRequest, snap: Mapping[str, int]) -> dic
             "whole baseline (spell_before_baseline): never a count over fewer seasons than the window"
         )
     return statement
+
+
+def catalog_conventions() -> dict[str, str]:
+    """The conventions every indicator follows, with each request option and its default, for the catalog."""
+    share = seasons.DEFAULT_MAX_MISSING_SHARE
+    return {
+        "daily_values": "a community's daily value is the weighted mean of its cells with data that day (area, or "
+        "area times a weight layer), snapped to the storage step plus three decimals (1e-4 degC or mm for a 0.1 "
+        "step), so values exact in storage units meet thresholds exactly",
+        "thresholds": "inclusive or strict as ETCCDI writes them: wet day RR >= 1 mm, summer day TX > 25 degC, "
+        "frost day TN < 0 degC, icing day TX < 0 degC, tropical night TN > 20 degC",
+        "aggregation": "request option 'aggregation': 'series' (default) "
+        + _AGGREGATION_TEXT["series"]
+        + "; 'cells' "
+        + _AGGREGATION_TEXT["cells"],
+        "partial_seasons": f"a season missing more than max_missing_share (default {share:.0%}) of the days an "
+        "indicator reads is null; request option 'partial_seasons' for one missing fewer: 'scale' (default) "
+        + _POLICY_TEXT["scale"]
+        + "; 'null' "
+        + _POLICY_TEXT["null"]
+        + "; 'as_is' "
+        + _POLICY_TEXT["as_is"]
+        + "; the baseline seasons follow the same rule; means, extremes, runs and shares use the days present",
+        "baseline": f"default: the first {DEFAULT_BASELINE_SEASONS} season-years the data serve whole (all of "
+        f"them when fewer, at least {baselines.MIN_BASELINE_SEASONS}; WMO-No. 1090 asks for 30 to fit SPI); a "
+        "trailing baseline of N uses exactly the N season-years before each season-year, or none (null)",
+        "anomalies": "z = (value - baseline mean) / baseline sample sd (ddof 1); null when the baseline has no "
+        f"spread (no_spread) or fewer than {baselines.MIN_BASELINE_SEASONS} seasons with a value; z rounded to "
+        f"{baselines.Z_DECIMALS} decimals before classing; SPI and SPEI are their own z",
+        "classes": "edges in standard deviations (default -2, -1, 1, 2); an edge belongs to the class farther "
+        "from zero (z = -1 is class -1, as in the WMO SPI table)",
+        "distribution_fits": f"a fitted index or percentile threshold on fewer than {MIN_FIT_SEASONS} baseline "
+        "seasons carries the warning short_baseline_fit; a value at an index's bound carries at_clip",
+        "spells": "a spell count is null when a season of its window has a null class or z (spell_unknown) or "
+        "lacks its whole baseline (spell_before_baseline)",
+        "notes": "each row's notes column holds the codes of its warnings (sorted, space-separated)",
+    }

@@ -33,10 +33,12 @@ def indicator_catalog() -> IndicatorCatalog:
     """The catalog of every registered indicator (importing the package registers them all)."""
     importlib.import_module("service.indicators")
     from service.indicators.base import catalog
+    from service.indicators.table import catalog_conventions
     from service.indicators.windows.instances import WINDOW_RULE
 
     return IndicatorCatalog(
         event_windows=WINDOW_RULE,
+        conventions=catalog_conventions(),
         indicators=[
             IndicatorInfo(
                 name=i.name,

@@ -145,6 +145,11 @@ class IndicatorCatalog(BaseModel):
     event_windows: str = Field(
         default="", description="What 'the same window' of an event means in other years (the baseline rule)."
     )
+    conventions: dict[str, str] = Field(
+        default_factory=dict,
+        description="The rules every indicator follows (daily values, thresholds, aggregation, partial seasons, "
+        "baseline, anomalies, classes, fits, spells), each request option with its default.",
+    )
 
 
 JobStateName = Literal["queued", "running", "succeeded", "failed", "cancelled"]

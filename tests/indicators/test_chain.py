@@ -623,6 +623,19 @@ def test_the_catalog_states_each_choice() -> None:
         in_base = catalog[name].parameters["in_base"]
         assert in_base.default == "plain" and in_base.choices == ["plain", "bootstrap"], name
     assert catalog["su"].reduction == "count" and catalog["tmean"].reduction == "mean"
+    # the request-wide rules, each option with its default (issue 10, cases 1-6)
+    conventions = indicator_catalog().conventions
+    assert "snapped" in conventions["daily_values"] and "TX > 25 degC" in conventions["thresholds"]
+    assert "'series' (default)" in conventions["aggregation"] and "'cells'" in conventions["aggregation"]
+    assert (
+        "'scale' (default)" in conventions["partial_seasons"] and "'as_is'" in conventions["partial_seasons"]
+    )
+    assert "first 30 season-years" in conventions["baseline"] and "no_spread" in conventions["anomalies"]
+    assert (
+        "farther from zero" in conventions["classes"]
+        and "short_baseline_fit" in conventions["distribution_fits"]
+    )
+    assert "spell_before_baseline" in conventions["spells"]
 
 
 def test_r95ptot_takes_its_threshold_from_the_pool_asked_for(tmp_path: Path) -> None:

@@ -519,3 +519,17 @@ def test_in_base_bootstrap_brings_the_baseline_years_to_the_nominal_rate():
     in_plain, in_bootstrap, out = plain[:, :30].mean(), bootstrap[:, :30].mean(), plain[:, 30:].mean()
     assert abs(in_bootstrap - 10.0) < 0.4 and abs(in_bootstrap - out) < 0.3
     assert in_bootstrap > in_plain + 0.1  # paired on the same years: 10.21 against 10.01 with this seed
+
+
+def test_in_base_bootstrap_on_the_shortest_baseline():
+    # three baseline seasons (the fewest a threshold is taken from): each block is two years and one of them
+    # again, so every in-base year still gets a value, that of the procedure
+    rng = np.random.default_rng(3)
+    probe = daily_series(2000, 5)
+    tmax = np.round(rng.normal(25.0, 3.0, probe.tmax.shape), 1)
+    daily = daily_series(2000, 5, tmax=tmax, tmin=tmax - 10.0)
+    cube = season_cube(daily, months=[7])
+    expected = _in_base_shares_by_the_papers_loop(daily, cube.years, range(2000, 2003), [7], 0.9)
+    bootstrap = _run("tx90p", cube, fixed_baseline(cube, 2000, 2002), in_base="bootstrap")[0]
+    np.testing.assert_allclose(bootstrap[:3], [expected[(0, y)] for y in range(2000, 2003)], atol=1e-9)
+    assert np.isfinite(bootstrap).all()
