@@ -491,50 +491,47 @@ def _exceedance_share(cube: SeasonCube, baseline: Baseline, variable: str, q: fl
 IN_BASE_CHOICES = ("plain", "bootstrap")
 
 
-def _kth_of_union(x: np.ndarray, y: np.ndarray, k: np.ndarray) -> np.ndarray:
-    """The k-th smallest (1-based) of the union of the rows of two ascending arrays (missing as +inf).
+def _two_order_statistics(x: np.ndarray, y: np.ndarray, k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The k-th and (k + 1)-th smallest (1-based) of the union of the rows of two ascending arrays.
 
-    ``x`` (..., m), ``y`` (..., p) with p small, ``k`` (...) int with 1 <= k <= m + p. The k smallest of the
-    union take t values from ``y`` and k - t from ``x`` for some t; every such split is a set of k values, so
-    its largest is at least the k-th smallest, with equality at the true split: the k-th smallest is the
-    least over t of max(x[k - t - 1], y[t - 1]). p + 1 gathers instead of a sort of the union.
+    ``x`` (..., m), ``y`` (..., p) with p small, missing values as +inf; ``k`` (...) int, k >= 1. The r
+    smallest of the union take t values from ``y`` and r - t from ``x`` for some t; every such split is a set
+    of r values, so its largest is at least the r-th smallest, with equality at the true split: the r-th
+    smallest is the least over t = 0..p of max(x[r - t - 1], y[t - 1]). One gather of the p + 2 values of
+    ``x`` both ranks need, instead of a sort of the union.
     """
-    m = x.shape[-1]
-    best = np.full(k.shape, np.inf)
-    for t in range(y.shape[-1] + 1):
-        at = k - t - 1
-        from_x = np.take_along_axis(x, np.clip(at, 0, m - 1)[..., None], axis=-1)[..., 0]
-        from_x = np.where(at < 0, -np.inf, np.where(at >= m, np.inf, from_x))
-        from_y = y[..., t - 1] if t > 0 else np.full(k.shape, -np.inf)
-        best = np.minimum(best, np.maximum(from_x, from_y))
-    return best
+    m, p = x.shape[-1], y.shape[-1]
+    at = k[..., None] + np.arange(-1 - p, 1)  # x positions k - 1 - p .. k
+    near = np.take_along_axis(x, np.clip(at, 0, m - 1), axis=-1)
+    near = np.where(at < 0, -np.inf, np.where(at >= m, np.inf, near))
+    from_y = np.concatenate([np.full(k.shape + (1,), -np.inf), y], axis=-1)  # y[t - 1], t = 0..p
+    kth = np.min(np.maximum(near[..., p::-1], from_y), axis=-1)  # x[k - 1 - t]
+    next_one = np.min(np.maximum(near[..., :0:-1], from_y), axis=-1)  # x[k - t]
+    return kth, next_one
 
 
-def _resampled_thresholds(pools: np.ndarray, left_out: int, q: float) -> np.ndarray:
+def _resampled_thresholds(ordered: np.ndarray, has_data: np.ndarray, left_out: int, q: float) -> np.ndarray:
     """Type 8 ``q``-quantiles of the pools with year ``left_out`` replaced by each other year in turn.
 
-    ``pools`` (feature, key, year, offset) of the baseline years (NaN missing). Returns (feature, year - 1,
-    key): for each other year i (in order), the quantile of the block whose year ``left_out`` is year i
-    again (Zhang et al. 2005); NaN where the block holds values from fewer than three baseline years.
+    ``ordered`` (feature, key, year, offset): the baseline years' pool values, each year's sorted, missing
+    as +inf; ``has_data`` (feature, key, year). Returns (feature, year - 1, key): for each other year i (in
+    order), the quantile of the block whose year ``left_out`` is year i again (Zhang et al. 2005); NaN where
+    the block holds values from fewer than three baseline years.
     """
-    n_feature, n_key, n_year, n_offset = pools.shape
+    n_feature, n_key, n_year, _ = ordered.shape
     others = [y for y in range(n_year) if y != left_out]
-    missing = np.isnan(pools)
-    has_data = (~missing).any(axis=-1)  # (feature, key, year)
-    rest = np.where(missing[:, :, others], np.inf, pools[:, :, others]).reshape(n_feature, n_key, -1)
-    rest.sort(axis=-1)
+    rest = np.sort(ordered[:, :, others].reshape(n_feature, n_key, -1), axis=-1)
     rest_count = np.count_nonzero(np.isfinite(rest), axis=-1)
+    year_count = np.count_nonzero(np.isfinite(ordered), axis=-1)  # (feature, key, year)
     rest_seasons = np.count_nonzero(has_data[:, :, others], axis=-1)
     out = np.full((n_feature, len(others), n_key), np.nan)
     for column, i in enumerate(others):
-        extra = np.sort(np.where(missing[:, :, i], np.inf, pools[:, :, i]), axis=-1)
-        n = rest_count + np.count_nonzero(np.isfinite(extra), axis=-1)
+        n = rest_count + year_count[:, :, i]
         top = np.maximum(n, 1)
         h = np.clip((n + 1.0 / 3.0) * q + 1.0 / 3.0, 1.0, top.astype(np.float64))
         low = np.floor(h).astype(np.int64)
         frac = h - low
-        x_low = _kth_of_union(rest, extra, low)
-        x_high = _kth_of_union(rest, extra, np.minimum(low + 1, top))
+        x_low, x_high = _two_order_statistics(rest, ordered[:, :, i], low)
         with np.errstate(invalid="ignore"):
             value = np.where(frac > 0, x_low + frac * (x_high - x_low), x_low)
         enough = (n > 0) & (rest_seasons + has_data[:, :, i] >= MIN_BASELINE_SEASONS)
@@ -577,14 +574,19 @@ def bootstrap_in_base_shares(cube: SeasonCube, baseline: Baseline, variable: str
         features = cube.feature_index[start : start + block]
         pools = np.take(np.take(record, features, axis=0), window, axis=1)  # (feature, key, year, offset)
         pools[:, unusable] = np.nan
+        has_data = (~np.isnan(pools)).any(axis=-1)  # (feature, key, year)
+        ordered = np.sort(np.where(np.isnan(pools), np.inf, pools), axis=-1)
+        if february:  # 28 and 29 February share one pool
+            c28, c29 = column_of[_FEB_28], column_of[_FEB_29]
+            february_ordered = np.sort(np.concatenate([ordered[:, c28], ordered[:, c29]], axis=-1), axis=-1)
+            february_has_data = has_data[:, c28] | has_data[:, c29]
         for position, year in enumerate(members):
-            thresholds = _resampled_thresholds(pools, position, q)  # (feature, other year, used key)
-            if february:  # 28 and 29 February share one pool
-                c28, c29 = column_of[_FEB_28], column_of[_FEB_29]
-                pooled = np.concatenate([pools[:, c28], pools[:, c29]], axis=-1)[:, None]
-                thresholds[..., c28] = thresholds[..., c29] = _resampled_thresholds(pooled, position, q)[
-                    ..., 0
-                ]
+            thresholds = _resampled_thresholds(ordered, has_data, position, q)  # (feature, other year, key)
+            if february:
+                shared = _resampled_thresholds(
+                    february_ordered[:, None], february_has_data[:, None], position, q
+                )
+                thresholds[..., c28] = thresholds[..., c29] = shared[..., 0]
             key = keys[year]
             on_days = thresholds[:, :, column_of[np.maximum(key, 0)]]  # (feature, other year, day)
             on_days[:, :, key < 0] = np.nan
