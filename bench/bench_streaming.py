@@ -35,6 +35,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from _results import write_section  # noqa: E402
+
 from tests._support_memory import MemoryCap  # noqa: E402
 
 START = "<!-- bench_streaming: start -->"
@@ -44,7 +45,7 @@ CAP_WORDS = {
     "cgroup v2": " (`memory.max`; the group's peak is `memory.peak`, which counts the page cache of the files read "
     "and written as well as RSS, so it nears the cap whenever the files outgrow it: the kernel then reclaims clean "
     "cache)",
-    "cgroup v1": " memory group (this machine offers no writable cgroup v2 `memory.max`; v1's "
+    "cgroup v1": " (this machine offers no writable cgroup v2 `memory.max`; v1's "
     "`memory.limit_in_bytes` caps RSS and page cache together, as `memory.max` does; the group's peak is "
     "`memory.max_usage_in_bytes`, which counts the page cache of the files read and written as well as RSS, so it "
     "nears the cap whenever the files outgrow it: the kernel then reclaims clean cache)",
@@ -65,8 +66,21 @@ def du(path: Path) -> int:
     return sum(f.stat().st_size for f in path.rglob("*") if f.is_file()) if path.exists() else 0
 
 
-def run_capped(args: list[str], cap_bytes: int, timeout: float) -> dict:
-    """Run ``python -m service.cli ARGS`` under a fresh memory cap; wall time, peak RSS, group peak, kills."""
+def staging_bytes(directory: Path) -> int:
+    """Bytes of the staging directories (``.*.staging-*``) under ``directory`` now."""
+    total = 0
+    for staging in directory.glob(".*.staging-*"):
+        for f in staging.rglob("*.tiles"):
+            try:
+                total += f.stat().st_size
+            except OSError:
+                pass  # removed meanwhile
+    return total
+
+
+def run_capped(args: list[str], cap_bytes: int, timeout: float, staging_in: Path) -> dict:
+    """Run ``python -m service.cli ARGS`` under a fresh memory cap; wall time, peak RSS, group peak, kills, and
+    the largest staging on disk seen under ``staging_in`` (sampled every 0.5 s)."""
     cap = MemoryCap.make(cap_bytes)
     env = {k: v for k, v in os.environ.items() if not k.startswith("WXSHOCK_")}
     env["PYTHONPATH"] = str(ROOT)
@@ -75,6 +89,7 @@ def run_capped(args: list[str], cap_bytes: int, timeout: float) -> dict:
     process = subprocess.Popen([sys.executable, "-m", "service.cli", *args], env=env, preexec_fn=cap.enter,
                                stdout=subprocess.PIPE, stderr=subprocess.STDOUT)  # fmt: skip
     deadline = started + timeout
+    staged = 0
     try:
         while True:
             pid, status, usage = os.wait4(process.pid, os.WNOHANG)
@@ -83,6 +98,7 @@ def run_capped(args: list[str], cap_bytes: int, timeout: float) -> dict:
             if time.perf_counter() > deadline:
                 process.kill()
                 raise TimeoutError(f"{args[0]} did not finish within {timeout:.0f} s")
+            staged = max(staged, staging_bytes(staging_in))
             time.sleep(0.5)
         wall = time.perf_counter() - started
         process.returncode = os.waitstatus_to_exitcode(status)
@@ -99,6 +115,7 @@ def run_capped(args: list[str], cap_bytes: int, timeout: float) -> dict:
             "load_before": load_before,
             "load_after": os.getloadavg()[0],
             "output": output[-2000:],
+            "staging_peak": staged,
         }
     finally:
         cap.remove()
@@ -193,7 +210,7 @@ def section(results: dict, facts: dict) -> str:
         "",
         f"Measured {when} on {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}; "
         "each command a subprocess under a memory cap made by tests/_support_memory.py. On this machine the cap "
-        f"is a **{facts['cap']}** of {facts['cap_gb']:.1f} GB{CAP_WORDS.get(facts['cap'], '')}. Peak RSS is the "
+        f"is **{facts['cap']}**, {facts['cap_gb']:.1f} GB{CAP_WORDS.get(facts['cap'], '')}. Peak RSS is the "
         "process's ru_maxrss (from wait4). The machine is shared: the 1-minute load average is given beside each "
         "run, and wall times are inflated by it.",
         "",
@@ -212,8 +229,8 @@ def section(results: dict, facts: dict) -> str:
             f"| {label} | {facts[key + '_input']} | {r['wall_s'] / 60:.1f} min | **{r['peak_rss'] / GB:.2f} GB** | "
             f"{group} | {r['oom_kills']} | {r['load_before']:.1f} / {r['load_after']:.1f} |"
         )
-    lines.append("")
-    lines.extend(facts["notes"])
+    for note in facts["notes"]:
+        lines.extend(["", note])
     lines.append("")
     lines.append(END)
     return "\n".join(lines) + "\n"
@@ -245,7 +262,9 @@ def main() -> int:
         if not args.skip_demo:
             demo = workdir / "demo" / "demo.zarr"
             print("building the large demo under the cap ...", flush=True)
-            results["demo"] = run_capped(["demo", str(demo), "--size", "large", "--quiet"], cap, 3 * 3600)
+            results["demo"] = run_capped(
+                ["demo", str(demo), "--size", "large", "--quiet"], cap, 3 * 3600, demo.parent
+            )
             print(results["demo"], flush=True)
             if results["demo"]["exit"] != 0:
                 raise RuntimeError(f"demo failed: {results['demo']['output']}")
@@ -258,7 +277,9 @@ def main() -> int:
                 f"{store.n_times} days; built a year at a time, staged as compressed int16 tiles beside the "
                 "store, then written tile by tile (service/demo.py `stage_demo`, service/ingest/blocks.py). The "
                 "tiny demo built this way keeps its pinned fingerprint, and a short demo built both ways gives "
-                "one fingerprint (tests/test_ingest_blocks.py)."
+                "one fingerprint (tests/test_ingest_blocks.py). The staging held "
+                f"{results['demo']['staging_peak'] / GB:.2f} GB on disk at its largest, removed after the write. The "
+                "in-memory build this replaces held the whole store, about 10 GB (issue 15), and was not run here."
             )
             if not args.keep:
                 shutil.rmtree(demo.parent)
@@ -276,7 +297,7 @@ def main() -> int:
         out = workdir / "ingested.zarr"
         print("ingesting under the cap ...", flush=True)
         results["ingest"] = run_capped(
-            ["ingest", *map(str, files), "--out", str(out), "--quiet"], cap, 3 * 3600
+            ["ingest", *map(str, files), "--out", str(out), "--quiet"], cap, 3 * 3600, workdir
         )
         print({k: v for k, v in results["ingest"].items() if k != "output"}, flush=True)
         if results["ingest"]["exit"] != 0:
@@ -287,7 +308,9 @@ def main() -> int:
             f"so units are converted on every block); store {du(out) / GB:.2f} GB; {checked}. Input larger than "
             "1 GiB of float64 daily values streams by default: whole days in time blocks of about 128 MB of one "
             "variable's float64 values (cut where the input's dask chunks of 32 MiB are cut), encoded to int16 and "
-            "staged beside the store, then written tile by tile through the store's write API."
+            "staged beside the store, then written tile by tile through the store's write API. The staging took "
+            f"{results['ingest']['staging_peak'] / GB:.2f} GB of disk at its largest. The in-memory path was not run "
+            "on this input."
         )
     finally:
         if not args.keep:
