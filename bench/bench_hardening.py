@@ -123,15 +123,17 @@ class HealthProbe:
         self._stop.set()
         self._thread.join(60)
 
-    def summary(self) -> str:
-        """max, p99 and median latency in ms, with the count."""
+    def summary(self, until: int | None = None) -> str:
+        """max, p99 and median latency in ms, with the count (of the first ``until`` probes if given)."""
         if not self.latencies:
             return "no probe"
-        values = sorted(self.latencies)
+        values = sorted(self.latencies[:until])
+        over = sum(v >= 1.0 for v in values)
         p99 = values[min(len(values) - 1, int(0.99 * len(values)))]
         return (
             f"max {max(values) * 1000:.0f} ms, p99 {p99 * 1000:.0f} ms, median "
-            f"{statistics.median(values) * 1000:.0f} ms over {len(values)} probes, {self.failures} failed"
+            f"{statistics.median(values) * 1000:.0f} ms over {len(values)} probes, {over} of 1 s or more, "
+            f"{self.failures} failed"
         )
 
 
@@ -272,6 +274,16 @@ def part_submit(code: Path, work: Path, count: int = 100_000) -> str:
     )
 
 
+def job_state(client: httpx.Client, location: str, last: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The job's status; when the server no longer answers, the last status seen, marked 'server gone'."""
+    if not location:
+        return {}
+    try:
+        return client.get(location).json()
+    except httpx.HTTPError:
+        return {**(last or {}), "state": f"server gone (last seen {(last or {}).get('state')})"}
+
+
 def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s: float) -> list[str]:
     """The largest on-demand request, 8 concurrent on-demand requests and a large job, all at once."""
     server = start(code, work / "load", cap_bytes)
@@ -286,6 +298,7 @@ def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s
     sampler = sampled(server, stop)
     lines: list[str] = []
     deadline = time.monotonic() + limit_s
+    load_at_start = os.getloadavg()[0]
     try:
         with (
             HealthProbe(base) as probe,
@@ -306,10 +319,11 @@ def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s
 
             with ThreadPoolExecutor(max_workers=9) as pool:  # the largest request and 8 others, 3 rounds
                 results = list(pool.map(on_demand, [0, *range(1, 9), *range(1, 9), *range(1, 9)]))
-            state = client.get(location).json() if location else {}
+            on_demand_s, on_demand_count = time.perf_counter() - start_time, len(probe.latencies)
+            state = job_state(client, location)
             while location and state.get("state") in ("queued", "running") and time.monotonic() < deadline:
                 time.sleep(2.0)
-                state = client.get(location).json()
+                state = job_state(client, location, state)
             job_s = time.perf_counter() - start_time
             if state.get("state") in ("queued", "running"):
                 client.delete(location)
@@ -326,7 +340,10 @@ def part_load(code: Path, work: Path, job_features: int, cap_bytes: int, limit_s
     lines.append(f"- on-demand: {len(results)} requests, statuses {statuses}; the largest took {results[0][1]:.1f} s, "
                  f"the others median {statistics.median(t for _, t in results[1:]):.1f} s")  # fmt: skip
     lines.append(f"- /health: {probe.summary()}; an idle server meanwhile: {idle.summary()}; load average "
-                 f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")  # fmt: skip
+                 f"{load_at_start:.1f} at the start, {os.getloadavg()[0]:.1f} at the end, on {os.cpu_count()} "
+                 "cores")  # fmt: skip
+    lines.append(f"- /health during the on-demand requests alone (first {on_demand_s:.0f} s): "
+                 f"{probe.summary(until=on_demand_count)}")  # fmt: skip
     lines.append(f"- memory: peak RSS {mb(report['peak_rss_bytes'])} under a {mb(cap_bytes)} cap ({report['cap']}); "
                  f"group peak with page cache {mb(report['group_peak_bytes'])}; kills for memory: "
                  f"{report['oom_kills']}")  # fmt: skip
