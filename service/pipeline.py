@@ -1140,10 +1140,14 @@ class _VariantRun:
 
     @property
     def weights_key(self) -> str:
-        """Variants with equal keys share their weights: same dataset and weighting."""
+        """Variants with equal keys share their weights: same dataset, weighting and, in a dataset with
+        several grids, the same grids read (weights_for weighs on the grids of the request's variables)."""
         weighting = self.request.weighting
         text = weighting if isinstance(weighting, str) else json.dumps(weighting.model_dump(), sort_keys=True)
-        return f"{self.store.name}|{text}"
+        grids = ""
+        if len(self.store.grids) > 1:
+            grids = "|" + ",".join(grids_for(self.store, request_variables(self.request, self.store)))
+        return f"{self.store.name}|{text}{grids}"
 
     @property
     def sharing_key(self) -> str:

@@ -196,3 +196,34 @@ def test_under_cells_a_request_with_an_indicator_across_grids_is_refused_before_
         with pytest.raises(RequestError, match=r"indicator 'hotdry_days' reads variables on different grids"):
             call(request, stores["both"], settings)
     run(_request(["prcp_total", "hotdry_days"]), stores["both"], settings)  # under 'series' it is computed
+
+
+def test_variants_and_events_on_a_dataset_with_several_grids(stores, settings) -> None:
+    """Variants reading other grids of one dataset each get the weights of their own grids (issue 13 with
+    issue 11's layout): each equals its request alone; events read both grids too."""
+    variants = [{"name": "rain", "indicators": ["prcp_total"]}, {"name": "heat", "indicators": ["tmean"]}]
+    combined = run(_request(["prcp_total"], variants=variants), stores["both"], settings).frame
+    rain = run(_request(["prcp_total"]), stores["both"], settings).frame
+    heat = run(_request(["tmean"]), stores["both"], settings).frame
+    assert combined["rain__prcp_total"].tolist() == rain["prcp_total"].tolist()
+    assert combined["heat__tmean"].tolist() == heat["tmean"].tolist()
+    events = [
+        {"id": "e1", "feature_id": "a", "date": "2004-03-01"},
+        {"id": "e2", "feature_id": "b", "date": "2003-07-15"},
+    ]
+    body = {
+        "features": {"type": "FeatureCollection", "features": FEATURES},
+        "indicators": ["prcp_total", "tmean"],
+        "events": events,
+        "windows": [{"name": "prior_year", "start": {"months": -12}, "end": {"days": -1}}],
+        "baseline": {"start": 2001, "end": 2003},
+    }
+    both = run(validate_request(IndicatorRequest, body), stores["both"], settings).frame
+    fine = run(
+        validate_request(IndicatorRequest, {**body, "indicators": ["prcp_total"]}), stores["fine"], settings
+    )
+    coarse = run(
+        validate_request(IndicatorRequest, {**body, "indicators": ["tmean"]}), stores["coarse"], settings
+    )
+    assert both["prior_year__prcp_total"].tolist() == fine.frame["prior_year__prcp_total"].tolist()
+    assert both["prior_year__tmean"].tolist() == coarse.frame["prior_year__tmean"].tolist()
