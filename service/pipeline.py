@@ -522,8 +522,7 @@ def lazy_batch_tables(
     where they ran, only the tables come back), for events and for variants that share one aggregation.
     """
     batch = take_weights(weights, rows)
-    daily = aggregate(store, batch, variables=variables, time=span)
-    arrays = {v: daily[v].data for v in variables}
+    arrays = lazy_series(store, batch, variables=variables, time=span)  # as lazy_batch_table
     by_id = _feature_frame(batch, np.arange(len(rows)))
     token = f"wxshock-table-{uuid.uuid4().hex}"  # a key of its own, as in lazy_batch_table
     return dask.delayed(batch_tables, pure=False)(
