@@ -186,14 +186,15 @@ def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
 def phase_costs(args: argparse.Namespace) -> dict[str, Any]:
     """Per-chunk read + decode (Store.read_raw), per-chunk weighted sums, per-feature table: CPU ms, medians."""
     import numpy as np
+    from numcodecs import blosc
 
     from service import aggregate, pipeline
     from service.settings import Settings
     from service.store import open_store
 
-    from numcodecs import blosc
-
-    blosc.use_threads = False  # decoded in this thread, as the pipeline's task threads do: thread_time sees it all
+    blosc.use_threads = (
+        False  # decoded in this thread, as the pipeline's task threads do: thread_time sees it all
+    )
     store = open_store(args.store)
     request = batch_request(polygons(store, args.features))
     resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
@@ -357,17 +358,18 @@ def phase_cluster(args: argparse.Namespace) -> dict[str, Any]:
             with Client(processes.address, set_as_default=False) as observer:
                 workers = set(observer.scheduler_info(n_workers=-1)["workers"])
 
-                def to_server() -> int:
+                def to_server(among: bool = False) -> int:
+                    """Bytes the workers sent so far to others than workers (the server), or among themselves."""
                     logs = observer.run(lambda dask_worker: list(dask_worker.transfer_outgoing_log))
                     return sum(
-                        e["total"] for log in logs.values() for e in log if e.get("who") not in workers
+                        e["total"] for log in logs.values() for e in log if (e.get("who") in workers) == among
                     )
 
-                before = to_server()
+                before, among_before = to_server(), to_server(among=True)
                 wall = time.perf_counter()
                 pipeline.run(request, store, settings)
                 after_wall = time.perf_counter() - wall
-                now = to_server()
+                now, among_now = to_server(), to_server(among=True)
                 # before: the aggregation alone, its daily series gathered by the server (the old path)
                 resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
                 prepared = pipeline.prepare(request, store, settings)
@@ -392,6 +394,7 @@ def phase_cluster(args: argparse.Namespace) -> dict[str, Any]:
         "variables": list(variables),
         "table_bytes_per_feature": (now - before) / n,
         "series_bytes_per_feature": (old - now) / n,
+        "between_workers_bytes_per_feature": (among_now - among_before) / n,
         "run_wall_s": after_wall,
         "aggregation_only_wall_s": old_wall,
         "load": load(),
@@ -418,7 +421,7 @@ def phase_job(args: argparse.Namespace) -> dict[str, Any]:
     store = Path(args.job_store) if args.job_store else DEFAULT_SMALL
     body = json.dumps({"features": points(store, args.job_features)})
     out: dict[str, Any] = {"features": args.job_features, "store": str(store)}
-    cases = [("csv", True), ("parquet", True), ("csv", False)]
+    cases = [("csv", True), ("parquet", True)] + ([("csv", False)] if args.job_no_trim else [])
     with tempfile.TemporaryDirectory() as root:
         no_trim = Path(root) / "no-trim"
         no_trim.mkdir()
@@ -470,7 +473,44 @@ def phase_job(args: argparse.Namespace) -> dict[str, Any]:
     return out
 
 
+def phase_trim(args: argparse.Namespace) -> dict[str, Any]:
+    """RSS after a large request (--trim-features villages, threads), before and after malloc_trim(0)."""
+    import gc
+
+    from service import pipeline
+    from service.memory import release_memory, rss_bytes
+    from service.settings import Settings
+    from service.store import open_store
+
+    store = open_store(args.store)
+    features = polygons(store, args.features)
+    request = batch_request(dict(features, features=features["features"][: args.trim_features]))
+    settings = Settings(threads=os.cpu_count())
+    before = rss_bytes()
+    result = pipeline.run(request, store, settings)
+    rows = len(result.frame)
+    del result
+    gc.collect()
+    time.sleep(1.0)
+    after = rss_bytes()
+    start = time.perf_counter()
+    trimmed = release_memory()
+    trim_ms = (time.perf_counter() - start) * 1000
+    return {
+        "features": args.trim_features,
+        "rows": rows,
+        "rss_before_mb": before / 2**20,
+        "rss_after_request_mb": after / 2**20,
+        "rss_after_trim_mb": rss_bytes() / 2**20,
+        "peak_mb": peak_mb(),
+        "returned": trimmed,
+        "trim_ms": trim_ms,
+        "load": load(),
+    }
+
+
 PHASES = {
+    "trim": phase_trim,
     "job": phase_job,
     "decode": phase_decode,
     "batch": phase_batch,
@@ -515,6 +555,8 @@ def main() -> int:
         "--job-store", help="store of the job phase (default: the small demo of bench_hardening)"
     )
     parser.add_argument("--job-limit-s", type=float, default=1800.0)
+    parser.add_argument("--job-no-trim", action="store_true", help="also a server without malloc_trim")
+    parser.add_argument("--trim-features", type=int, default=2000)
     parser.add_argument("--requests", type=int, default=60)
     parser.add_argument("--latency-store", action="append", default=None)
     parser.add_argument("--only", default="decode,batch,costs,latency,cluster")
@@ -529,7 +571,7 @@ def main() -> int:
     argv = [
         "--store", args.store, "--features", str(args.features), "--requests", str(args.requests),
         "--cluster-features", str(args.cluster_features), "--job-features", str(args.job_features),
-        "--job-limit-s", str(args.job_limit_s), *(["--job-store", args.job_store] if args.job_store else []),
+        "--job-limit-s", str(args.job_limit_s), "--trim-features", str(args.trim_features), *(["--job-store", args.job_store] if args.job_store else []),
     ]  # fmt: skip
     for location in args.latency_store:
         argv += ["--latency-store", location]
@@ -641,7 +683,9 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"{cl['days']} days x {len(cl['variables'])} variables; load {cl['load']:.1f}): the server now receives "
             f"**{cl['table_bytes_per_feature'] / 1024:.1f} kB per feature** (its table rows); before, it gathered "
             f"each batch's daily series, **{cl['series_bytes_per_feature'] / 1024:.0f} kB per feature** (measured "
-            f"in the same run from the workers' transfer logs). Run with tables on the workers "
+            f"in the same run from the workers' transfer logs); between the workers "
+            f"{cl.get('between_workers_bytes_per_feature', 0) / 1024:.0f} kB per feature (partial sums and series "
+            "on their way to the task that needs them). Run with tables on the workers "
             f"{cl['run_wall_s']:.1f} s; the aggregation alone, series gathered, {cl['aggregation_only_wall_s']:.1f} s.",
         ]
     job = results.get("job")
@@ -663,6 +707,16 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
                     f"| {name} | {r['state']} | {r['wall_s']:.0f} | {r['peak_rss_mb']:,.0f} | {r['idle_rss_mb']:,.0f} "
                     f"| {r['rss_after_mb']:,.0f} | {r['result_mb'] or 0:,.0f} | {r['load']:.1f} |"
                 )
+    trim = results.get("trim")
+    if trim:
+        lines += [
+            "",
+            f"malloc_trim(0) (service/memory.py), measured in one process (load {trim['load']:.1f}): RSS "
+            f"{trim['rss_before_mb']:,.0f} MB before a {trim['features']:,}-village request on local threads "
+            f"({trim['rows']:,} rows; peak {trim['peak_mb']:,.0f} MB), {trim['rss_after_request_mb']:,.0f} MB after it "
+            f"with its result freed, **{trim['rss_after_trim_mb']:,.0f} MB after malloc_trim(0)**, which took "
+            f"{trim['trim_ms']:.0f} ms.",
+        ]
     cl_old = results.get("cluster_old_code")
     if cl_old:
         lines += [
