@@ -1229,6 +1229,8 @@ def _resolve_variants(
                 )
                 span = run_.resolved.years
                 _check_years((span.start, span.end), settings)  # type: ignore[union-attr]
+                if run_.resolved.aggregation == "cells":  # a job's submission refuses what its run would
+                    check_cells_grids(run_.resolved, run_.store)
             if run_.weights_key not in weights:
                 made = weights_for(parsed, run_.request, run_.store, settings, invalid=mode)
                 skipped = skipped_of(parsed, made)

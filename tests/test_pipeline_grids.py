@@ -142,6 +142,16 @@ def test_under_cells_an_indicator_whose_variables_lie_on_two_grids_is_refused_na
         check_cells_grids(_request(["prcp_total", "hotdry_days"]), stores["both"])
 
 
+def test_a_cells_variant_across_grids_is_refused_at_submission_naming_the_variant(stores, settings) -> None:
+    from service.errors import RequestError
+    from service.pipeline import prepare_variants
+
+    request = _request(["prcp_total"], variants=[{"name": "cellwise", "aggregation": "cells",
+                                                  "indicators": ["hotdry_days"]}])  # fmt: skip
+    with pytest.raises(RequestError, match=r"cellwise.*'hotdry_days' reads variables on different grids"):
+        prepare_variants(request, stores["both"], settings)
+
+
 def test_a_feature_skipped_on_one_grid_has_no_values_from_any(settings, tmp_path: Path) -> None:
     """The coarse grid has no data in its north-west cell; a community inside it can be computed on the fine
     grid only: skipped, it gets null values and no cells on every grid, the other keeps its values."""
