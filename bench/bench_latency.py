@@ -113,7 +113,7 @@ def compute_share(store_path: Path, feature: dict, repeats: int = 10) -> float:
         pipeline.run(request, store, settings)
     profile.disable()
     stats = pstats.Stats(profile).stats  # type: ignore[attr-defined]
-    total = next(v[3] for k, v in stats.items() if k[0].endswith("pipeline.py") and k[2] == "run")
+    total = next(v[3] for k, v in stats.items() if k[0].endswith(("pipeline.py", "seasons.py")) and k[2] == "run")
     compute = next(v[3] for k, v in stats.items() if k[0].endswith("cluster.py") and k[2] == "compute")
     return compute / total
 

@@ -1,6 +1,6 @@
 """Where dask work executes: a dask.distributed scheduler when one is configured, else local threads.
 
-``compute`` is the one place the service turns lazy dask collections into values; ``pipeline.py`` calls it
+``compute`` is the one place the service turns lazy dask collections into values; ``service.pipeline`` calls it
 once per run (or once per feature batch of a job). Both paths run the same task graph, so a result computed
 on the cluster is identical, bit for bit, to the one computed on local threads.
 

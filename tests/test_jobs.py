@@ -226,8 +226,10 @@ def test_a_job_written_batch_by_batch_is_the_whole_table(
     tiny_demo: Path, tmp_path: Path, tiny_communities: dict, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     # batches of 2 features, pieces of 3: a piece gathers rows of several batches, a batch feeds several pieces
-    monkeypatch.setattr(pipeline, "batch_size_for", lambda *args: 2)
-    monkeypatch.setattr(pipeline, "PIECE_FEATURES", 3)
+    from service.pipeline import seasons
+
+    monkeypatch.setattr(seasons, "batch_size_for", lambda *args: 2)  # where run_in_pieces looks them up
+    monkeypatch.setattr(seasons, "PIECE_FEATURES", 3)
     store = open_store(tiny_demo)
     registry, settings = StoreRegistry({store.name: store}), Settings(data_dir=tmp_path)
     request = _request(tiny_communities, 7)
@@ -607,7 +609,8 @@ def test_the_run_reuses_the_weights_computed_at_submission(
     def no_second_time(*args: Any, **kwargs: Any) -> None:  # noqa: ANN401
         raise AssertionError("the weights were computed again")
 
-    monkeypatch.setattr(pipeline, "features_and_weights", no_second_time)
+    for module in (pipeline.checks, pipeline.core):  # where it is defined and where a run would call it
+        monkeypatch.setattr(module, "features_and_weights", no_second_time)
     done = _wait(runner, job.id, {"succeeded", "failed"})
     assert done.state == "succeeded", done.error
     # kept only until the job ends: removed just after its end is recorded, so give the worker a moment

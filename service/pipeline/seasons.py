@@ -1,0 +1,319 @@
+"""run, run_in_pieces and prepare: the season table of a request, whole or written batch by batch."""
+
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from service import cluster
+from service.encode import RunResult
+from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
+from service.errors import (
+    RunCancelledError,
+)
+from service.geometry import Weights
+from service.indicators.table import (
+    add_warning_notes,
+    resolve_request,
+)
+from service.pipeline.cells import cells_table
+from service.pipeline.checks import _dry_run, _prepare_resolved, _without_skipped
+from service.pipeline.core import (
+    DEFAULT_BATCH_FEATURES,
+    Cancelled,
+    Progress,
+    _check_years,
+    _feature_columns,
+    _in_feature_order,
+    _warnings_in_order,
+    _without_features,
+    batch_size_for,
+    check_cells_grids,
+    feature_batches,
+    lazy_batch_table,
+    needed_variables,
+    provenance,
+    take_weights,
+    time_span,
+)
+from service.pipeline.events import prepare_events, run_events
+from service.pipeline.series import SeriesTable
+from service.pipeline.variants import prepare_variants, run_variants
+from service.prepared import Prepared, skipped_warnings
+from service.schemas import IndicatorRequest
+from service.settings import Settings
+from service.store import Store
+from service.warning_codes import warning
+
+
+def run(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    progress: Progress | None = None,
+    cancelled: Cancelled | None = None,
+    batch_size: int = DEFAULT_BATCH_FEATURES,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
+    stores: Mapping[str, Store] | None = None,
+) -> RunResult:
+    """Season indicators for every feature of the request, one row per (feature_id, year).
+
+    ``invalid_features`` is what to do with a feature that cannot be computed when the request does not say
+    ('fail' on demand, 'skip' for jobs). ``prepared`` reuses the weights of an earlier :func:`prepare`.
+    A request with events gives one row per event instead (:func:`run_events`); one with variants computes
+    every variant, the datasets they name taken from ``stores`` (:func:`run_variants`).
+    """
+    if request.variants or request.events is not None:
+        runner = run_variants if request.variants else run_events
+        return runner(
+            request,
+            store,
+            settings,
+            progress=progress,
+            cancelled=cancelled,
+            batch_size=batch_size,
+            invalid_features=invalid_features,
+            prepared=prepared,
+            stores=stores,
+        )
+    run_ = _batch_run(request, store, settings, progress, cancelled, batch_size, invalid_features, prepared)
+    resolved, prepared, batches = run_.resolved, run_.prepared, run_.batches
+    parsed, weights = prepared.parsed, prepared.weights
+    parts = dict(run_.computed)
+    frames = [parts[k][0] for k in range(len(batches))]
+    warnings = [w for k in range(len(batches)) for w in parts[k][1]]
+    frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
+    warnings = _warnings_in_order(warnings, weights.feature_ids)
+    frame, warnings = _without_skipped(frame, warnings, prepared.skipped)
+    later = [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in parsed.repaired
+    ] + skipped_warnings(prepared.skipped)
+    warnings.extend(later)
+    frame = add_warning_notes(frame, later)  # notes last, with the codes of the warnings made here
+    return RunResult(
+        frame=frame,
+        provenance=provenance(resolved, store, parsed, prepared.skipped),
+        warnings=warnings,
+    )
+
+
+@dataclass
+class _BatchRun:
+    """A run's resolved request, weights and feature batches, and its batch tables as they are computed."""
+
+    resolved: IndicatorRequest
+    prepared: Prepared
+    batches: list[np.ndarray]
+    # (batch number, (frame, warnings)) in the order batches finish; raises RunCancelledError at the end when
+    # cancelled before every batch was computed
+    computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
+
+
+def _batch_run(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    progress: Progress | None,
+    cancelled: Cancelled | None,
+    batch_size: int,
+    invalid_features: str,
+    prepared: Prepared | None,
+) -> _BatchRun:
+    """The common part of :func:`run` and :func:`run_in_pieces`: resolve, weigh, batch, compute lazily."""
+    resolved = resolve_request(request, store.dates, store.calendar, store.variables)
+    _check_years((resolved.years.start, resolved.years.end), settings)
+    if resolved.aggregation == "cells":
+        check_cells_grids(resolved, store)
+    variables = needed_variables(resolved)
+    if prepared is None:
+        prepared = _prepare_resolved(resolved, store, settings, invalid_features)
+    parsed, weights = prepared.parsed, prepared.weights
+    # a fixed baseline may lie after the requested years: read up to whichever ends later
+    span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
+    properties = [f.properties for f in parsed.features]
+    batches = feature_batches(weights, batch_size_for(batch_size, span, variables))
+    light = _without_features(resolved)
+    computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
+    if resolved.aggregation == "cells":
+        computed = _cells_batches(
+            batches, store, weights, properties, resolved, span, variables, settings, cancelled
+        )
+    else:
+        lazy = (
+            (k, lazy_batch_table(store, weights, rows, [properties[i] for i in rows], light, span, variables))
+            for k, rows in enumerate(batches)
+        )
+        # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
+        # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order later.
+        computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled)
+    return _BatchRun(resolved, prepared, batches, _counted(computed, batches, len(parsed.features), progress))
+
+
+def _counted(
+    computed: Iterator[tuple[int, Any]], batches: list[np.ndarray], total: int, progress: Progress | None
+) -> Iterator[tuple[int, Any]]:
+    """The batches as they finish, progress reported per batch; RunCancelledError when some never came."""
+    done = seen = 0
+    if progress is not None:
+        progress(0, total)
+    for k, part in computed:
+        seen += 1
+        done += len(batches[k])
+        if progress is not None:
+            progress(done, total)
+        yield k, part
+    if seen < len(batches):
+        raise RunCancelledError(f"cancelled after {done} of {total} features")
+
+
+# Features per piece of a table written piece by piece (run_in_pieces): 1,000 features x 48 years is 48,000 rows.
+PIECE_FEATURES = 1000
+
+
+def run_in_pieces(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    spill: Path,
+    *,
+    progress: Progress | None = None,
+    cancelled: Cancelled | None = None,
+    batch_size: int = DEFAULT_BATCH_FEATURES,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
+) -> SeriesTable | None:
+    """The table of :func:`run`, row for row, made batch by batch: memory flat in the number of features.
+
+    Each finished batch's rows (in request order within the batch, notes and skipped features as
+    :func:`run` makes them) are written to a file in the directory ``spill``, cut at every PIECE_FEATURES-th
+    feature of the request; the frames returned read those files back, PIECE_FEATURES features at a time, in
+    request order. The caller encodes them (service.encode.stream) and then removes ``spill``. None for a
+    request with events or variants (their runs are made whole: use :func:`run`).
+    """
+    import pickle
+
+    if request.variants or request.events is not None:
+        return None
+    run_ = _batch_run(request, store, settings, progress, cancelled, batch_size, invalid_features, prepared)
+    resolved, prepared = run_.resolved, run_.prepared
+    parsed, weights = prepared.parsed, prepared.weights
+    later = [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in parsed.repaired
+    ] + skipped_warnings(prepared.skipped)
+    position = {fid: i for i, fid in enumerate(weights.feature_ids)}
+    spill.mkdir(parents=True, exist_ok=True)
+    columns: list[str] | None = None
+    warnings: list[dict[str, Any]] = []
+    paths = {}
+    for k, (frame, batch_warnings) in run_.computed:
+        at = frame["feature_id"].map(position).to_numpy()
+        order = np.argsort(at, kind="stable")
+        frame, at = frame.iloc[order].reset_index(drop=True), at[order]
+        frame, batch_warnings = _without_skipped(frame, batch_warnings, prepared.skipped)
+        frame = add_warning_notes(frame, later)
+        columns = columns or [str(c) for c in frame.columns]
+        warnings.extend(batch_warnings)
+        piece = at // PIECE_FEATURES
+        cuts = np.flatnonzero(np.diff(piece)) + 1
+        paths[k] = spill / f"batch-{k}.pickle"
+        with open(paths[k], "wb") as handle:
+            for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(frame)], strict=True):
+                if hi > lo:
+                    pickle.dump((int(piece[lo]), at[lo:hi], frame.iloc[lo:hi]), handle, protocol=5)
+    warnings = _warnings_in_order(warnings, weights.feature_ids)
+    warnings.extend(later)
+    n_pieces = -(-len(weights.feature_ids) // PIECE_FEATURES)
+    return SeriesTable(
+        columns=columns or [],
+        provenance=provenance(resolved, store, parsed, prepared.skipped),
+        warnings=warnings,
+        frames=_pieces_in_order([paths[k] for k in sorted(paths)], n_pieces),
+    )
+
+
+def _pieces_in_order(paths: list[Path], n_pieces: int) -> Iterator[pd.DataFrame]:
+    """The spilled rows, PIECE_FEATURES features of the request at a time, in request order."""
+    import pickle
+
+    handles = [open(path, "rb") for path in paths]  # noqa: SIM115 - closed below, after the last piece
+
+    def next_of(handle: Any) -> Any:
+        try:
+            return pickle.load(handle)
+        except EOFError:
+            return None
+
+    try:
+        heads = [next_of(h) for h in handles]
+        for piece in range(n_pieces):
+            found, at = [], []
+            for i, handle in enumerate(handles):
+                while heads[i] is not None and heads[i][0] == piece:
+                    at.append(heads[i][1])
+                    found.append(heads[i][2])
+                    heads[i] = next_of(handle)
+            if found:
+                frame = pd.concat(found, ignore_index=True)
+                yield frame.iloc[np.argsort(np.concatenate(at), kind="stable")].reset_index(drop=True)
+    finally:
+        for handle in handles:
+            handle.close()
+
+
+def _cells_batches(
+    batches: list[np.ndarray],
+    store: Store,
+    weights: Weights,
+    properties: list[dict | None],
+    resolved: IndicatorRequest,
+    span: slice,
+    variables: tuple[str, ...],
+    settings: Settings,
+    cancelled: Cancelled | None,
+) -> Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]:
+    """Aggregation "cells", batch after batch (each batch's cell tasks run on the cluster by themselves)."""
+    for k, rows in enumerate(batches):
+        if cancelled is not None and cancelled():
+            return
+        batch = take_weights(weights, rows)
+        table = cells_table(store, batch, [properties[i] for i in rows], resolved, span, variables, settings)
+        yield k, (_feature_columns(table.frame, weights, rows), table.warnings)
+
+
+def prepare(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    invalid_features: str = "fail",
+    keep_shapes: bool = False,
+    stores: Mapping[str, Store] | None = None,
+) -> Prepared:
+    """Every check a run makes before reading daily values, and the features' weights: what a job's
+    submission runs (so it refuses what the run would refuse) and what its run reuses.
+
+    Request-level faults raise; per-feature faults raise under 'fail' (one error listing every bad feature)
+    and are skipped under 'skip'. A request whose every feature is skipped raises FeatureError (422).
+    ``keep_shapes`` is kept for callers that draw the features (the shapes are always kept in memory; a
+    pickled Prepared leaves them out).
+    With events or variants the checks are theirs (:func:`prepare_events`, :func:`prepare_variants`);
+    ``stores`` serves the datasets that variants name.
+    """
+    if request.variants:
+        return prepare_variants(request, store, settings, invalid_features=invalid_features, stores=stores)
+    if request.events is not None:
+        return prepare_events(request, store, settings, invalid_features=invalid_features)[0]
+    resolved = resolve_request(request, store.dates, store.calendar, store.variables)
+    _check_years((resolved.years.start, resolved.years.end), settings)
+    if resolved.aggregation == "cells":
+        check_cells_grids(resolved, store)
+    prepared = _prepare_resolved(resolved, store, settings, invalid_features, keep_shapes)
+    _dry_run(resolved, store, prepared)
+    return prepared
