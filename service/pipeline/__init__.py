@@ -61,6 +61,7 @@ from service.pipeline.core import (  # noqa: F401
     request_variables,
     series_variables,
     snap_places,
+    store_daily_series,
     take_weights,
     time_span,
     weights_for,

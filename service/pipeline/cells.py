@@ -21,7 +21,7 @@ from service.indicators.table import (
     concat_raw,
     plan_indicators,
 )
-from service.pipeline.core import _daily_series, _first_feature, check_cells_grids
+from service.pipeline.core import _daily_series, _first_feature, check_cells_grids, store_daily_series
 from service.schemas import IndicatorRequest
 from service.settings import Settings
 from service.store import Store
@@ -81,17 +81,8 @@ def cell_daily_series(
             snap_daily(values, snap_decimals(enc.scale_factor, enc.add_offset))
         values[raw == enc.fill_value] = np.nan
         arrays[var] = values
-    dates = store.dates
     _, lat = cell_centres_lonlat(store, cells, grid)
-    return DailySeries(
-        **arrays,
-        year=np.asarray(dates.year[span]),
-        month=np.asarray(dates.month[span]),
-        day=np.asarray(dates.day[span]),
-        dayofyear=np.asarray(dates.dayofyear[span]),
-        calendar=store.calendar,
-        latitude=lat,
-    )
+    return store_daily_series(store, span, arrays, lat)
 
 
 def cell_chunk_values(

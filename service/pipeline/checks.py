@@ -9,11 +9,11 @@ from service.encode.files import write_atomically  # noqa: F401 - re-exported: p
 from service.errors import (
     FeatureError,
 )
-from service.indicators.base import DailySeries
+from service.indicators.base import VARIABLES
 from service.indicators.table import (
     compute_table,
 )
-from service.pipeline.core import features_and_weights, needed_variables, time_span
+from service.pipeline.core import features_and_weights, needed_variables, store_daily_series, time_span
 from service.prepared import Prepared, skipped_of
 from service.schemas import IndicatorRequest, SeriesRequest
 from service.settings import Settings
@@ -51,18 +51,7 @@ def _dry_run(resolved: IndicatorRequest, store: Store, prepared: Prepared) -> No
     def missing(name: str) -> np.ndarray | None:
         return np.full((1, days), np.nan) if name in needed else None
 
-    dates = store.dates
-    daily = DailySeries(
-        tmax=missing("tmax"),
-        tmin=missing("tmin"),
-        prcp=missing("prcp"),
-        year=np.asarray(dates.year[span]),
-        month=np.asarray(dates.month[span]),
-        day=np.asarray(dates.day[span]),
-        dayofyear=np.asarray(dates.dayofyear[span]),
-        calendar=store.calendar,
-        latitude=np.zeros(1),
-    )
+    daily = store_daily_series(store, span, {var: missing(var) for var in VARIABLES}, np.zeros(1))
     with np.errstate(all="ignore"):
         compute_table(daily, [feature.id], [feature.properties], resolved)
 

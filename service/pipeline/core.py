@@ -331,20 +331,27 @@ def needed_variables(request: IndicatorRequest) -> tuple[str, ...]:
     return tuple(v for v in VARIABLES if v in used)
 
 
-def _daily_series(ds: Any, store: Store, span: slice, latitude: np.ndarray) -> DailySeries:
-    """The computed aggregation as the indicators' DailySeries (variables not aggregated are None)."""
+def store_daily_series(
+    store: Store, span: slice, values: Mapping[str, np.ndarray | None], latitude: np.ndarray
+) -> DailySeries:
+    """A DailySeries of ``values`` ((feature, day) arrays in degC or mm/day; a variable left out is None) on the
+    store's days ``span``, in its calendar."""
     dates = store.dates
     return DailySeries(
-        tmax=daily_values(ds, store, "tmax"),
-        tmin=daily_values(ds, store, "tmin"),
-        prcp=daily_values(ds, store, "prcp"),
+        **{var: values.get(var) for var in VARIABLES},
         year=np.asarray(dates.year[span]),
         month=np.asarray(dates.month[span]),
         day=np.asarray(dates.day[span]),
         dayofyear=np.asarray(dates.dayofyear[span]),
         calendar=store.calendar,
-        latitude=np.asarray(latitude, dtype=np.float64),
+        latitude=latitude,
     )
+
+
+def _daily_series(ds: Any, store: Store, span: slice, latitude: np.ndarray) -> DailySeries:
+    """The computed aggregation as the indicators' DailySeries (variables not aggregated are None)."""
+    values = {var: daily_values(ds, store, var) for var in VARIABLES}
+    return store_daily_series(store, span, values, np.asarray(latitude, dtype=np.float64))
 
 
 def _feature_columns(frame: pd.DataFrame, weights: Weights | GridWeights, rows: np.ndarray) -> pd.DataFrame:
@@ -406,22 +413,35 @@ def lazy_batch_table(
     batch's daily means, snaps them, computes the indicator table and adds the feature columns. On a cluster
     that runs on a worker, so the daily series never travel to the server.
     """
-    import dask
+    return _lazy_batch(batch_table, store, weights, rows, properties, resolved, span, variables)
 
+
+def _lazy_batch(
+    last: Callable[..., Any],
+    store: Store,
+    weights: Weights | GridWeights,
+    rows: np.ndarray,
+    properties: list[dict | None],
+    what: Any,
+    span: slice,
+    variables: tuple[str, ...],
+) -> Any:
+    """A feature batch's aggregation as a dask graph ending in one task, ``last``, that computes what the batch
+    returns (``what``: the resolved request, or the batch jobs) from its daily means."""
     batch = take_weights(weights, rows)
     # one task per variable finishes its whole series into one array (no per-block arrays joined by dask)
     arrays = lazy_series(store, batch, variables=variables, time=span)
     by_id = _feature_frame(batch, np.arange(len(rows)))
     # a key of its own: two runs with the same features but other indicators must not share a table
     token = f"wxshock-table-{uuid.uuid4().hex}"
-    return dask.delayed(batch_table, pure=False)(
+    return dask.delayed(last, pure=False)(
         arrays,
         store,
         span,
         np.asarray(batch.latitude, dtype=np.float64),
         list(batch.feature_ids),
         properties,
-        resolved,
+        what,
         by_id,
         dask_key_name=token,
     )
@@ -441,9 +461,8 @@ def batch_table(
 
     The means are snapped in place (they are this task's own arrays), as :func:`daily_values` snaps them.
     """
-    daily = batch_daily(arrays, store, span, latitude)
-    table = compute_table(daily, feature_ids, properties, resolved)
-    return table.frame.merge(by_id, on="feature_id", how="left", sort=False), table.warnings
+    jobs = [BatchJob(resolved=resolved)]
+    return batch_tables(arrays, store, span, latitude, feature_ids, properties, jobs, by_id)[0]
 
 
 def batch_daily(
@@ -457,16 +476,7 @@ def batch_daily(
             array = array.copy()
         enc = store.encoding(var)
         values[var] = snap_daily(array, snap_decimals(enc.scale_factor, enc.add_offset))
-    dates = store.dates
-    return DailySeries(
-        **values,
-        year=np.asarray(dates.year[span]),
-        month=np.asarray(dates.month[span]),
-        day=np.asarray(dates.day[span]),
-        dayofyear=np.asarray(dates.dayofyear[span]),
-        calendar=store.calendar,
-        latitude=latitude,
-    )
+    return store_daily_series(store, span, values, latitude)
 
 
 @dataclass(frozen=True)
@@ -496,21 +506,7 @@ def lazy_batch_tables(
     As :func:`lazy_batch_table` (the chunk tasks and the reduction are the aggregation's, the last task runs
     where they ran, only the tables come back), for events and for variants that share one aggregation.
     """
-    batch = take_weights(weights, rows)
-    arrays = lazy_series(store, batch, variables=variables, time=span)  # as lazy_batch_table
-    by_id = _feature_frame(batch, np.arange(len(rows)))
-    token = f"wxshock-table-{uuid.uuid4().hex}"  # a key of its own, as in lazy_batch_table
-    return dask.delayed(batch_tables, pure=False)(
-        arrays,
-        store,
-        span,
-        np.asarray(batch.latitude, dtype=np.float64),
-        list(batch.feature_ids),
-        properties,
-        jobs,
-        by_id,
-        dask_key_name=token,
-    )
+    return _lazy_batch(batch_tables, store, weights, rows, properties, jobs, span, variables)
 
 
 def batch_tables(

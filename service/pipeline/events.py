@@ -16,7 +16,7 @@ from service.errors import (
     RunCancelledError,
 )
 from service.geometry import Weights
-from service.indicators.base import DailySeries
+from service.indicators.base import VARIABLES
 from service.indicators.table import (
     add_warning_notes,
 )
@@ -35,6 +35,7 @@ from service.pipeline.core import (
     lazy_batch_tables,
     needed_variables,
     provenance,
+    store_daily_series,
     take_weights,
 )
 from service.prepared import Prepared, skipped_warnings
@@ -77,23 +78,12 @@ def _dry_run_events(resolved: ResolvedEvents, store: Store, prepared: Prepared) 
         return
     event = usable[0]
     needed = needed_variables(resolved.request)
-    dates = store.dates
-    days = int(dates.year.size)
+    days = int(store.dates.year.size)
 
     def missing(name: str) -> np.ndarray | None:
         return np.full((1, days), np.nan) if name in needed else None
 
-    daily = DailySeries(
-        tmax=missing("tmax"),
-        tmin=missing("tmin"),
-        prcp=missing("prcp"),
-        year=np.asarray(dates.year),
-        month=np.asarray(dates.month),
-        day=np.asarray(dates.day),
-        dayofyear=np.asarray(dates.dayofyear),
-        calendar=store.calendar,
-        latitude=np.zeros(1),
-    )
+    daily = store_daily_series(store, slice(None), {var: missing(var) for var in VARIABLES}, np.zeros(1))
     with np.errstate(all="ignore"):
         compute_event_table(
             daily, np.array([0]), np.array([event]), [ids[plan.feature_rows[event]]], resolved
