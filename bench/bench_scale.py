@@ -102,12 +102,13 @@ def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
     from numcodecs import Blosc
 
     from service import pipeline
+    from service.indicators import table
     from service.settings import Settings
     from service.store import open_store
 
     store = open_store(args.store)
     request = batch_request(polygons(store, args.features))
-    resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
+    resolved = table.resolve_request(request, store.dates, store.calendar, store.variables)
     _, weights = pipeline.features_and_weights(resolved, store, Settings())
     variables = pipeline.needed_variables(resolved)
     span = pipeline.time_span(store, resolved.years.end)
@@ -189,6 +190,7 @@ def phase_costs(args: argparse.Namespace) -> dict[str, Any]:
     from numcodecs import blosc
 
     from service import aggregate, pipeline
+    from service.indicators import table
     from service.settings import Settings
     from service.store import open_store
 
@@ -197,7 +199,7 @@ def phase_costs(args: argparse.Namespace) -> dict[str, Any]:
     )
     store = open_store(args.store)
     request = batch_request(polygons(store, args.features))
-    resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
+    resolved = table.resolve_request(request, store.dates, store.calendar, store.variables)
     _, weights = pipeline.features_and_weights(resolved, store, Settings())
     rows = pipeline.feature_batches(weights, 1000)[0]
     batch = pipeline.take_weights(weights, rows)
@@ -339,7 +341,8 @@ def phase_cluster(args: argparse.Namespace) -> dict[str, Any]:
 
     from distributed import Client
 
-    from service import cluster, pipeline
+    from service import aggregate, cluster, pipeline
+    from service.indicators import table
     from service.settings import Settings
     from service.store import open_store
     from tests._support_cluster import DaskProcesses
@@ -371,14 +374,14 @@ def phase_cluster(args: argparse.Namespace) -> dict[str, Any]:
                 after_wall = time.perf_counter() - wall
                 now, among_now = to_server(), to_server(among=True)
                 # before: the aggregation alone, its daily series gathered by the server (the old path)
-                resolved = pipeline.resolve_request(request, store.dates, store.calendar, store.variables)
+                resolved = table.resolve_request(request, store.dates, store.calendar, store.variables)
                 prepared = pipeline.prepare(request, store, settings)
                 span = pipeline.time_span(store, resolved.years.end)
                 variables = pipeline.needed_variables(resolved)
                 wall = time.perf_counter()
                 for rows in pipeline.feature_batches(prepared.weights, 1000):
                     batch = pipeline.take_weights(prepared.weights, rows)
-                    daily = pipeline.aggregate(store, batch, variables=variables, time=span)
+                    daily = aggregate.aggregate(store, batch, variables=variables, time=span)
                     cluster.compute(daily.drop_vars("tmean", errors="ignore"), settings=settings)
                 old_wall = time.perf_counter() - wall
                 old = to_server()
