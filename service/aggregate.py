@@ -23,6 +23,7 @@ from dask.highlevelgraph import HighLevelGraph
 from scipy import sparse
 
 from service.errors import RequestError
+from service.weighted_sums import chunk_weighted_sums
 
 if TYPE_CHECKING:
     from service.geometry import Weights
@@ -36,8 +37,6 @@ REDUCTION_FAN_IN = 32
 # A day's mean is missing when the weight of its cells with data is below this share of the feature's
 # total weight (guards a denominator that is zero up to rounding).
 MIN_WEIGHT_SHARE = 1e-9
-# Days multiplied at a time within a chunk (a 32 x 32-cell tile of 128 days is 1 MB in float64).
-TIME_TILE_DAYS = 128
 
 
 @dataclass(frozen=True)
@@ -154,49 +153,22 @@ def chunk_sums(
     store: Store, var: str, chunk: ChunkWeights, t: slice, scale_factor: float, fill_value: int
 ) -> Partial:
     """One task: read one chunk's stored integers and return its features' partial sums (scaled units)."""
-    raw = store.read_raw(var, chunk.y, chunk.x, t)
-    return block_sums(raw.reshape(-1, raw.shape[-1]), chunk, scale_factor, fill_value)
+    return block_sums(store.read_raw(var, chunk.y, chunk.x, t), chunk, scale_factor, fill_value)
 
 
 def block_sums(block: np.ndarray, chunk: ChunkWeights, scale_factor: float, fill_value: int) -> Partial:
-    """A chunk's partial sums from its (cells, days) stored integers (days contiguous; may be read-only)."""
+    """A chunk's partial sums from its stored integers: (ny, nx, days) or (cells, days), any strides, may be
+    read-only (a view of a cached chunk).
+
+    The compiled kernel (service.weighted_sums) reads the integers once, without a float64 copy, and adds the
+    terms in the order of ``(weights * scale_factor) @ float64(block)`` with scipy, so the sums are those bit
+    for bit; a cell holding the fill value on a day adds nothing and its weight comes off that day's total.
+    """
     matrix = chunk.matrix
-    used_cells = np.unique(matrix.indices)
-    if used_cells.size * 2 < block.shape[0]:
-        # A few small communities use a few cells of the tile: convert and multiply only those rows
-        # (columns keep their order, so every sum adds the same terms in the same order).
-        block = block[used_cells]
-        matrix = matrix[:, used_cells]
     total = np.asarray(matrix.sum(axis=1)).ravel()
-    used = np.zeros(block.shape[0], dtype=bool)
-    used[matrix.indices] = True
-    if fill_value == np.iinfo(block.dtype).min:
-        # the fill is the type's smallest value: a row's minimum finds it without a (cells, days) mask
-        has_gaps = block.min(axis=1) == fill_value
-    else:
-        has_gaps = (block == fill_value).any(axis=1)
-    bad = np.flatnonzero(used & has_gaps)
-    correction = None
-    if bad.size:
-        # Zero the missing values of the few cells that have them, and take their weight off those days.
-        missing = block[bad] == fill_value
-        rows_with_gaps = block[bad]
-        rows_with_gaps[missing] = 0
-        block = block if block.flags.writeable else block.copy()
-        block[bad] = rows_with_gaps
-        correction = -(matrix[:, bad] @ missing.astype(np.float64))
-    scaled = matrix * scale_factor
-    days = block.shape[1]
-    weighted_sum = np.empty((matrix.shape[0], days))
-    # Days in tiles: the float64 copy of a tile and the sums it feeds stay in cache (about 1.5x faster
-    # than one multiply over the whole block, in a micro-benchmark of a 32 x 32 x 3653 chunk here); one
-    # tile buffer is reused, so no fresh memory is page-faulted per tile.
-    tile = np.empty((block.shape[0], min(days, TIME_TILE_DAYS)))
-    for t0 in range(0, days, TIME_TILE_DAYS):
-        t1 = min(days, t0 + TIME_TILE_DAYS)
-        part = tile[:, : t1 - t0]
-        np.copyto(part, block[:, t0:t1], casting="unsafe")
-        weighted_sum[:, t0:t1] = scaled @ part
+    weighted_sum, correction = chunk_weighted_sums(
+        matrix.data, matrix.indices, matrix.indptr, scale_factor, block, fill_value
+    )
     return Partial(chunk.rows, weighted_sum, total, correction)
 
 
