@@ -221,6 +221,39 @@ def test_an_error_after_the_commit_leaves_the_write_to_recovery(
     assert open_store(path).fingerprint == after and _siblings(path) == []
 
 
+@pytest.mark.parametrize("fails", [False, True])
+def test_write_aside_swaps_the_finished_aside_into_place_or_discards_it(
+    tmp_path: Path, fails: bool, monkeypatch
+) -> None:
+    """The one sequence of every write: the block's store replaces the old one when the block ends; when the block
+    raises, the error goes on, the old store stays and the aside is gone."""
+    path = tmp_path / "s.zarr"
+    path.mkdir()
+    (path / "which").write_text("old", encoding="utf-8")
+    steps: list[str] = []
+    monkeypatch.setattr(swap_module, "CRASH_HOOK", steps.append)
+
+    def write() -> None:
+        with (
+            swap_module.writing(str(path), None),
+            swap_module.write_aside(str(path), None, "writing") as aside,
+        ):
+            assert Path(aside).parent == tmp_path and Path(aside).name.startswith(".s.zarr.writing-")
+            Path(aside).mkdir()
+            (Path(aside) / "which").write_text("new", encoding="utf-8")
+            if fails:
+                raise OSError("the disk is full")
+
+    if fails:
+        with pytest.raises(OSError, match="the disk is full"):
+            write()
+    else:
+        write()
+    assert (path / "which").read_text(encoding="utf-8") == ("old" if fails else "new")
+    assert _siblings(path) == []
+    assert steps == ([] if fails else list(STEPS))
+
+
 def test_stale_asides_of_killed_writes_are_removed_and_a_lone_old_store_is_put_back(tmp_path: Path) -> None:
     path, _ = tmp_path / "s.zarr", None
     write_store(make_dataset(ny=2, nx=2, years=(2000, 2000)), path)

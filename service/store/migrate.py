@@ -29,7 +29,7 @@ from service.store.layout import (
     read_layout,
 )
 from service.store.location import _is_url, _normalise_location, _open_group, _zarr_store
-from service.store.swap import _step, aside_location, discard_aside, swap_into_place, writing
+from service.store.swap import _step, write_aside, writing
 
 
 def migrate_store(
@@ -71,8 +71,7 @@ def _migrate_locked(target: str, storage_options: dict | None, progress: bool) -
             target, storage_options, [plan], root_attrs, layout_of, progress, "migrating",
             extra_root={MIGRATED_ATTR: record},
         )  # fmt: skip
-    aside = aside_location(target, "migrating")
-    try:
+    with write_aside(target, storage_options, "migrating") as aside:
         Path(aside).mkdir(parents=True)
         group = zarr.open_group(_zarr_store(aside, None, read_only=False), mode="w", zarr_format=3)
         group.attrs.update(
@@ -91,11 +90,6 @@ def _migrate_locked(target: str, storage_options: dict | None, progress: bool) -
             array = new[f"{DEFAULT_GRID}/{v}"]
             array.attrs[DAYS_ATTR] = [first, last]
         fingerprint = _finish(aside, None, progress, touched=None)
-        _step("aside-complete")
-        swap_into_place(aside, target, storage_options)
-    except BaseException:
-        discard_aside(aside, target, storage_options)
-        raise
     return fingerprint
 
 

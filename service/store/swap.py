@@ -2,7 +2,9 @@
 write restores, and no litter that outlives it.
 
 Every write builds the complete new store (data, data mask, fingerprint) in a hidden sibling
-``.NAME.<purpose>-<token>`` first. The swap then runs these steps, each named for the crash tests:
+``.NAME.<purpose>-<token>`` first, inside :func:`write_aside` (which every write, update and migration uses):
+its block builds the store there (the step ``aside-complete`` marks its end); the swap then runs these steps,
+each named for the crash tests; a failure before the commit discards the aside.
 
 1. ``journal``: write ``.NAME.swap.json`` (through a temporary file and a rename, so it is whole or absent)
    naming the new store and where the old one goes. From here on the write is committed: recovery completes it.
@@ -276,6 +278,23 @@ def _complete(target: str, storage_options: dict | None, new: str, old: str) -> 
     _step("removed-old")
     _remove_journal(target, storage_options)
     _step("done")
+
+
+@contextlib.contextmanager
+def write_aside(target: str, storage_options: dict | None, purpose: str) -> Iterator[str]:
+    """Every write's sequence: yields a fresh aside location (``purpose``: one of ASIDE_PURPOSES) where the block
+    builds and finishes the complete new store; when the block ends, that store is swapped into place
+    (:func:`swap_into_place`, after the step ``aside-complete``); when the block or the swap raises, the aside is
+    discarded (:func:`discard_aside`: unless the swap was committed) and the error goes on. Use it inside
+    :func:`writing` (which holds the lock)."""
+    aside = aside_location(target, purpose)
+    try:
+        yield aside
+        _step("aside-complete")
+        swap_into_place(aside, target, storage_options)
+    except BaseException:
+        discard_aside(aside, target, storage_options)
+        raise
 
 
 def discard_aside(aside: str, target: str, storage_options: dict | None) -> None:

@@ -78,7 +78,7 @@ from service.store.layout import (
 )
 from service.store.location import _is_url, _normalise_location, _open_group, _zarr_store
 from service.store.read import Store
-from service.store.swap import _step, aside_location, discard_aside, swap_into_place, writing
+from service.store.swap import write_aside, writing
 from service.store.timeaxis import _daily_numbers, _date_table, _iso
 
 GridData = xr.Dataset | Mapping[str, xr.Dataset]
@@ -463,8 +463,7 @@ def _write_new(
     first = min(v.first for p in plans for v in p.variables.values())
     last = max(v.last for p in plans for v in p.variables.values())
     calendar = plans[0].calendar
-    aside = aside_location(target, purpose)
-    try:
+    with write_aside(target, storage_options, purpose) as aside:
         group = zarr.open_group(_zarr_store(aside, storage_options, read_only=False), mode="w", zarr_format=3)
         group.attrs.update(
             {
@@ -487,11 +486,6 @@ def _write_new(
                 regions.append(region)
         _store_all(sources, targets, regions, "writing store" if progress else None)
         fingerprint = _finish(aside, storage_options, progress, touched=None)
-        _step("aside-complete")
-        swap_into_place(aside, target, storage_options)
-    except BaseException:
-        discard_aside(aside, target, storage_options)
-        raise
     return fingerprint
 
 
@@ -827,16 +821,10 @@ def _apply(
     else by rewriting the whole store with the changes."""
     if _is_url(target) or changes.axis[0] < int(store.day_numbers[0]):
         return _rewrite(store, target, storage_options, plans, changes, progress)
-    aside = aside_location(target, "updating")
-    try:
+    with write_aside(target, storage_options, "updating") as aside:
         shutil.copytree(target, aside, copy_function=os.link)
         touched = _update_in_place(aside, store, plans, changes, progress)
         fingerprint = _finish(aside, storage_options, progress, touched=touched)
-        _step("aside-complete")
-        swap_into_place(aside, target, storage_options)
-    except BaseException:
-        discard_aside(aside, target, storage_options)
-        raise
     return fingerprint
 
 
