@@ -128,6 +128,33 @@ class SeasonCube:
     # days present ("scale"), NaN on partial seasons ("null"), 1 ("as_is"); None means 1. Indicators of
     # reduction "standardized" multiply the totals they standardize by it; the table does it for the rest.
     total_factor: np.ndarray | None = None
+    # per-cube results that several indicators share (days with values, season sums): see :meth:`memo`
+    _memo: dict[object, np.ndarray] = field(default_factory=dict, init=False, repr=False, compare=False)
+
+    def memo(self, key: object, make: Callable[[], np.ndarray]) -> np.ndarray:
+        """``make()``, computed once per cube and ``key`` (a copy each time: callers may change it)."""
+        if key not in self._memo:
+            self._memo[key] = make()
+        return self._memo[key].copy()
+
+    def days_with(self, names: tuple[str, ...]) -> np.ndarray:
+        """Days (int64, (feature, year)) on which every one of the variables ``names`` has a value here."""
+        key = ("days", tuple(v for v in VARIABLES if v in names))
+        if key not in self._memo:
+            missing = None
+            for name in key[1]:
+                values = getattr(self, name)
+                if values is None:
+                    raise ValueError(f"this cube holds no {name!r}")
+                missing = np.isnan(values) if missing is None else missing | np.isnan(values)
+            if missing is None:
+                raise ValueError("days_with needs at least one variable")
+            self._memo[key] = np.count_nonzero(~missing, axis=-1).astype(np.int64)
+        return self._memo[key]
+
+    def seed_days(self, names: tuple[str, ...], days: np.ndarray) -> None:
+        """Record :meth:`days_with` of ``names`` when the caller knows it already (the season cut does)."""
+        self._memo[("days", tuple(v for v in VARIABLES if v in names))] = days
 
     @cached_property
     def tmean(self) -> np.ndarray:

@@ -89,6 +89,111 @@ def reduce_in_blocks(
     return out.reshape(lead)
 
 
+# Values per block in the scratch passes below: 32,768 (256 kB of float64) per scratch array. The arrays
+# are allocated once per pass and reused block after block, so no block touches fresh memory, and blocks
+# this large keep numpy's per-call overhead small against the work (a call per step and block).
+PASS_ELEMENTS = 1 << 15
+
+
+class Scratch:
+    """Reusable flat arrays for the blocks of one pass, by name and dtype, each at least one block long."""
+
+    def __init__(self, elements: int) -> None:
+        self.elements = elements
+        self._arrays: dict[tuple[str, np.dtype], np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple[int, ...], dtype: np.dtype | type = np.float64) -> np.ndarray:
+        """The array ``name`` of ``dtype`` viewed with ``shape`` (its contents are whatever was left there)."""
+        key = (name, np.dtype(dtype))
+        flat = self._arrays.get(key)
+        if flat is None:
+            flat = self._arrays[key] = np.empty(self.elements, dtype=dtype)
+        return flat[: int(np.prod(shape))].reshape(shape)
+
+
+def reduce_rows(reducer: Callable[..., np.ndarray], *arrays: np.ndarray) -> np.ndarray:
+    """``reducer(scratch, *blocks)`` over blocks of season-year rows of (feature, year, day) arrays, joined.
+
+    As :func:`reduce_in_blocks`, with blocks of about PASS_ELEMENTS values and a :class:`Scratch` that the
+    reducer computes its temporaries in (``out=``), the same one for every block.
+    """
+    lead = arrays[0].shape[:-1]
+    n_day = arrays[0].shape[-1]
+    flat = [np.ascontiguousarray(a).reshape(-1, n_day) for a in arrays]
+    n_rows = flat[0].shape[0]
+    out = np.empty(n_rows, dtype=np.float64)
+    step = max(1, PASS_ELEMENTS // max(n_day, 1))
+    scratch = Scratch(max(PASS_ELEMENTS, n_day))
+    for start in range(0, n_rows, step):
+        out[start : start + step] = reducer(scratch, *[a[start : start + step] for a in flat])
+    return out.reshape(lead)
+
+
+def valid_sums(scratch: Scratch, values: np.ndarray) -> np.ndarray:
+    """Row sums over the valid days of a (rows, day) block, float64: ``np.nansum(values, axis=-1)``.
+
+    The same operations as numpy's nansum (NaN replaced by 0 in a copy, then one sum per row), so the
+    same bits, in scratch memory. ``values`` may be scratch itself ("values"): it is then changed.
+    """
+    zeroed = scratch.get("values", values.shape, values.dtype)
+    if not np.may_share_memory(zeroed, values):
+        np.copyto(zeroed, values)
+    missing = np.isnan(values, out=scratch.get("missing", values.shape, bool))
+    np.copyto(zeroed, 0, where=missing)
+    return np.add.reduce(zeroed, axis=-1, dtype=np.float64)
+
+
+def null_where_no_days(result: np.ndarray, days: np.ndarray) -> np.ndarray:
+    """``result`` (float64, changed in place) with NaN where ``days`` (days with a value) is 0."""
+    empty = days == 0
+    if empty.any():
+        result[empty] = np.nan
+    return result
+
+
+def season_total(cube: SeasonCube, name: str) -> np.ndarray:
+    """Sum of variable ``name`` over the valid days of each season-year; NaN when none is valid.
+
+    Equal to ``season_sum`` of the cube's values; computed once per cube (SPI and prcp_total share it).
+    """
+
+    def make() -> np.ndarray:
+        sums = reduce_rows(valid_sums, getattr(cube, name))
+        return null_where_no_days(sums, cube.days_with((name,)))
+
+    return cube.memo(("total", name), make)
+
+
+def season_average(cube: SeasonCube, names: tuple[str, ...], daily: Callable[..., np.ndarray]) -> np.ndarray:
+    """Mean over the valid days of ``daily(scratch, *blocks)`` (a daily value of the variables ``names``,
+    NaN where one is missing, written to scratch "values"), per season-year; NaN when no day is valid.
+
+    Equal to :func:`season_mean` of that daily value.
+    """
+    total = reduce_rows(lambda scratch, *blocks: valid_sums(scratch, daily(scratch, *blocks)),
+                        *(getattr(cube, n) for n in names))  # fmt: skip
+    count = cube.days_with(names)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan)
+
+
+def season_count(cube: SeasonCube, name: str, condition: Callable[..., np.ndarray]) -> np.ndarray:
+    """Days on which ``condition(block, out=...)`` holds per season-year; NaN when no day of ``name`` is
+    valid. Equal to :func:`count_days`."""
+
+    def count(scratch: Scratch, values: np.ndarray) -> np.ndarray:
+        return np.count_nonzero(condition(values, out=scratch.get("condition", values.shape, bool)), axis=-1)
+
+    return null_where_no_days(reduce_rows(count, getattr(cube, name)), cube.days_with((name,)))
+
+
+def _own_values(scratch: Scratch, values: np.ndarray) -> np.ndarray:
+    """A block's values copied to scratch "values" (so that valid_sums may change them)."""
+    out = scratch.get("values", values.shape, values.dtype)
+    np.copyto(out, values)
+    return out
+
+
 def longest_run(condition: np.ndarray) -> np.ndarray:
     """Length (days) of the longest run of consecutive True along the last axis, as int.
 
@@ -112,32 +217,44 @@ def longest_run(condition: np.ndarray) -> np.ndarray:
 
 def prcp_total(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season precipitation total (mm): sum of the valid days' precipitation."""
-    return reduce_in_blocks(season_sum, cube.prcp)
+    return season_total(cube, "prcp")
 
 
 def wet_days(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Number of wet days (prcp >= 1 mm) in the season (days)."""
-    return reduce_in_blocks(lambda prcp: count_days(prcp >= WET_DAY_MM, prcp), cube.prcp)
+    return season_count(cube, "prcp", lambda prcp, out: np.greater_equal(prcp, WET_DAY_MM, out=out))
+
+
+def _daily_mean_temperature(scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray) -> np.ndarray:
+    """(tmax + tmin) * 0.5 of a block, in scratch "values"."""
+    out = np.add(tmax, tmin, out=scratch.get("values", tmax.shape, np.result_type(tmax, tmin)))
+    out *= 0.5
+    return out
+
+
+def _daily_range(scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray) -> np.ndarray:
+    """tmax - tmin of a block, in scratch "values"."""
+    return np.subtract(tmax, tmin, out=scratch.get("values", tmax.shape, np.result_type(tmax, tmin)))
 
 
 def tmean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season mean of the daily mean temperature (tmax + tmin) / 2 (degC); days missing either are skipped."""
-    return reduce_in_blocks(lambda tmax, tmin: season_mean((tmax + tmin) * 0.5), cube.tmax, cube.tmin)
+    return season_average(cube, ("tmax", "tmin"), _daily_mean_temperature)
 
 
 def tmax_mean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season mean of the daily maximum temperature (degC)."""
-    return reduce_in_blocks(season_mean, cube.tmax)
+    return season_average(cube, ("tmax",), _own_values)
 
 
 def tmin_mean(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season mean of the daily minimum temperature (degC)."""
-    return reduce_in_blocks(season_mean, cube.tmin)
+    return season_average(cube, ("tmin",), _own_values)
 
 
 def dtr(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Season mean diurnal temperature range tmax - tmin (degC); days missing either are skipped."""
-    return reduce_in_blocks(lambda tmax, tmin: season_mean(tmax - tmin), cube.tmax, cube.tmin)
+    return season_average(cube, ("tmax", "tmin"), _daily_range)
 
 
 ETCCDI = (

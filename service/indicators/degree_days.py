@@ -21,7 +21,7 @@ import numpy as np
 
 from service.errors import UnknownIndicatorError
 from service.indicators.base import Baseline, Indicator, Parameter, SeasonCube, register
-from service.indicators.basic import reduce_in_blocks, season_sum
+from service.indicators.basic import Scratch, null_where_no_days, reduce_rows, valid_sums
 
 _HALF_PI = np.pi / 2.0
 
@@ -83,6 +83,80 @@ def simple_average(
     return (high + low) * 0.5 - lower
 
 
+def _cosine(sines: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """sqrt(1 - s * s) into ``out``."""
+    np.multiply(sines, sines, out=out)
+    np.subtract(1.0, out, out=out)
+    return np.sqrt(out, out=out)
+
+
+def _single_sine_block(
+    scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray, lower: float, upper: float | None
+) -> np.ndarray:
+    """:func:`single_sine` of a (rows, day) block in scratch "values": the same operations on every day
+    (so the same bits) in scratch arrays, flat days (amplitude 0) replaced afterwards."""
+    shape = tmax.shape
+    mean = np.add(tmax, tmin, out=scratch.get("mean", shape))
+    mean *= 0.5
+    amplitude = np.subtract(tmax, tmin, out=scratch.get("amplitude", shape))
+    np.abs(amplitude, out=amplitude)
+    amplitude *= 0.5
+    flat = np.equal(amplitude, 0.0, out=scratch.get("flat", shape, bool))
+    value = scratch.get("values", shape)
+    term = scratch.get("term", shape)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        # a flat day (amplitude 0) gets inf or NaN here; its value is replaced below, as single_sine does
+        sin1 = np.subtract(lower, mean, out=scratch.get("sin1", shape))
+        np.divide(sin1, amplitude, out=sin1)
+        np.clip(sin1, -1.0, 1.0, out=sin1)
+        theta1 = np.arcsin(sin1, out=scratch.get("theta1", shape))
+        cos1 = _cosine(sin1, scratch.get("cos1", shape))
+        if upper is None:
+            np.subtract(_HALF_PI, theta1, out=term)
+            np.subtract(mean, lower, out=value)
+            np.multiply(value, term, out=value)  # (mean - lower) * (pi/2 - theta1)
+            np.multiply(amplitude, cos1, out=term)
+            np.add(value, term, out=value)
+        else:
+            sin2 = np.subtract(upper, mean, out=scratch.get("sin2", shape))
+            np.divide(sin2, amplitude, out=sin2)
+            np.clip(sin2, -1.0, 1.0, out=sin2)
+            theta2 = np.arcsin(sin2, out=scratch.get("theta2", shape))
+            cos2 = _cosine(sin2, scratch.get("cos2", shape))
+            np.subtract(theta2, theta1, out=term)
+            np.subtract(mean, lower, out=value)
+            np.multiply(value, term, out=value)  # (mean - lower) * (theta2 - theta1)
+            np.subtract(cos1, cos2, out=term)
+            np.multiply(amplitude, term, out=term)
+            np.add(value, term, out=value)  # + amplitude * (cos1 - cos2)
+            np.subtract(_HALF_PI, theta2, out=term)
+            np.multiply(upper - lower, term, out=term)
+            np.add(value, term, out=value)  # + (upper - lower) * (pi/2 - theta2)
+        value /= np.pi
+    flat_days = np.flatnonzero(flat)
+    if flat_days.size:
+        flat_mean = mean.flat[flat_days]
+        if upper is None:
+            value.flat[flat_days] = np.maximum(flat_mean - lower, 0.0)
+        else:
+            value.flat[flat_days] = np.clip(flat_mean, lower, upper) - lower
+    # rounding can leave -1e-16 on days entirely below the threshold (NaN stays NaN)
+    return np.maximum(value, 0.0, out=value)
+
+
+def season_degree_days(cube: SeasonCube, lower: float, upper: float | None) -> np.ndarray:
+    """The season's sum of single-sine degree days (degC day) over the days with tmax and tmin; NaN when none.
+
+    Equal to summing :func:`single_sine` over each season-year's valid days, in blocks of scratch memory.
+    """
+
+    def block(scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray) -> np.ndarray:
+        return valid_sums(scratch, _single_sine_block(scratch, tmax, tmin, lower, upper))
+
+    sums = reduce_rows(block, cube.tmax, cube.tmin)
+    return null_where_no_days(sums, cube.days_with(("tmax", "tmin")))
+
+
 def gdd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Growing degree days of the season (degC day): single sine between ``base`` and ``cap``."""
     if params["cap"] <= params["base"]:
@@ -91,18 +165,12 @@ def gdd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np
             "raise cap or lower base",
             field="indicators.gdd.cap",
         )
-    base, cap = params["base"], params["cap"]
-    return reduce_in_blocks(
-        lambda tmax, tmin: season_sum(single_sine(tmax, tmin, base, cap)), cube.tmax, cube.tmin
-    )
+    return season_degree_days(cube, params["base"], params["cap"])
 
 
 def edd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Extreme degree days of the season (degC day): single sine above ``threshold``, no cap."""
-    threshold = params["threshold"]
-    return reduce_in_blocks(
-        lambda tmax, tmin: season_sum(single_sine(tmax, tmin, threshold, None)), cube.tmax, cube.tmin
-    )
+    return season_degree_days(cube, params["threshold"], None)
 
 
 register(

@@ -34,7 +34,7 @@ import numpy as np
 from scipy import special, stats
 
 from service.indicators.base import Baseline, Indicator, IndicatorValues, Parameter, SeasonCube, register
-from service.indicators.basic import reduce_in_blocks, season_sum
+from service.indicators.basic import reduce_in_blocks, season_sum, season_total
 
 SOLAR_CONSTANT = 0.0820  # MJ m-2 min-1, FAO-56 eq. 21
 MJ_TO_MM = 0.408  # MJ m-2 day-1 to mm/day of evaporation, 1 / 2.45 MJ kg-1 (FAO-56, chapter 3)
@@ -394,7 +394,7 @@ def spi(cube: SeasonCube, baseline: Baseline, params: Mapping[str, object]) -> I
     Totals of partial seasons follow the request's partial_seasons policy (``cube.scale_totals``), in the
     season itself and in the baseline seasons alike.
     """
-    totals = cube.scale_totals(reduce_in_blocks(season_sum, cube.prcp))
+    totals = cube.scale_totals(season_total(cube, "prcp"))
     return standardize_against_baseline(totals, baseline, "gamma")
 
 

@@ -50,7 +50,16 @@ from service.indicators.base import (
     SeasonCube,
     register,
 )
-from service.indicators.basic import WET_DAY_MM, count_days, longest_run, null_where_empty, reduce_in_blocks
+from service.indicators.basic import (
+    WET_DAY_MM,
+    Scratch,
+    count_days,
+    longest_run,
+    null_where_empty,
+    null_where_no_days,
+    reduce_in_blocks,
+    reduce_rows,
+)
 
 WINDOW_HALF_WIDTH = 2  # days either side of the calendar day in a percentile pool (5-day window)
 MIN_WET_DAYS = 20  # fewest baseline wet days a wet-day percentile (r95ptot) is taken from
@@ -268,14 +277,25 @@ def _longest_spell(values: np.ndarray, wet: bool) -> np.ndarray:
     return null_where_empty(longest_run(condition).astype(np.float64), values)
 
 
+def _season_longest_spell(cube: SeasonCube, wet: bool) -> np.ndarray:
+    """:func:`_longest_spell` over the cube's precipitation, in blocks of scratch memory."""
+
+    def block(scratch: Scratch, prcp: np.ndarray) -> np.ndarray:
+        condition = scratch.get("condition", prcp.shape, bool)
+        (np.greater_equal if wet else np.less)(prcp, WET_DAY_MM, out=condition)
+        return longest_run(condition)
+
+    return null_where_no_days(reduce_rows(block, cube.prcp), cube.days_with(("prcp",)))
+
+
 def cdd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Longest run of dry days (RR < 1 mm) within the season (days); a missing day ends a run."""
-    return reduce_in_blocks(lambda prcp: _longest_spell(prcp, wet=False), cube.prcp)
+    return _season_longest_spell(cube, wet=False)
 
 
 def cwd(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:
     """Longest run of wet days (RR >= 1 mm) within the season (days); a missing day ends a run."""
-    return reduce_in_blocks(lambda prcp: _longest_spell(prcp, wet=True), cube.prcp)
+    return _season_longest_spell(cube, wet=True)
 
 
 def r10mm(cube: SeasonCube, baseline: Baseline, params: Mapping[str, float]) -> np.ndarray:

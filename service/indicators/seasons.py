@@ -166,7 +166,13 @@ class SeasonCut:
                     values = values.copy()
                     values[blank] = np.nan
                 arrays[name] = values
-            self._cache[key] = replace(self.cube, **arrays, total_factor=self.total_factor(names, policy))
+            cube = replace(self.cube, **arrays, total_factor=self.total_factor(names, policy))
+            # the days with values of each variable (and of all of them) in this cube: those of the cut where
+            # the season is complete, none where it was blanked (so the indicators need not count them)
+            for subset in {*((name,) for name in names), names}:
+                days = self.present_days(subset)
+                cube.seed_days(subset, days if blank is None else np.where(blank, 0, days))
+            self._cache[key] = cube
         return self._cache[key]
 
 
