@@ -10,6 +10,7 @@ modules.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Mapping
 
 import numpy as np
@@ -108,7 +109,7 @@ class Scratch:
         flat = self._arrays.get(key)
         if flat is None:
             flat = self._arrays[key] = np.empty(self.elements, dtype=dtype)
-        return flat[: int(np.prod(shape))].reshape(shape)
+        return flat[: math.prod(shape)].reshape(shape)
 
 
 def reduce_rows(reducer: Callable[..., np.ndarray], *arrays: np.ndarray) -> np.ndarray:
@@ -198,18 +199,23 @@ def longest_run(condition: np.ndarray) -> np.ndarray:
     """Length (days) of the longest run of consecutive True along the last axis, as int.
 
     False (and so a missing or padding day, whose comparisons are False) ends a run; only days of the array
-    count, so a run is cut at both ends of the season. Vectorised: for each day, the distance to the last
-    False day before it is the length of the run ending there.
+    count, so a run is cut at both ends of the season. Vectorised: with a False day appended to every row,
+    each run is the distance between two consecutive False days less one (the appended day of the row
+    before stands at position -1 of a row), and a row's longest run is the largest of those it ends.
     """
+    lead = condition.shape[:-1]
     n_day = condition.shape[-1]
-    dtype = np.int16 if n_day < 32_000 else np.int32
-    position = np.arange(n_day, dtype=dtype)
-    last_break = np.where(condition, np.array(-1, dtype=dtype), position)
-    np.maximum.accumulate(last_break, axis=-1, out=last_break)
     if n_day == 0:
-        return np.zeros(condition.shape[:-1], dtype=np.int64)
-    run = position - last_break
-    return run.max(axis=-1).astype(np.int64)
+        return np.zeros(lead, dtype=np.int64)
+    rows = condition.reshape(-1, n_day)
+    breaks = np.ones((rows.shape[0], n_day + 1), dtype=bool)
+    np.logical_not(rows, out=breaks[:, :n_day])
+    at = np.flatnonzero(breaks)
+    runs = np.diff(at, prepend=-1)
+    runs -= 1
+    # the first False day of each row (every row has one: the appended day)
+    row_starts = np.searchsorted(at, np.arange(rows.shape[0], dtype=np.int64) * (n_day + 1))
+    return np.maximum.reduceat(runs, row_starts).reshape(lead).astype(np.int64)
 
 
 # --- the indicators -----------------------------------------------------------------------------------------

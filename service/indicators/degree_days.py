@@ -133,15 +133,17 @@ def _single_sine_block(
             np.multiply(upper - lower, term, out=term)
             np.add(value, term, out=value)  # + (upper - lower) * (pi/2 - theta2)
         value /= np.pi
-    flat_days = np.flatnonzero(flat)
-    if flat_days.size:
-        flat_mean = mean.flat[flat_days]
+    if flat.any():
+        flat_mean = mean[flat]
         if upper is None:
-            value.flat[flat_days] = np.maximum(flat_mean - lower, 0.0)
+            value[flat] = np.maximum(flat_mean - lower, 0.0)
         else:
-            value.flat[flat_days] = np.clip(flat_mean, lower, upper) - lower
-    # rounding can leave -1e-16 on days entirely below the threshold (NaN stays NaN)
-    return np.maximum(value, 0.0, out=value)
+            value[flat] = np.clip(flat_mean, lower, upper) - lower
+    # rounding can leave -1e-16 on days entirely below the threshold: as np.maximum(value, 0.0) (NaN stays
+    # NaN; no value is -0.0 here, the one case where the two could differ)
+    below = np.less(value, 0.0, out=flat)
+    np.copyto(value, 0.0, where=below)
+    return value
 
 
 def season_degree_days(cube: SeasonCube, lower: float, upper: float | None) -> np.ndarray:

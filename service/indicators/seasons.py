@@ -109,15 +109,22 @@ class SeasonCut:
         """Days with every one of ``variables`` present, per (feature, season-year) (int64)."""
         key = ("present", variable_set(variables))
         if key not in self._cache:
-            missing = None
-            for name in key[1]:
-                values = getattr(self.cube, name)
-                if values is None:
-                    raise RuntimeError(f"variable {name!r} was not cut for season {self.season.label}")
-                missing = np.isnan(values) if missing is None else missing | np.isnan(values)
-            if missing is None:
+            if not key[1]:
                 raise RuntimeError("present_days needs at least one variable")
-            self._cache[key] = np.count_nonzero(~missing, axis=-1).astype(np.int64)
+            masks = [self._missing(name) for name in key[1]]
+            missing = masks[0] if len(masks) == 1 else np.logical_or.reduce(masks)
+            width = missing.shape[-1]
+            self._cache[key] = (width - np.count_nonzero(missing, axis=-1)).astype(np.int64)
+        return self._cache[key]
+
+    def _missing(self, name: str) -> np.ndarray:
+        """(feature, season-year, day) bool: the day lacks variable ``name`` (or is padding); kept per cut."""
+        key = ("missing", name)
+        if key not in self._cache:
+            values = getattr(self.cube, name)
+            if values is None:
+                raise RuntimeError(f"variable {name!r} was not cut for season {self.season.label}")
+            self._cache[key] = np.isnan(values)
         return self._cache[key]
 
     def present_share(self, variables: Sequence[str]) -> np.ndarray:
