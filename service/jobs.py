@@ -423,19 +423,21 @@ def run_to_file(
     prepared: Prepared | None = None,
 ) -> tuple[int, str, dict[str, str]] | None:
     """Compute a job's table batch by batch and write it to ``path`` as it comes: (bytes, media type,
-    headers), or None where the table is made whole (Stata, bundle, events, variants: run_with_pipeline).
+    headers), or None where the table is made whole (events, variants: run_with_pipeline).
 
     Memory stays flat in the number of features: each batch's rows wait in a spill directory beside ``path``
-    until they are encoded in request order (pipeline.run_in_pieces, service.encode.stream). The bytes are
-    those of run_with_pipeline (JSON, CSV) or the same table in more row groups (Parquet).
+    until they are encoded in request order (pipeline.run_in_pieces; service.encode.stream, the Stata writer
+    and the bundle piece by piece). The bytes are those of run_with_pipeline in every format.
     """
     import shutil
 
     from service import pipeline
-    from service.encode import FORMATS, provenance_headers
+    from service.encode import FORMATS, provenance_headers, stable_frame
+    from service.encode.bundle import write_bundle
+    from service.encode.stata import stata_pieces
     from service.encode.stream import STREAMED_FORMATS, stream
 
-    if fmt not in STREAMED_FORMATS or request.variants or request.events is not None:
+    if fmt not in (*STREAMED_FORMATS, "dta", "bundle") or request.variants or request.events is not None:
         return None
     store = registry.get_dataset(request.dataset)
     spill = path.with_name(path.name + ".spill")
@@ -445,28 +447,63 @@ def run_to_file(
             request,
             store,
             settings,
-            spill,
+            spill / "rows",
             progress=progress,
             cancelled=cancelled,
             invalid_features=JOB_INVALID_FEATURES,
             prepared=prepared,
+            **job_batches(settings),
         )
         if table is None:
             return None
-        size = 0
+        frames = table.frames
+
+        def stable() -> Iterator[Any]:
+            return (stable_frame(frame) for frame in frames)
+
         with open(partial, "wb") as handle:
-            for data in stream(table.frames, table.columns, table.provenance, table.warnings, fmt):
-                handle.write(data)
-                size += len(data)
+            if fmt == "bundle":
+                write_bundle(
+                    handle, stable, table.columns, table.provenance, table.warnings, spill / "entries"
+                )
+            else:
+                parts = (
+                    stata_pieces(stable, table.columns, table.provenance)
+                    if fmt == "dta"
+                    else stream(frames, table.columns, table.provenance, table.warnings, fmt)
+                )
+                for data in parts:
+                    handle.write(data)
             handle.flush()
             os.fsync(handle.fileno())
+        size = partial.stat().st_size
         os.replace(partial, path)
     except BaseException:
         partial.unlink(missing_ok=True)
         raise
     finally:
         shutil.rmtree(spill, ignore_errors=True)
-    return size, FORMATS[fmt], provenance_headers(table.provenance)
+    headers = provenance_headers(table.provenance)
+    if fmt in ("dta", "bundle"):  # as service.encode.encode names a file a browser should save
+        from service.encode import download_name
+
+        headers["Content-Disposition"] = f'attachment; filename="{download_name(table.provenance, fmt)}"'
+    return size, FORMATS[fmt], headers
+
+
+def job_batches(settings: Settings) -> dict[str, int]:
+    """How a job's feature batches are bounded on local threads: their daily means (bytes) and how many run at
+    once; nothing on a cluster, where the batches' means stay on the workers and only tables come back.
+
+    A 1,000-feature batch of 48 years holds 420 MB of means and about twice that while its table is made;
+    two of them in flight held a server at 2.4 GB (bench/RESULTS.md, "Scale").
+    """
+    if (settings.scheduler or "").strip():
+        return {}
+    return {
+        "series_bytes": settings.job_batch_series_mb << 20,
+        "in_flight": settings.job_batches_in_flight,
+    }
 
 
 # What a job does with a feature that cannot be computed when the request does not say (CONTRACTS.md): a

@@ -86,6 +86,20 @@ class Settings(BaseSettings):
         "requests over the same cells skip decoding.",
     )
     job_workers: int = Field(default=1, ge=1, le=16)
+    job_batch_series_mb: int = Field(
+        default=128,
+        ge=1,
+        description="Daily means (MB, float64) one feature batch of a job may hold on local threads: jobs take "
+        "smaller batches than on-demand requests, so that a server's memory stays flat in the number of "
+        "features (bench/RESULTS.md, 'Scale').",
+    )
+    job_batches_in_flight: int = Field(
+        default=1,
+        ge=1,
+        le=8,
+        description="Feature batches of a job computed at once on local threads (on a cluster: one per worker "
+        "thread, the server holding only their tables).",
+    )
     job_retention_hours: float = Field(default=168.0, gt=0)
     min_free_bytes: int = Field(
         default=200_000_000,

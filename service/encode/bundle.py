@@ -16,9 +16,11 @@ from __future__ import annotations
 
 import io
 import json
+import shutil
 import zipfile
-from collections.abc import Mapping
-from typing import Any
+from collections.abc import Callable, Iterable, Mapping
+from pathlib import Path
+from typing import Any, BinaryIO
 
 import pandas as pd
 
@@ -187,6 +189,15 @@ def _code_meanings(codes: list[str]) -> list[tuple[str, str]]:
     return [(code, WARNING_CODES[code]) for code in codes if code in WARNING_CODES]
 
 
+def _entry(name: str) -> zipfile.ZipInfo:
+    """A bundle entry's header: fixed date, deflated, a regular rw-r--r-- file made on Unix."""
+    info = zipfile.ZipInfo(name, date_time=ZIP_DATE)
+    info.compress_type = zipfile.ZIP_DEFLATED
+    info.external_attr = 0o100644 << 16  # a regular file, rw-r--r--
+    info.create_system = 3  # Unix, whatever the server runs on
+    return info
+
+
 def to_bundle(frame: pd.DataFrame, provenance: dict[str, Any], warnings: list[dict[str, Any]]) -> bytes:
     """The replication zip of a result (see the module docstring); the same result gives the same bytes."""
     entries = {
@@ -202,9 +213,58 @@ def to_bundle(frame: pd.DataFrame, provenance: dict[str, Any], warnings: list[di
     sink = io.BytesIO()
     with zipfile.ZipFile(sink, "w") as archive:
         for name in sorted(entries):
-            info = zipfile.ZipInfo(name, date_time=ZIP_DATE)
-            info.compress_type = zipfile.ZIP_DEFLATED
-            info.external_attr = 0o100644 << 16  # a regular file, rw-r--r--
-            info.create_system = 3  # Unix, whatever the server runs on
-            archive.writestr(info, entries[name], compresslevel=6)
+            archive.writestr(_entry(name), entries[name], compresslevel=ZIP_LEVEL)
     return sink.getvalue()
+
+
+ZIP_LEVEL = 6
+
+
+def write_bundle(
+    sink: BinaryIO,
+    frames: Callable[[], Iterable[pd.DataFrame]],
+    columns: list[str],
+    provenance: dict[str, Any],
+    warnings: list[dict[str, Any]],
+    scratch: Path,
+) -> None:
+    """The bytes of :func:`to_bundle` for the table made of the pieces ``frames()`` gives (byte-stable frames,
+    service.encode.stable_frame), written to the seekable ``sink`` with memory for a piece at a time.
+
+    Each table entry is encoded piece by piece into a file in the directory ``scratch`` first, so that its
+    size is known before its zip header is written, as ``zipfile.writestr`` knows it (the size decides
+    whether an entry needs zip64 fields); the file is then deflated into the zip and removed.
+    """
+    from service.encode.stata import stata_pieces
+    from service.encode.stream import stream
+
+    rows = sum(len(frame) for frame in frames())
+    empty = pd.DataFrame(columns=columns)
+    entries: dict[str, Callable[[], Iterable[bytes]]] = {
+        "codebook.csv": lambda: [to_csv(codebook_frame(empty, provenance))],
+        "methods.md": lambda: [methods_text(provenance, warnings, rows).encode("utf-8")],
+        "provenance.json": lambda: [_pretty_json(provenance)],
+        "request.json": lambda: [_pretty_json(provenance.get("request") or {})],
+        "table.csv": lambda: stream(frames(), columns, provenance, warnings, "csv"),
+        "table.dta": lambda: stata_pieces(frames, columns, provenance),
+        "table.parquet": lambda: stream(frames(), columns, provenance, warnings, "parquet"),
+        "warnings.csv": lambda: [to_csv(warnings_frame(warnings))],
+    }
+    scratch.mkdir(parents=True, exist_ok=True)
+    with zipfile.ZipFile(sink, "w") as archive:
+        for name in sorted(entries):
+            path = scratch / f"entry-{name}"
+            try:
+                with open(path, "wb") as handle:
+                    for data in entries[name]():
+                        handle.write(data)
+                info = _entry(name)
+                # what writestr(info, data, compresslevel=...) sets before it writes the entry
+                setattr(
+                    info, "compress_level" if hasattr(info, "compress_level") else "_compresslevel", ZIP_LEVEL
+                )
+                info.file_size = path.stat().st_size
+                with open(path, "rb") as handle, archive.open(info, "w") as entry:
+                    shutil.copyfileobj(handle, entry, 1 << 20)
+            finally:
+                path.unlink(missing_ok=True)

@@ -2,16 +2,15 @@
 
 A daily series of 200 communities over 48 years is 3.5 million rows; encoded whole, its JSON form took 95 s
 and 4.5 GB. Here the table arrives as frames of a few tens of thousands of rows and each is encoded on its
-own, so memory stays flat whatever the number of features, days and the length of the ids. The JSON and CSV
-bytes equal those of service.encode.encode on the whole table; Parquet holds the same table and metadata
-(the file is split into row groups).
+own, so memory stays flat whatever the number of features, days and the length of the ids. The bytes equal
+those of service.encode.encode on the whole table (Parquet's row groups are cut at the same rows).
 """
 
 from __future__ import annotations
 
 import io
 import json
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from typing import Any
 
 import pandas as pd
@@ -20,25 +19,42 @@ import pyarrow.parquet as pq
 
 from service.encode.formats import FORMATS
 from service.encode.result import json_value, stable_frame
-from service.encode.tables import PARQUET_METADATA_KEY, PARQUET_WARNINGS_KEY, to_csv
+from service.encode.tables import PARQUET_METADATA_KEY, PARQUET_ROW_GROUP_ROWS, PARQUET_WARNINGS_KEY, to_csv
 from service.errors import NotAcceptableError
 
-# The formats written piece by piece (a Stata file is written whole).
+# The formats written piece by piece (.dta and the bundle: service.encode.stata.stata_pieces,
+# service.encode.bundle.write_bundle, which read their pieces twice).
 STREAMED_FORMATS = ("json", "csv", "parquet")
-# Rows encoded at a time: about 10 MB of JSON, and a few tens of MB of Python objects on the way.
-PIECE_ROWS = 50_000
+# Rows encoded at a time: about 10 MB of JSON, and a few tens of MB of Python objects on the way; one Parquet
+# row group, as the whole-table writer cuts them (so that both give the same bytes).
+PIECE_ROWS = PARQUET_ROW_GROUP_ROWS
 
 
-def pieces(frames: Iterator[pd.DataFrame], rows: int | None = None) -> Iterator[pd.DataFrame]:
-    """The frames cut into pieces of at most ``rows`` rows (default PIECE_ROWS)."""
+def pieces(frames: Iterable[pd.DataFrame], rows: int | None = None) -> Iterator[pd.DataFrame]:
+    """The rows of ``frames`` in pieces of exactly ``rows`` rows (default PIECE_ROWS), the last one shorter:
+    the pieces do not depend on where the frames were cut."""
     rows = rows or PIECE_ROWS
+    held: list[pd.DataFrame] = []
+    count = 0
     for frame in frames:
-        for start in range(0, len(frame), rows):
-            yield frame.iloc[start : start + rows]
+        start = 0
+        while start < len(frame):
+            part = frame.iloc[start : start + rows - count]
+            start += len(part)
+            if not held and len(part) == rows:
+                yield part
+                continue
+            held.append(part)
+            count += len(part)
+            if count == rows:
+                yield pd.concat(held, ignore_index=True)
+                held, count = [], 0
+    if held:
+        yield held[0] if len(held) == 1 else pd.concat(held, ignore_index=True)
 
 
 def stream(
-    frames: Iterator[pd.DataFrame],
+    frames: Iterable[pd.DataFrame],
     columns: list[str],
     provenance: dict[str, Any],
     warnings: list[dict[str, Any]],
@@ -67,7 +83,7 @@ def _dumps(value: Any) -> str:
 
 
 def _json(
-    frames: Iterator[pd.DataFrame],
+    frames: Iterable[pd.DataFrame],
     columns: list[str],
     provenance: dict[str, Any],
     warnings: list[dict[str, Any]],
@@ -88,7 +104,7 @@ def _json(
     yield f'],"warnings":{_dumps(warnings)}}}'.encode()
 
 
-def _csv(frames: Iterator[pd.DataFrame], columns: list[str]) -> Iterator[bytes]:
+def _csv(frames: Iterable[pd.DataFrame], columns: list[str]) -> Iterator[bytes]:
     """The header, then each piece's rows as service.encode.to_csv writes them."""
     header_sent = False
     for piece in pieces(frames):
@@ -127,7 +143,7 @@ class _Drain(io.RawIOBase):
 
 
 def _parquet(
-    frames: Iterator[pd.DataFrame],
+    frames: Iterable[pd.DataFrame],
     columns: list[str],
     provenance: dict[str, Any],
     warnings: list[dict[str, Any]],

@@ -26,6 +26,9 @@ from service.encode.result import json_value
 
 PARQUET_METADATA_KEY = b"wxshock.provenance"
 PARQUET_WARNINGS_KEY = b"wxshock.warnings"
+# Rows per Parquet row group. A table written piece by piece (a job's, service.encode.stream) cuts its rows
+# into row groups of this size too, so that it gives the bytes of the whole table written at once.
+PARQUET_ROW_GROUP_ROWS = 50_000
 # What spreadsheets read as the start of a formula (OWASP, "CSV Injection").
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 _PLAIN_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
@@ -82,7 +85,7 @@ def to_parquet(frame: pd.DataFrame, provenance: dict[str, Any], warnings: list[d
 
     Every column is dictionary-encoded in the file (Parquet's own encoding: each distinct id or label is
     stored once per row group and the rows refer to it), while ``feature_id`` and the other text columns
-    keep their plain string type for readers.
+    keep their plain string type for readers. Row groups hold PARQUET_ROW_GROUP_ROWS rows.
     """
     table = pa.Table.from_pandas(frame, preserve_index=False)
     metadata = dict(table.schema.metadata or {})
@@ -90,7 +93,9 @@ def to_parquet(frame: pd.DataFrame, provenance: dict[str, Any], warnings: list[d
     metadata[PARQUET_WARNINGS_KEY] = _compact_json(warnings)
     table = table.replace_schema_metadata(metadata)
     sink = io.BytesIO()
-    pq.write_table(table, sink, compression="zstd", use_dictionary=True)
+    pq.write_table(
+        table, sink, compression="zstd", use_dictionary=True, row_group_size=PARQUET_ROW_GROUP_ROWS
+    )
     return sink.getvalue()
 
 

@@ -124,8 +124,14 @@ def _batch_run(
     batch_size: int,
     invalid_features: str,
     prepared: Prepared | None,
+    series_bytes: int | None = None,
+    in_flight: int | None = None,
 ) -> _BatchRun:
-    """The common part of :func:`run` and :func:`run_in_pieces`: resolve, weigh, batch, compute lazily."""
+    """The common part of :func:`run` and :func:`run_in_pieces`: resolve, weigh, batch, compute lazily.
+
+    ``series_bytes`` caps a batch's daily means (float64 bytes) below the on-demand budget and ``in_flight``
+    the batches computed at once (None: service.cluster's default), for a job's flat memory.
+    """
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
     if resolved.aggregation == "cells":
@@ -137,6 +143,9 @@ def _batch_run(
     # a fixed baseline may lie after the requested years: read up to whichever ends later
     span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
     properties = [f.properties for f in parsed.features]
+    if series_bytes is not None:
+        per_feature = max(1, span.stop - span.start) * max(1, len(variables)) * 8
+        batch_size = min(batch_size, max(1, series_bytes // per_feature))
     batches = feature_batches(weights, batch_size_for(batch_size, span, variables))
     light = _without_features(resolved)
     computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
@@ -151,7 +160,7 @@ def _batch_run(
         )
         # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
         # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order later.
-        computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled)
+        computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled, in_flight=in_flight)
     return _BatchRun(resolved, prepared, batches, _counted(computed, batches, len(parsed.features), progress))
 
 
@@ -187,20 +196,34 @@ def run_in_pieces(
     batch_size: int = DEFAULT_BATCH_FEATURES,
     invalid_features: str = "fail",
     prepared: Prepared | None = None,
+    series_bytes: int | None = None,
+    in_flight: int | None = None,
 ) -> SeriesTable | None:
     """The table of :func:`run`, row for row, made batch by batch: memory flat in the number of features.
 
     Each finished batch's rows (in request order within the batch, notes and skipped features as
     :func:`run` makes them) are written to a file in the directory ``spill``, cut at every PIECE_FEATURES-th
     feature of the request; the frames returned read those files back, PIECE_FEATURES features at a time, in
-    request order. The caller encodes them (service.encode.stream) and then removes ``spill``. None for a
-    request with events or variants (their runs are made whole: use :func:`run`).
+    request order, each time they are iterated. The caller encodes them (service.encode.stream) and then removes ``spill``. None for a
+    request with events or variants (their runs are made whole: use :func:`run`). ``series_bytes`` and
+    ``in_flight`` bound the daily means held at once (a job's smaller batches, fewer of them at a time).
     """
     import pickle
 
     if request.variants or request.events is not None:
         return None
-    run_ = _batch_run(request, store, settings, progress, cancelled, batch_size, invalid_features, prepared)
+    run_ = _batch_run(
+        request,
+        store,
+        settings,
+        progress,
+        cancelled,
+        batch_size,
+        invalid_features,
+        prepared,
+        series_bytes,
+        in_flight,
+    )
     resolved, prepared = run_.resolved, run_.prepared
     parsed, weights = prepared.parsed, prepared.weights
     later = [
@@ -234,8 +257,20 @@ def run_in_pieces(
         columns=columns or [],
         provenance=provenance(resolved, store, parsed, prepared.skipped),
         warnings=warnings,
-        frames=_pieces_in_order([paths[k] for k in sorted(paths)], n_pieces),
+        frames=_Spilled([paths[k] for k in sorted(paths)], n_pieces),
     )
+
+
+@dataclass(frozen=True)
+class _Spilled:
+    """The spilled rows of a run in request order, read again from the files each time they are iterated
+    (the Stata encoder and the bundle read them more than once)."""
+
+    paths: list[Path]
+    n_pieces: int
+
+    def __iter__(self) -> Iterator[pd.DataFrame]:
+        return _pieces_in_order(self.paths, self.n_pieces)
 
 
 def _pieces_in_order(paths: list[Path], n_pieces: int) -> Iterator[pd.DataFrame]:

@@ -1,6 +1,6 @@
 """Daily community series (the /v1/series answer), built a few features at a time."""
 
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
@@ -34,7 +34,7 @@ class SeriesTable:
     columns: list[str]
     provenance: dict[str, Any]
     warnings: list[dict[str, Any]]
-    frames: Iterator[pd.DataFrame]
+    frames: Iterable[pd.DataFrame]  # a job's spilled rows may be read more than once
 
 
 # Rows of the series made at a time (features x days); the encoders cut them finer.

@@ -124,3 +124,25 @@ def test_methods_explain_the_warning_codes_that_occur(example_result: RunResult)
     assert codes, "the example request leaves some values null"
     for code in codes:
         assert f"- `{code}`: {WARNING_CODES[code]}" in methods
+
+
+def test_a_bundle_written_piece_by_piece_is_the_whole_zip(
+    example_result: RunResult,  # noqa: F811
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    from service.encode import stable_frame, tables
+    from service.encode import stream as stream_module
+    from service.encode.bundle import write_bundle
+
+    # row groups of 7 rows: the Parquet entry is cut into several, across the pieces given
+    monkeypatch.setattr(stream_module, "PIECE_ROWS", 7)
+    monkeypatch.setattr(tables, "PARQUET_ROW_GROUP_ROWS", 7)
+    expected, _, _ = encode(example_result, "bundle")
+    frame = stable_frame(example_result.frame)
+    parts = [frame.iloc[:4], frame.iloc[4:4], frame.iloc[4:19], frame.iloc[19:]]
+    with open(tmp_path / "bundle.zip", "wb") as sink:
+        write_bundle(sink, lambda: iter(parts), list(frame.columns), example_result.provenance,
+                     example_result.warnings, tmp_path / "scratch")  # fmt: skip
+    assert (tmp_path / "bundle.zip").read_bytes() == expected
+    assert not list((tmp_path / "scratch").iterdir())

@@ -8,8 +8,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from service.encode import RunResult, encode
-from service.encode.stata import STATA_LABEL_LIMIT, read_stata, stata_name, stata_names
+from service.encode import RunResult, encode, stable_frame
+from service.encode.stata import (
+    STATA_LABEL_LIMIT,
+    read_stata,
+    stata_name,
+    stata_names,
+    stata_pieces,
+    to_stata,
+)
 from tests.encode._support_result import example_result  # noqa: F401 - fixture
 
 
@@ -104,3 +111,26 @@ def test_every_format_carries_every_column(example_result: RunResult, fmt: str) 
 
         columns = list(pd.read_parquet(io.BytesIO(body)).columns)
     assert columns == list(frame.columns)
+
+
+def _cut(frame: pd.DataFrame, sizes: list[int]) -> list[pd.DataFrame]:
+    """The frame cut into consecutive pieces of the given sizes (the last takes the rest)."""
+    cuts = np.cumsum(sizes)
+    return [frame.iloc[a:b] for a, b in zip(np.r_[0, cuts], np.r_[cuts, len(frame)], strict=True)]
+
+
+def test_a_table_written_piece_by_piece_is_the_whole_file(example_result: RunResult) -> None:  # noqa: F811
+    frame = stable_frame(example_result.frame)
+    # ids and labels of different widths in different pieces, a piece whose classes are all missing, a
+    # piece with no rows: the joined file must still be the whole table's, byte for byte
+    frame = frame.assign(feature_id=[f"v{'x' * (i % 7)}-{i}" for i in range(len(frame))])
+    frame.loc[frame.index[:5], "prcp_total_class"] = np.nan
+    expected = to_stata(frame, example_result.provenance, example_result.warnings)
+    for sizes in ([5, 0, 11], [1], [len(frame)]):
+        pieces = _cut(frame, sizes)
+        joined = b"".join(
+            stata_pieces(lambda p=pieces: iter(p), list(frame.columns), example_result.provenance)
+        )
+        assert joined == expected, sizes
+    table, _, values = read_stata(joined)
+    assert table["feature_id"].tolist() == frame["feature_id"].tolist() and values["prcp_total_class"]

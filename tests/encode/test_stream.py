@@ -69,10 +69,27 @@ def test_parquet_in_row_groups_holds_the_whole_table_and_metadata(
     assert {k: v for k, v in ours.items() if k.startswith(b"wxshock")} == {
         k: v for k, v in theirs.items() if k.startswith(b"wxshock")
     }
-    if rows == 1000:
-        assert pq.ParquetFile(io.BytesIO(streamed)).num_row_groups == 13  # 333 = 100 + 100 + 100 + 33, and 1
+    if rows == 1000:  # row groups of 100 rows across the parts of 333, as the whole-table writer cuts them
+        assert pq.ParquetFile(io.BytesIO(streamed)).num_row_groups == 10
 
 
-def test_pieces_never_exceed_the_size_asked_for() -> None:
+@pytest.mark.parametrize("rows", [0, 1, 1000])
+def test_parquet_in_pieces_is_the_whole_file_when_row_groups_are_cut_alike(
+    monkeypatch: pytest.MonkeyPatch, rows: int
+) -> None:
+    from service.encode import tables
+
+    monkeypatch.setattr(stream_module, "PIECE_ROWS", 100)
+    monkeypatch.setattr(tables, "PARQUET_ROW_GROUP_ROWS", 100)
+    frame = _frame(rows)
+    whole, _, _ = encode(RunResult(frame, PROVENANCE, WARNINGS), "parquet")
+    streamed = b"".join(stream(_split(frame, 333), list(frame.columns), PROVENANCE, WARNINGS, "parquet"))
+    if rows:  # (an empty table's column types are not known from its pieces)
+        assert streamed == whole
+
+
+def test_pieces_have_the_size_asked_for_wherever_the_frames_were_cut() -> None:
     sizes = [len(p) for p in pieces(_split(_frame(1000), 300), rows=128)]
-    assert max(sizes) <= 128 and sum(sizes) == 1000
+    assert sizes == [128] * 7 + [104]
+    joined = pd.concat(pieces(_split(_frame(1000), 300), rows=128), ignore_index=True)
+    pd.testing.assert_frame_equal(joined, _frame(1000))
