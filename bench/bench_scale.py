@@ -411,9 +411,21 @@ service.memory.release_memory = lambda: False
 """
 
 
+def _cpu_seconds(pid: int) -> float | None:
+    """User + system CPU seconds of a running process (its threads included), from /proc."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
 def phase_job(args: argparse.Namespace) -> dict[str, Any]:
-    """Server peak RSS for a job of --job-features buffered points over the small demo, CSV and Parquet; RSS
-    after the job with and without malloc_trim. Each case in its own server (`wxshock serve`, 127.0.0.1)."""
+    """Server peak RSS for a job of --job-features buffered points (default: over the small demo), in each
+    format of --job-formats; RSS after the job with and without malloc_trim. Each case in its own server
+    (`wxshock serve`, 127.0.0.1), with the settings of --job-env; --job-cluster runs the jobs on a local
+    dask cluster (a scheduler and two workers) instead of the server's threads."""
+    import contextlib
     import tempfile
 
     import httpx
@@ -423,9 +435,21 @@ def phase_job(args: argparse.Namespace) -> dict[str, Any]:
 
     store = Path(args.job_store) if args.job_store else DEFAULT_SMALL
     body = json.dumps({"features": points(store, args.job_features)})
-    out: dict[str, Any] = {"features": args.job_features, "store": str(store)}
-    cases = [("csv", True), ("parquet", True)] + ([("csv", False)] if args.job_no_trim else [])
-    with tempfile.TemporaryDirectory() as root:
+    out: dict[str, Any] = {"features": args.job_features, "store": str(store), "env": args.job_env or [],
+                           "cluster": bool(args.job_cluster)}  # fmt: skip
+    formats = args.job_formats.split(",")
+    cases = [(fmt, True) for fmt in formats] + ([(formats[0], False)] if args.job_no_trim else [])
+    extra = dict(item.split("=", 1) for item in args.job_env or [])
+    with tempfile.TemporaryDirectory() as root, contextlib.ExitStack() as stack:
+        if args.job_cluster:
+            from tests._support_cluster import DaskProcesses
+
+            (Path(root) / "cluster").mkdir()
+            processes = DaskProcesses(Path(root) / "cluster")
+            stack.callback(processes.stop_all)
+            processes.start_scheduler()
+            processes.ensure_workers()
+            extra["WXSHOCK_SCHEDULER"] = processes.address
         no_trim = Path(root) / "no-trim"
         no_trim.mkdir()
         (no_trim / "sitecustomize.py").write_text(NO_TRIM, encoding="utf-8")
@@ -433,17 +457,21 @@ def phase_job(args: argparse.Namespace) -> dict[str, Any]:
             path = f"{CODE}:{no_trim}" if not trim else str(CODE)
             server = memory.start_capped(
                 stores=[store], data_dir=Path(root) / f"{fmt}-{trim}", cap_bytes=4 << 30,
-                env={"PYTHONPATH": path, "WXSHOCK_JOB_WORKERS": "1"}, cwd=CODE,
+                env={"PYTHONPATH": path, "WXSHOCK_JOB_WORKERS": "1", **extra}, cwd=CODE,
             )  # fmt: skip
             try:
                 server.sample()
                 idle = server.samples[-1]
+                cpu_before = _cpu_seconds(server.pid) or 0.0
+                load_start = load()
                 with httpx.Client(base_url=server.server.base_url, timeout=600) as client:
                     start = time.perf_counter()
                     submitted = client.post(f"/v1/jobs?format={fmt}", content=body,
                                             headers={"Content-Type": "application/json"})  # fmt: skip
                     if submitted.status_code != 202:
                         raise SystemExit(f"job refused: {submitted.status_code} {submitted.text[:500]}")
+                    server.sample()
+                    after_submit = server.peak_rss
                     location = submitted.headers["Location"]
                     state: dict[str, Any] = {}
                     deadline = time.monotonic() + args.job_limit_s
@@ -454,25 +482,31 @@ def phase_job(args: argparse.Namespace) -> dict[str, Any]:
                             break
                         time.sleep(0.5)
                     wall = time.perf_counter() - start
+                    cpu = (_cpu_seconds(server.pid) or 0.0) - cpu_before
                     time.sleep(2.0)  # the trim runs after the job's end is recorded
                     server.sample()
                     after = server.samples[-1]
                     size = None
                     if state.get("state") == "succeeded":
-                        result = client.get(location + "/result")
-                        size = len(result.content)
+                        with client.stream("GET", location + "/result") as result:
+                            size = sum(len(chunk) for chunk in result.iter_bytes())
             finally:
                 server.stop()
             out[f"{fmt}{'' if trim else '_no_trim'}"] = {
                 "state": state.get("state"),
+                "error": state.get("error"),
                 "wall_s": wall,
+                "server_cpu_s": cpu,
                 "peak_rss_mb": server.peak_rss / 2**20,
+                "peak_after_submission_mb": after_submit / 2**20,
                 "idle_rss_mb": idle / 2**20,
                 "rss_after_mb": after / 2**20,
                 "result_mb": None if size is None else size / 2**20,
                 "cap": server.report()["cap"],
+                "load_start": load_start,
                 "load": load(),
             }
+            print(json.dumps({fmt: out[f"{fmt}{'' if trim else '_no_trim'}"]}), file=sys.stderr, flush=True)
     return out
 
 
@@ -559,6 +593,11 @@ def main() -> int:
     )
     parser.add_argument("--job-limit-s", type=float, default=1800.0)
     parser.add_argument("--job-no-trim", action="store_true", help="also a server without malloc_trim")
+    parser.add_argument("--job-formats", default="csv,parquet", help="formats of the job phase, in order")
+    parser.add_argument(
+        "--job-env", action="append", help="a server setting for the job phase, e.g. WXSHOCK_JOB_BATCH_SERIES_MB=64"
+    )
+    parser.add_argument("--job-cluster", action="store_true", help="the job phase on a local dask cluster")
     parser.add_argument("--trim-features", type=int, default=2000)
     parser.add_argument("--requests", type=int, default=60)
     parser.add_argument("--latency-store", action="append", default=None)
@@ -575,7 +614,11 @@ def main() -> int:
         "--store", args.store, "--features", str(args.features), "--requests", str(args.requests),
         "--cluster-features", str(args.cluster_features), "--job-features", str(args.job_features),
         "--job-limit-s", str(args.job_limit_s), "--trim-features", str(args.trim_features), *(["--job-store", args.job_store] if args.job_store else []),
+        "--job-formats", args.job_formats, *(["--job-cluster"] if args.job_cluster else []),
+        *(["--job-no-trim"] if args.job_no_trim else []),
     ]  # fmt: skip
+    for item in args.job_env or []:
+        argv += ["--job-env", item]
     for location in args.latency_store:
         argv += ["--latency-store", location]
     results: dict[str, Any] = {"started": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()), "load": load()}

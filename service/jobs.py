@@ -495,8 +495,9 @@ def job_batches(settings: Settings) -> dict[str, int]:
     """How a job's feature batches are bounded on local threads: their daily means (bytes) and how many run at
     once; nothing on a cluster, where the batches' means stay on the workers and only tables come back.
 
-    A 1,000-feature batch of 48 years holds 420 MB of means and about twice that while its table is made;
-    two of them in flight held a server at 2.4 GB (bench/RESULTS.md, "Scale").
+    A 1,000-feature batch of 48 years holds 420 MB of means and about as much again in partial sums and the
+    table's season cubes; two of them in flight held a server at 2.3 GB. One batch of 64 MB of means (152
+    features of 48 years) at a time: 672 MB in process, for 19 % more CPU (bench/RESULTS.md, "A job's memory").
     """
     if (settings.scheduler or "").strip():
         return {}

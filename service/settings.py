@@ -87,7 +87,7 @@ class Settings(BaseSettings):
     )
     job_workers: int = Field(default=1, ge=1, le=16)
     job_batch_series_mb: int = Field(
-        default=128,
+        default=64,
         ge=1,
         description="Daily means (MB, float64) one feature batch of a job may hold on local threads: jobs take "
         "smaller batches than on-demand requests, so that a server's memory stays flat in the number of "

@@ -130,8 +130,8 @@ class _Kinds:
             self.text_bytes[column] = max(self.text_bytes.get(column, 0), size)
 
 
-def _kinds(frame: pd.DataFrame) -> _Kinds:
-    """The column kinds of a table (or of one piece of it)."""
+def _kinds(frame: pd.DataFrame, widths: bool = False) -> _Kinds:
+    """The column kinds of a table (or of one piece of it, with its text widths when ``widths``)."""
     kinds = _Kinds()
     for column in frame.columns:
         name, values = str(column), frame[column]
@@ -140,8 +140,8 @@ def _kinds(frame: pd.DataFrame) -> _Kinds:
             kinds.value_labels[name] = labels
         elif isinstance(values.dtype, pd.CategoricalDtype) or pd.api.types.is_string_dtype(values.dtype):
             kinds.text.add(name)
-            text = _as_text(values)
-            kinds.text_bytes[name] = int(text.str.encode("utf-8").str.len().max()) if len(text) else 0
+            if widths and len(values):
+                kinds.text_bytes[name] = int(_as_text(values).str.encode("utf-8").str.len().max())
         elif pd.api.types.is_bool_dtype(values.dtype):
             kinds.flags.add(name)
         elif pd.api.types.is_integer_dtype(values.dtype):
@@ -272,7 +272,7 @@ def stata_pieces(
     for frame in frames():
         if first is None:
             first = frame.iloc[:0]
-        kinds.merge(_kinds(frame))
+        kinds.merge(_kinds(frame, widths=True))
         rows += len(frame)
     if first is None or rows == 0:
         yield to_stata(first if first is not None else pd.DataFrame(columns=columns), provenance, [])

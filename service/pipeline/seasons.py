@@ -204,9 +204,10 @@ def run_in_pieces(
     Each finished batch's rows (in request order within the batch, notes and skipped features as
     :func:`run` makes them) are written to a file in the directory ``spill``, cut at every PIECE_FEATURES-th
     feature of the request; the frames returned read those files back, PIECE_FEATURES features at a time, in
-    request order, each time they are iterated. The caller encodes them (service.encode.stream) and then removes ``spill``. None for a
-    request with events or variants (their runs are made whole: use :func:`run`). ``series_bytes`` and
-    ``in_flight`` bound the daily means held at once (a job's smaller batches, fewer of them at a time).
+    request order, each time they are iterated. The caller encodes them (service.encode.stream, .stata,
+    .bundle) and then removes ``spill``. None for a request with events or variants (their runs are made whole:
+    use :func:`run`). ``series_bytes`` and ``in_flight`` bound the daily means held at once (a job's smaller
+    batches, fewer of them at a time).
     """
     import pickle
 
