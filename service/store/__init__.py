@@ -17,8 +17,10 @@ Nothing else in the project opens zarr: every other module goes through :func:`o
 
 The package, one module a concern: ``layout`` (names, int16 encoding, chunking and codecs), ``timeaxis`` (day
 numbers and calendars), ``grids`` (Grid, CRS, cell edges, longitude-latitude outline), ``location`` (local paths
-and URLs, opening the zarr group, aside locations), ``fingerprint``, ``read`` (Store, open_store) and ``write``
-(write aside then swap, append). Every public name is importable from ``service.store``.
+and URLs, opening the zarr group), ``fingerprint``, ``read`` (Store, open_store), ``chunks`` (whole chunks decoded
+with the codec, the decoded-tile cache), ``write`` (create, append, add variables, grids and layers), ``swap``
+(write aside, then a journaled swap; recovery) and ``migrate`` (layout 1 -> 2). Every public name is importable
+from ``service.store``.
 """
 
 from __future__ import annotations

@@ -1,9 +1,7 @@
-"""Where a store lives: local directories and fsspec URLs, opening the zarr group, aside locations."""
+"""Where a store lives: local directories and fsspec URLs, opening the zarr group."""
 
 from __future__ import annotations
 
-import shutil
-import uuid
 from pathlib import Path
 from typing import Any, Literal
 
@@ -73,16 +71,6 @@ def _open_group(location: str, storage_options: dict | None, *, mode: Literal["r
         raise StoreError(f"store {location!r} cannot be opened: {type(exc).__name__}: {exc}") from exc
 
 
-def _aside_location(target: str, purpose: str) -> str:
-    """A sibling location for writing aside: <parent>/.<name>.<purpose>-<random>."""
-    token = uuid.uuid4().hex[:12]
-    if _is_url(target):
-        head, _, last = target.rpartition("/")
-        return f"{head}/.{last}.{purpose}-{token}"
-    path = Path(target)
-    return str(path.parent / f".{path.name}.{purpose}-{token}")
-
-
 def _filesystem(location: str, storage_options: dict | None) -> tuple[Any, str]:
     """(fsspec filesystem, path in it) of a URL."""
     import fsspec
@@ -97,16 +85,3 @@ def _exists(location: str, storage_options: dict | None) -> bool:
         fs, path = _filesystem(location, storage_options)
         return bool(fs.exists(path))
     return Path(location).exists()
-
-
-def _remove(location: str, storage_options: dict | None) -> None:
-    """Delete a store (quietly, best effort: used to clean up a failed write)."""
-    try:
-        if _is_url(location):
-            fs, path = _filesystem(location, storage_options)
-            if fs.exists(path):
-                fs.rm(path, recursive=True)
-        elif Path(location).exists():
-            shutil.rmtree(location)
-    except OSError:
-        pass
