@@ -221,6 +221,34 @@ def test_cli_ingest_writes_and_appends_to_s3_like_to_disk(
         assert secret not in printed.out + printed.err
 
 
+def test_a_layout1_store_on_s3_migrates_like_one_on_disk(s3_server: S3Server, tmp_path: Path) -> None:
+    """An object store has no hard links: the layout-1 store is rewritten aside in its own chunking, and gives the
+    store (and fingerprint) that the migration on disk gives."""
+    import shutil
+
+    import s3fs
+
+    from service.store import migrate_store
+
+    source = Path(__file__).parent / "data" / "store_layout1.zarr"
+    local = tmp_path / "old.zarr"
+    shutil.copytree(source, local)
+    fs = s3fs.S3FileSystem(**s3_server.storage_options(), skip_instance_cache=True)
+    key = f"{s3_server.bucket}/layout1/old.zarr"
+    fs.put(str(source), key, recursive=True)
+    url, options = f"s3://{key}", s3_server.storage_options()
+    old = open_store(url, storage_options=options)
+    assert old.layout_version == 1
+    fingerprint = migrate_store(url, storage_options=options)
+    assert fingerprint == migrate_store(local)
+    remote, on_disk = open_store(url, storage_options=options), open_store(local)
+    assert remote.layout_version == 2 and remote.migrated_from == on_disk.migrated_from
+    assert remote.migrated_from["fingerprint"] == old.fingerprint
+    assert remote._var_arrays["prcp"].chunks == old._var_arrays["prcp"].chunks  # the chunking is kept
+    for variable in old.variables:
+        assert remote.read(variable, *WHOLE).tobytes() == on_disk.read(variable, *WHOLE).tobytes()
+
+
 # --- served through the API --------------------------------------------------------------------------------------
 
 

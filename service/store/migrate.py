@@ -25,7 +25,9 @@ from service.store.layout import (
     GRIDS_ATTR,
     LAYOUT_VERSION,
     MIGRATED_ATTR,
+    VARIABLES,
     VERSION_ATTR,
+    Layout,
     read_layout,
 )
 from service.store.location import _is_url, _normalise_location, _open_group, _zarr_store
@@ -66,7 +68,7 @@ def _migrate_locked(target: str, storage_options: dict | None, progress: bool) -
     if _is_url(target):
         store = Store(target, storage_options=storage_options)
         plan = _existing_grid_plan(store, DEFAULT_GRID)
-        layout_of = _v1_layout(old, layout)
+        layout_of = _v1_layout(old)
         return _write_new(
             target, storage_options, [plan], root_attrs, layout_of, progress, "migrating",
             extra_root={MIGRATED_ATTR: record},
@@ -93,15 +95,11 @@ def _migrate_locked(target: str, storage_options: dict | None, progress: bool) -
     return fingerprint
 
 
-def _v1_layout(group: zarr.Group, layout: object) -> object:
+def _v1_layout(group: zarr.Group) -> Layout:
     """The chunking of a layout-1 store's daily variables, kept when it is rewritten."""
-    from service.store.layout import TILE_CELLS, VARIABLES, Layout
+    from service.store.write import _array_layout
 
     for v in VARIABLES:
         if v in group.array_keys():
-            array = group[v]
-            cy, cx, ct = (int(c) for c in array.chunks)
-            ny, nx = array.shape[:2]
-            tile = cy if cy < ny else (cx if cx < nx else TILE_CELLS)
-            return Layout(tile=tile, time_chunk=ct, shard_time=int(array.shards[2]) if array.shards else None)
+            return _array_layout(group[v])
     raise StoreFormatError("the layout-1 store has no daily variable")

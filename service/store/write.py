@@ -890,7 +890,11 @@ def _layout_of(group: zarr.Group) -> Layout:
     """The layout (chunking, codec level) of a store's first daily variable, for arrays added to it."""
     layout = read_layout(group, "store")
     v, g = next(iter(layout.variables.items()))
-    array = group[layout.path(g, v)]
+    return _array_layout(group[layout.path(g, v)])
+
+
+def _array_layout(array: zarr.Array) -> Layout:
+    """The layout (tile, time chunk, time shard) a daily (y, x, time) array was written with, to write more like it."""
     cy, cx, ct = (int(c) for c in array.chunks)
     ny, nx = array.shape[:2]
     tile = cy if cy < ny else (cx if cx < nx else TILE_CELLS)  # a grid smaller than a tile does not show it
