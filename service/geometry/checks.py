@@ -510,6 +510,19 @@ def _cut_at_180(geometry: shapely.Geometry, feature_id: str, pointer: str) -> sh
         ) from None
 
 
+def _cut_crossings(
+    shapes: np.ndarray, rows: list[int], drafts: list[_Draft], faults: dict[int, RequestError]
+) -> None:
+    """Cut in place the lon/lat shapes (of features ``rows``) that cross the 180th meridian; a shape that cannot be
+    cut becomes its feature's fault."""
+    for k in np.flatnonzero(crossing(shapes)):
+        d = drafts[rows[k]]
+        try:
+            shapes[k] = _cut_at_180(shapes[k], d.id, d.pointer)
+        except FeatureError as exc:
+            faults[rows[k]] = exc
+
+
 def _checked_valid(
     geometry: shapely.Geometry, feature_id: str, pointer: str, repair: bool
 ) -> tuple[shapely.Geometry, bool]:
@@ -655,12 +668,7 @@ def _finish_polygons(
     geoms = np.array([drafts[r].geometry for r in rows], dtype=object)
     footprints = geoms.copy()
     if geographic:
-        for k in np.flatnonzero(crossing(geoms)):
-            d = drafts[rows[k]]
-            try:
-                footprints[k] = _cut_at_180(geoms[k], d.id, d.pointer)
-            except FeatureError as exc:
-                faults[rows[k]] = exc
+        _cut_crossings(footprints, rows, drafts, faults)
     good = np.array([r not in faults for r in rows])
     ok = np.zeros(len(rows), dtype=bool)
     ok[good] = shapely.is_valid(footprints[good]) & (shapely.area(footprints[good]) > 0)
@@ -694,12 +702,7 @@ def _finish_points(
     shapely_points = shapely.points(points)
     circles = _circles(points, np.array(radius, dtype=np.float64), crs)
     if crs.is_geographic:
-        for k in np.flatnonzero(crossing(circles)):
-            d = drafts[rows[k]]
-            try:
-                circles[k] = _cut_at_180(circles[k], d.id, d.pointer)
-            except FeatureError as exc:
-                faults[rows[k]] = exc
+        _cut_crossings(circles, rows, drafts, faults)
     for k, row in enumerate(rows):
         drafts[row].geometry = shapely_points[k]
         drafts[row].footprint = circles[k]
