@@ -141,6 +141,33 @@ def cmd_migrate(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_relayout(args: argparse.Namespace) -> int:
+    """Rewrite a store's daily variables in another chunking in place (recoverably); the fingerprint stays."""
+    from service.store import DEFAULT_LAYOUT, Layout, relayout_store, store_layout
+
+    settings = _settings(args)
+    options = settings.storage_options() if str(args.store).startswith("s3://") else None
+    shard = DEFAULT_LAYOUT.shard_tile if args.shard is None else (args.shard or None)
+    layout = Layout(
+        tile=args.tile or DEFAULT_LAYOUT.tile,
+        time_chunk=args.days or DEFAULT_LAYOUT.time_chunk,
+        shard_tile=shard,
+        compressor=DEFAULT_LAYOUT.compressor,
+        level=DEFAULT_LAYOUT.level,
+    )
+    before = store_layout(args.store, storage_options=options)
+    fingerprint, rewritten = relayout_store(
+        args.store, layout, storage_options=options, progress=not args.quiet
+    )
+    if rewritten:
+        print(
+            f"{args.store}: {before.describe()} -> {layout.describe()}; fingerprint {fingerprint} (unchanged)"
+        )
+    else:
+        print(f"{args.store}: already {layout.describe()}; fingerprint {fingerprint}")
+    return 0
+
+
 def cmd_compute(args: argparse.Namespace) -> int:
     """Run the whole chain locally: weights, aggregation, indicators, encoding."""
     from service.pipeline import compute_to_file
@@ -268,6 +295,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("store")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_migrate)
+
+    p = sub.add_parser(
+        "relayout",
+        help="rewrite a store's daily variables in another chunking (default: today's layout for new stores)",
+        description="Rewrite a store's daily variables in place with the chunking new stores get (or the one "
+        "given), through the recoverable swap; the values and the fingerprint stay the same. A layout-1 store is "
+        "migrated first. Needs free disk for a second copy of the store while it runs.",
+    )
+    p.add_argument("store")
+    p.add_argument("--tile", type=int, help="cells per side of a compressed chunk (default: as new stores)")
+    p.add_argument("--shard", type=int, help="cells per side of a shard of chunks, a multiple of --tile (0: no "
+                   "shards; default: as new stores)")  # fmt: skip
+    p.add_argument("--days", type=int, help="days per chunk (default: as new stores)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_relayout)
 
     p = sub.add_parser("compute", help="compute indicators locally, without a server")
     p.add_argument(

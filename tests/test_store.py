@@ -193,7 +193,8 @@ def test_sharded_layout_reads_the_same(tmp_path: Path) -> None:
     sharded = write_store(ds, tmp_path / "sharded.zarr", layout=Layout(time_chunk=365, shard_time=730))
     assert plain == sharded  # the fingerprint names the values, not their chunking
     a, b = open_store(tmp_path / "plain.zarr"), open_store(tmp_path / "sharded.zarr")
-    assert b.chunk_shape == (5, 4, 730) and b.inner_chunk_shape == (5, 4, 365)
+    assert b.chunk_shape == (5, 4, 365) and b.inner_chunk_shape == (5, 4, 365)  # read unit: the inner chunk
+    assert b.storage_shape_of("tmax") == (5, 4, 730)
     np.testing.assert_array_equal(a.read("tmax", slice(None), slice(1, 3), slice(300, 900)),
                                   b.read("tmax", slice(None), slice(1, 3), slice(300, 900)))  # fmt: skip
     assert verify_store(tmp_path / "sharded.zarr").ok

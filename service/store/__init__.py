@@ -29,6 +29,7 @@ from service.store.fingerprint import CANONICAL_TILE, VerifyResult, compute_fing
 from service.store.grids import Grid, is_lonlat_crs
 from service.store.layout import (
     ADD_OFFSET,
+    CHUNK_CELLS,
     COMPRESSOR_LEVEL,
     COMPRESSOR_NAME,
     DEFAULT_GRID,
@@ -55,6 +56,7 @@ from service.store.layout import (
 from service.store.location import _normalise_location
 from service.store.migrate import migrate_store
 from service.store.read import Store, open_store
+from service.store.relayout import relayout_store, store_layout
 from service.store.swap import recover, store_exists
 from service.store.timeaxis import DateTable, _daily_numbers, _date_table, _iso
 from service.store.write import (
@@ -71,6 +73,7 @@ _exists = store_exists  # the name ingest imported before store_exists existed
 
 __all__ = [
     "ADD_OFFSET",
+    "CHUNK_CELLS",
     "CANONICAL_TILE",
     "DEFAULT_GRID",
     "COMPRESSOR_LEVEL",
@@ -112,7 +115,9 @@ __all__ = [
     "open_for_check",
     "open_store",
     "recover",
+    "relayout_store",
     "store_exists",
+    "store_layout",
     "update_store",
     "verify_store",
     "write_layer",

@@ -48,7 +48,13 @@ _INT16_MIN, _INT16_MAX = -32767, 32767
 # 56 ms), make a full pass at the bare blosc decode speed (1.81 s CPU against 1.77 s), and append a year in 2.3 s
 # (whole-time chunks: 15.3 s, as every chunk is rewritten; decade chunks in 4-decade shards: 3.8 s). blosc lz4
 # with byte shuffle decodes 2.3x faster than zstd level 1 for 9 % (tmax) to 35 % (prcp) more disk.
-TILE_CELLS = 32
+# Since issue 15 (bench/bench_layouts.py; bench/RESULTS.md, "Store layouts for on-demand reads"), new stores keep
+# those 32 x 32-cell decade shards as their stored objects, each holding four 16 x 16-cell chunks that are read
+# and decoded apart: a ~25-cell community decodes about half the bytes (on-demand CPU about halved, 54 against
+# 108 ms per request on the large demo), while the 5,000-village batch, the raw decode and an append cost what
+# they did. 8 x 8-cell chunks decode less still but cost the batch about a quarter more CPU (16 times the tasks).
+TILE_CELLS = 32  # cells per side of a stored object (a chunk, or the shard of newer stores)
+CHUNK_CELLS = 16  # cells per side of a compressed chunk inside a shard (new stores)
 TIME_CHUNK_DAYS = 3653  # ten years (with their leap days) per chunk
 COMPRESSOR_NAME = "lz4"
 COMPRESSOR_LEVEL = 5
@@ -187,13 +193,30 @@ def read_layout(group: zarr.Group, location: str) -> StoreLayout:
 
 @dataclass(frozen=True)
 class Layout:
-    """Chunking and compression of the daily variables (the defaults are the measured choice)."""
+    """Chunking and compression of the daily variables (the defaults are the measured choice).
+
+    ``tile`` cells per side of a compressed chunk; ``shard_tile`` cells per side of a shard holding several
+    such chunks (a multiple of ``tile``; None: no spatial sharding); ``shard_time`` days per shard (None: the
+    chunk's days). A store is sharded when either is given.
+    """
 
     tile: int = TILE_CELLS
     time_chunk: int | None = TIME_CHUNK_DAYS  # None: the whole time axis in one chunk
     shard_time: int | None = None  # days per shard when sharded (inner chunks then hold time_chunk days)
     compressor: str = COMPRESSOR_NAME
     level: int = COMPRESSOR_LEVEL
+    shard_tile: int | None = None  # cells per side of a shard of tile x tile chunks
+
+    def __post_init__(self) -> None:
+        if self.tile < 1 or (self.time_chunk is not None and self.time_chunk < 1):
+            raise StoreFormatError(
+                f"layout: tile {self.tile!r} and time_chunk {self.time_chunk!r} must be at least 1"
+            )
+        if self.shard_tile is not None and (self.shard_tile < self.tile or self.shard_tile % self.tile):
+            raise StoreFormatError(
+                f"layout: shard_tile {self.shard_tile!r} must be a multiple of tile {self.tile!r} (a shard holds "
+                "whole chunks); give e.g. shard_tile = 4 x tile"
+            )
 
     def chunks(self, ny: int, nx: int, nt: int) -> tuple[int, int, int]:
         """(cy, cx, ct) of one compressed chunk for an array of this size.
@@ -205,19 +228,47 @@ class Layout:
         return (min(self.tile, ny), min(self.tile, nx), max(ct, 1))
 
     def shards(self, ny: int, nx: int, nt: int) -> tuple[int, int, int] | None:
-        """(sy, sx, st) of one shard, or None when not sharded."""
-        if self.shard_time is None:
+        """(sy, sx, st) of one shard, or None when not sharded (a shard never spans more chunks than the grid)."""
+        if self.shard_time is None and self.shard_tile is None:
             return None
         cy, cx, ct = self.chunks(ny, nx, nt)
-        st = max(ct, (self.shard_time // ct) * ct)
-        return (cy, cx, st)
+        st = ct if self.shard_time is None else max(ct, (self.shard_time // ct) * ct)
+        per_side = (self.shard_tile or self.tile) // self.tile
+        return (cy * min(per_side, -(-ny // cy)), cx * min(per_side, -(-nx // cx)), st)
 
     def codec(self) -> BloscCodec:
         """The blosc codec (byte shuffle; int16 values of neighbouring days share their high bytes)."""
         return BloscCodec(cname=self.compressor, clevel=self.level, shuffle=BloscShuffle.shuffle)
 
+    def describe(self) -> str:
+        """The layout in words, e.g. '8 x 8 cells x 3653 days chunks in 32 x 32-cell shards'."""
+        days = "the whole time axis" if self.time_chunk is None else f"{self.time_chunk} days"
+        text = f"{self.tile} x {self.tile} cells x {days} chunks"
+        if self.shard_tile is not None or self.shard_time is not None:
+            side = self.shard_tile or self.tile
+            text += f" in {side} x {side}-cell shards" + (
+                f" of {self.shard_time} days" if self.shard_time is not None else ""
+            )
+        return text + f" ({self.compressor} level {self.level})"
 
-DEFAULT_LAYOUT = Layout()
+
+def layout_of_array(array: zarr.Array) -> Layout:
+    """The layout (chunking, sharding; the default codec) a daily array was written with, for arrays added to
+    its store or for rewriting it (a grid smaller than a chunk does not show the tile: the default is taken)."""
+    cy, cx, ct = (int(c) for c in array.chunks)
+    ny, nx = (int(n) for n in array.shape[:2])
+    tile = cy if cy < ny else (cx if cx < nx else TILE_CELLS)
+    if not array.shards:
+        return Layout(tile=tile, time_chunk=ct)
+    sy, sx, st = (int(s) for s in array.shards)
+    shard_tile = sy if sy > cy else (sx if sx > cx else None)
+    if shard_tile is not None and (tile >= shard_tile or shard_tile % tile):
+        shard_tile = None  # an edge case of tiny grids: keep the chunks, shards along time only
+    return Layout(tile=tile, time_chunk=ct, shard_time=st, shard_tile=shard_tile)
+
+
+# New stores: 16 x 16-cell decade chunks in 32 x 32-cell shards (``Layout()`` alone is the older unsharded one).
+DEFAULT_LAYOUT = Layout(tile=CHUNK_CELLS, shard_tile=TILE_CELLS)
 
 
 def _json_scalar(value: Any) -> bool:

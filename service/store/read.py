@@ -255,14 +255,21 @@ class Store:
         return slice(start, stop)
 
     def chunk_shape_of(self, var: str) -> tuple[int, int, int]:
-        """(cy, cx, ct) of one read unit of a daily variable (the shard when sharded)."""
+        """(cy, cx, ct) of one read unit of a daily variable: its compressed chunk, the piece decoded whole
+        (inside its shard when sharded, so that a small community decodes only the chunks it touches; the
+        measurement is in bench/RESULTS.md, "Store layouts for on-demand reads")."""
+        chunks = self._array(self._check_variable(var)).chunks
+        return (int(chunks[0]), int(chunks[1]), int(chunks[2]))
+
+    def storage_shape_of(self, var: str) -> tuple[int, int, int]:
+        """(sy, sx, st) of one stored object of a daily variable (the shard when sharded, else the chunk)."""
         array = self._array(self._check_variable(var))
         unit = array.shards or array.chunks
         return (int(unit[0]), int(unit[1]), int(unit[2]))
 
     @cached_property
     def chunk_shape(self) -> tuple[int, int, int]:
-        """(cy, cx, ct) of one read unit of the first variable, in (y, x, time) order (the shard when sharded)."""
+        """(cy, cx, ct) of one read unit (compressed chunk) of the first variable, in (y, x, time) order."""
         return self.chunk_shape_of(self.variables[0])
 
     @cached_property
@@ -378,7 +385,7 @@ class Store:
         outline = Grid(g.crs_wkt, g.x, g.y, g.is_geographic, lat=lonlat[0], lon=lonlat[1]) if lonlat else g
         variables = [v for v, on in self._layout.variables.items() if on == grid]
         first = variables[0]
-        unit_shape = self.chunk_shape_of(first)
+        unit_shape = self.storage_shape_of(first)
         inner = self._var_arrays[first].chunks
         return {
             "crs": {

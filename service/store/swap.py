@@ -41,7 +41,7 @@ from service.store.location import _filesystem, _is_url
 log = logging.getLogger("wxshock.store")
 
 # The purposes of aside directories: all of them are litter once no write holds the lock.
-ASIDE_PURPOSES = ("writing", "appending", "updating", "migrating", "old")
+ASIDE_PURPOSES = ("writing", "appending", "updating", "migrating", "relayout", "old")
 JOURNAL_SUFFIX = ".swap.json"
 LOCK_SUFFIX = ".lock"
 # How long a reader waits for a writer that is in the middle of a swap before giving up.

@@ -31,7 +31,7 @@ from __future__ import annotations
 import os
 import shutil
 import warnings
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -62,7 +62,6 @@ from service.store.layout import (
     MASK_LAYER,
     MIGRATED_ATTR,
     SCALE_FACTOR,
-    TILE_CELLS,
     TIME_COORD_CHUNK,
     TIME_UNITS,
     VARIABLE_ATTRS,
@@ -74,6 +73,7 @@ from service.store.layout import (
     _json_scalar,
     check_grid_name,
     default_grid_name,
+    layout_of_array,
     read_layout,
 )
 from service.store.location import _is_url, _normalise_location, _open_group, _zarr_store
@@ -456,8 +456,11 @@ def _write_new(
     purpose: str,
     *,
     extra_root: Mapping[str, Any] | None = None,
+    before_swap: Callable[[str], None] | None = None,
 ) -> str:
-    """Write a complete store aside from grid plans, finish it and swap it into place (lock held)."""
+    """Write a complete store aside from grid plans, finish it and swap it into place (lock held).
+
+    ``before_swap(fingerprint)`` may refuse the new store by raising: the aside copy is then discarded."""
     if not _is_url(target):
         Path(target).parent.mkdir(parents=True, exist_ok=True)
     first = min(v.first for p in plans for v in p.variables.values())
@@ -486,6 +489,8 @@ def _write_new(
                 regions.append(region)
         _store_all(sources, targets, regions, "writing store" if progress else None)
         fingerprint = _finish(aside, storage_options, progress, touched=None)
+        if before_swap is not None:
+            before_swap(fingerprint)
     return fingerprint
 
 
@@ -887,19 +892,16 @@ def _update_in_place(
 
 
 def _layout_of(group: zarr.Group) -> Layout:
-    """The layout (chunking, codec level) of a store's first daily variable, for arrays added to it."""
+    """The layout (chunking, sharding) of a store's first daily variable, for arrays added to it."""
     layout = read_layout(group, "store")
     v, g = next(iter(layout.variables.items()))
     return _array_layout(group[layout.path(g, v)])
 
 
 def _array_layout(array: zarr.Array) -> Layout:
-    """The layout (tile, time chunk, time shard) a daily (y, x, time) array was written with, to write more like it."""
-    cy, cx, ct = (int(c) for c in array.chunks)
-    ny, nx = array.shape[:2]
-    tile = cy if cy < ny else (cx if cx < nx else TILE_CELLS)  # a grid smaller than a tile does not show it
-    shard_time = int(array.shards[2]) if array.shards else None
-    return Layout(tile=tile, time_chunk=ct, shard_time=shard_time)
+    """The layout (chunks, spatial and time shards) a daily (y, x, time) array was written with, to write more like
+    it (service.store.layout.layout_of_array)."""
+    return layout_of_array(array)
 
 
 def _write_static(member: zarr.Group, name: str, values: np.ndarray, attrs: Mapping[str, Any]) -> None:
