@@ -34,7 +34,9 @@ def test_relayout_keeps_values_and_fingerprint_and_reads_inner_chunks(tmp_path: 
     assert store.describe()["grids"]["grid"]["chunks"] == {"y": 8, "x": 8, "time": 365}
     for var in ("tmax", "tmin", "prcp"):
         expected = ds[var].transpose("y", "x", "time").values
-        np.testing.assert_allclose(store.read(var, slice(None), slice(None), slice(None)), expected, atol=1e-9)
+        np.testing.assert_allclose(
+            store.read(var, slice(None), slice(None), slice(None)), expected, atol=1e-9
+        )
     assert relayout_store(path, SHARDED) == (before, False)  # already in that layout: left alone
     back, rewritten = relayout_store(path, Layout())
     assert rewritten and back == before and open_store(path).chunk_shape == (10, 9, 3653)
@@ -53,7 +55,9 @@ def test_append_to_a_relaid_store_keeps_its_layout(tmp_path: Path) -> None:
     assert store.chunk_shape == (4, 4, 365) and store.storage_shape_of("prcp") == (8, 8, 365)
 
 
-def test_relayout_refuses_a_rewrite_that_changes_values(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_relayout_refuses_a_rewrite_that_changes_values(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     ds = make_dataset(ny=6, nx=5, years=(2000, 2001))
     path = tmp_path / "s.zarr"
     before = write_store(ds, path)
