@@ -160,3 +160,12 @@ def test_compiles_without_a_writable_cache() -> None:
     )
     env = {**os.environ, "NUMBA_CACHE_LOCATOR_CLASSES": "ZipCacheLocator"}
     subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env, check=True)
+
+
+def test_warm_up_loads_the_kernel_for_writable_and_read_only_chunks() -> None:
+    from service import weighted_sums
+
+    weighted_sums.warm_up()
+    assert weighted_sums._compiled is not None
+    readonly = [sig for sig in weighted_sums._compiled.signatures if not sig[4].mutable]
+    assert readonly and len(weighted_sums._compiled.signatures) >= 2
