@@ -373,7 +373,8 @@ def _top_quantile(pool: np.ndarray, rows: np.ndarray, q: float) -> np.ndarray:
     # how deep from the top each row's quantile reaches: ranks floor(h) and floor(h) + 1 of n values
     pooled = np.stack([wet_count[:, periods].sum(axis=-1) for _, periods in usable_rows], axis=1)
     h = np.clip((pooled + 1.0 / 3.0) * q + 1.0 / 3.0, 1.0, np.maximum(pooled, 1).astype(np.float64))
-    depth = min(n_day, int((pooled - np.floor(h)).max()) + 1)
+    # at least 1: with no wet day anywhere (a dry pool, or no data) every value is NaN below, not an error
+    depth = min(n_day, max(1, int((pooled - np.floor(h)).max()) + 1))
     # each period's wet days, largest first (NaN last), cut to the deepest rank any row needs
     largest = -np.sort(-wet.reshape(-1, n_day), axis=-1)[:, :depth].reshape(n_feature, n_period, depth)
     for column, (r, periods) in enumerate(usable_rows):

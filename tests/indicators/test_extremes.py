@@ -289,6 +289,18 @@ def test_r95ptot_by_hand():
     assert value[0] == pytest.approx(20.0)  # in-base: the 20 mm day of each baseline year
 
 
+@pytest.mark.parametrize("pool", ["year", "season"])
+@pytest.mark.parametrize("prcp", [np.nan, 0.0])
+def test_r95ptot_without_any_wet_day_is_null_not_an_error(pool, prcp):
+    # a pool without a single wet day (all missing, as in a job's dry run, or all dry) has no threshold:
+    # every value null (no_fit), where an IndexError was raised before
+    daily = daily_series(2000, 4, prcp=np.full(daily_series(2000, 4).year.size, prcp))
+    cube = season_cube(daily, months=[3, 4])
+    entry = get_indicator("r95ptot")
+    result = entry.compute(cube, fixed_baseline(cube, 2000, 2002), entry.resolve({"threshold_pool": pool}))
+    assert np.isnan(values_of(result)).all()
+
+
 def test_hotdry_days_and_spell_by_hand():
     # baseline 2000-2004 TX 30 with +-1 by day parity (90th percentile 31); in 2005 TX is 35 on days
     # 10-19 and 25-27, and it rains on day 15: hot-dry days 5 + 4 + 3 = 12, longest run days 10-14 = 5
