@@ -196,6 +196,11 @@ TINY_WINDOWS = [
 ]
 
 
+TINY_INDICATORS = [  # r95ptot: see the dry run of variants
+    i for i in ALL_INDICATORS if i not in ("tx90p", "tn10p", "hotdry_days", "hotdry_spell", "r95ptot")
+]
+
+
 def _tiny_cases() -> dict[str, dict[str, Any]]:
     """Requests on the tiny demo through pipeline.run (features filled in by _tiny_case)."""
     return {
@@ -205,6 +210,10 @@ def _tiny_cases() -> dict[str, dict[str, Any]]:
                         "baseline": {"start": 1981, "end": 2010}, "events": "EVENTS"},
         "tiny_variants": {"variants": [{"name": "main"}, {"name": "recent", "baseline": {"trailing": 10}},
                                        {"name": "cells", "aggregation": "cells", "partial_seasons": "null"}]},
+        "tiny_variants_wide": {"indicators": TINY_INDICATORS, "lags": [0, 1],
+                               "variants": [{"name": "a"}, {"name": "b", "baseline": {"trailing": 10}}]},
+        "tiny_variants_long": {"indicators": TINY_INDICATORS, "layout": "long",
+                               "variants": [{"name": "a"}, {"name": "b", "partial_seasons": "as_is"}]},
     }  # fmt: skip
 
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -276,6 +277,27 @@ def test_variants_long_layout_has_a_variant_column(store, settings, few) -> None
     recent = frame[frame["variant"] == "recent"]
     assert (main["value"].to_numpy() == recent["value"].to_numpy()).all()  # same values, other normal
     assert not np.allclose(main["z"].to_numpy(), recent["z"].to_numpy(), equal_nan=True)
+
+
+MANY_INDICATORS = [
+    "prcp_total", "wet_days", "tmean", "tmax_mean", "tmin_mean", "cdd", "gdd", "edd", "spi", "spei", "cwd",
+    "rx1day", "rx5day", "r10mm", "r20mm", "sdii", "r95ptot", "txx", "tnn", "su", "fd", "tr", "id", "dtr",
+]  # fmt: skip
+
+
+def test_wide_variants_of_many_indicators_are_one_frame(store, settings, few) -> None:
+    """Two variants of 24 indicators (over 100 categorical and Int64 columns): the wide table is built at
+    once, without pandas' warning about a fragmented frame; r95ptot passes the variants' dry run on
+    missing values (an IndexError before) and has values."""
+    two = {**few, "features": few["features"][:2]}
+    variants = [{"name": "a"}, {"name": "b", "baseline": {"start": 2001, "end": 2020}}]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", pd.errors.PerformanceWarning)
+        frame = run(
+            _season_request(two, indicators=MANY_INDICATORS, variants=variants), store, settings
+        ).frame
+    assert frame.columns[:2].tolist() == ["feature_id", "year"] and frame.columns[-1] == "notes"
+    assert len(frame.columns) > 200 and frame["b__r95ptot"].notna().any()
 
 
 def test_event_variants_with_a_weighting_of_their_own(store, settings, few) -> None:

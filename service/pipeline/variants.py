@@ -472,7 +472,14 @@ def _wide_variants(
         index=index,
         name="notes",
     )
-    return pd.concat([*pieces, union], axis=1).reset_index()
+    # one frame from a dict of columns: inserting the keys into a frame of many (categorical, Int64) columns,
+    # as reset_index would, fragments it (pandas PerformanceWarning) and copies it once per key
+    keys_frame = index.to_frame(index=False)
+    columns: dict[str, Any] = {name: keys_frame[name].array for name in keys_frame.columns}
+    for piece in [*pieces, union.to_frame()]:
+        for name in piece.columns:
+            columns[name] = piece[name].array
+    return pd.DataFrame(columns)
 
 
 def _variants_provenance(
