@@ -22,6 +22,7 @@ import numpy as np
 from service.errors import UnknownIndicatorError
 from service.indicators.base import Baseline, Indicator, Parameter, SeasonCube, register
 from service.indicators.basic import Scratch, null_where_no_days, reduce_rows, valid_sums
+from service.indicators.compiled import degree_day_terms
 
 _HALF_PI = np.pi / 2.0
 
@@ -153,7 +154,11 @@ def season_degree_days(cube: SeasonCube, lower: float, upper: float | None) -> n
     """
 
     def block(scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray) -> np.ndarray:
-        return valid_sums(scratch, _single_sine_block(scratch, tmax, tmin, lower, upper))
+        if tmax.dtype != np.float64 or tmin.dtype != np.float64:  # the compiled loops take float64
+            return valid_sums(scratch, _single_sine_block(scratch, tmax, tmin, lower, upper))
+        terms = scratch.get("values", tmax.shape)
+        degree_day_terms(tmax, tmin, lower, upper, lambda name: scratch.get(name, (tmax.size,)), terms)
+        return np.add.reduce(terms, axis=-1, dtype=np.float64)  # as valid_sums (np.nansum) adds them
 
     sums = reduce_rows(block, cube.tmax, cube.tmin)
     return null_where_no_days(sums, cube.days_with(("tmax", "tmin")))

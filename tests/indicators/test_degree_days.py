@@ -112,3 +112,32 @@ def test_season_sums_and_parameters():
         gdd.compute(cube, base, gdd.resolve({"base": 30, "cap": 20}))
     with pytest.raises(UnknownIndicatorError, match="no parameter 'threshold'"):
         gdd.resolve({"threshold": 3})
+
+
+@pytest.mark.parametrize("lower, upper", [(10.0, 30.0), (29.0, None), (0.0, 5.0), (-3.5, None), (0.0, None)])
+def test_compiled_day_terms_are_single_sine_bit_for_bit(lower, upper):
+    # the compiled loops (service/indicators/compiled.py) must give numpy's single_sine exactly, sign of zero
+    # included, with flat days (tmax == tmin, -0.0 among them), swapped and missing temperatures, and days
+    # exactly on a threshold; missing days are 0 (the terms np.nansum adds)
+    from service.indicators.compiled import degree_day_terms
+
+    rng = np.random.default_rng(15)
+    shape = (40, 366)
+    tmax = np.round(rng.normal(15.0, 12.0, shape), 1)
+    tmin = tmax - np.round(rng.exponential(6.0, shape), 1)
+    flat = rng.random(shape) < 0.05
+    tmin[flat] = tmax[flat]
+    tmax[:2, :50] = tmin[:2, :50] = -0.0
+    tmax[2, :50], tmin[2, :50] = lower, lower - 3.0
+    swap = rng.random(shape) < 0.05
+    tmax[swap], tmin[swap] = tmin[swap], tmax[swap]
+    tmax[rng.random(shape) < 0.03] = np.nan
+    tmin[rng.random(shape) < 0.03] = np.nan
+    expected = degree_days.single_sine(tmax, tmin, lower, upper)
+    expected = np.where(np.isnan(expected), 0.0, expected)
+    terms = np.empty(shape)
+    degree_day_terms(tmax, tmin, lower, upper, lambda name: np.empty(tmax.size), terms)
+    assert np.array_equal(terms, expected) and np.array_equal(np.signbit(terms), np.signbit(expected))
+    assert np.array_equal(
+        terms.sum(axis=-1), np.nansum(degree_days.single_sine(tmax, tmin, lower, upper), axis=-1)
+    )
