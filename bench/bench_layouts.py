@@ -6,6 +6,7 @@
     python bench/bench_layouts.py --only latency,pass,append --no-write
     python bench/bench_layouts.py --only rss
     python bench/bench_layouts.py --only s3
+    python bench/bench_layouts.py --only relayout --sizes large   # migrate or relayout a copy, then append
     python bench/bench_layouts.py --only report         # the RESULTS.md section again from bench/out's JSON
 
 Layouts (each a copy of the demo store with the same values and fingerprint, written by ``make``):
@@ -504,6 +505,42 @@ def phase_append(args: argparse.Namespace) -> dict[str, Any]:
         shutil.rmtree(work, ignore_errors=True)
 
 
+def phase_relayout(args: argparse.Namespace) -> dict[str, Any]:
+    """A hard-linked copy of a (layout-1) demo store migrated as it is, or relaid out to the default layout
+    (``--layout shard16``) with service.store.relayout_store; then a year appended; the copy removed."""
+    from service.store import DEFAULT_LAYOUT, append_store, migrate_store, open_store, relayout_store
+
+    source = SOURCES[args.size]
+    ds = next_year(open_store(source))
+    work = Path(tempfile.mkdtemp(prefix="bench-layouts-relayout-", dir=LAYOUTS_OUT))
+    copy = work / "store.zarr"
+    try:
+        subprocess.run(["cp", "-al", str(source), str(copy)], check=True)
+        wall, cpu = time.perf_counter(), time.process_time()
+        if args.layout == "chunks":
+            migrate_store(copy)
+        else:
+            relayout_store(copy, DEFAULT_LAYOUT)
+        rewrite = (time.perf_counter() - wall, time.process_time() - cpu)
+        store = open_store(copy)
+        wall, cpu = time.perf_counter(), time.process_time()
+        append_store(ds, copy)
+        appended = (time.perf_counter() - wall, time.process_time() - cpu)
+        return {
+            "rewrite": "migrate_store" if args.layout == "chunks" else "relayout_store (migrates first)",
+            "rewrite_wall_s": rewrite[0],
+            "rewrite_cpu_s": rewrite[1],
+            "chunks": list(store.chunk_shape),
+            "storage": list(store.storage_shape_of(store.variables[0])),
+            "append_wall_s": appended[0],
+            "append_cpu_s": appended[1],
+            "peak_mb": peak_mb(),
+            "load": load(),
+        }
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
 # --- peak RSS in store size and years ------------------------------------------------------------------------
 
 
@@ -631,6 +668,7 @@ PHASES = {
     "pass": phase_pass,
     "append": phase_append,
     "rss": phase_rss,
+    "relayout": phase_relayout,
     "s3": phase_s3,
 }
 
@@ -735,6 +773,21 @@ def render(results: dict[str, Any]) -> str:
                 f"| {r['write_days_wall_s']:.1f} | {r['finish_wall_s']:.1f} | {r['peak_mb']:.0f} | {r['load']:.1f} |"
             )
         lines.append("")
+    relaid = [k for k in results if k.startswith("relayout/")]
+    if relaid:
+        lines += ["**Existing stores** (a hard-linked copy of the layout-1 demo store migrated to layout 2 as it is, "
+                  "or rewritten by `wxshock relayout`'s relayout_store in the new default layout, which migrates "
+                  "first; then one year appended as above):", "",
+                  "| store | rewrite | chunks / stored objects | rewrite wall / CPU s | append wall / CPU s "
+                  "| peak RSS MB | load |", "|---|---|---|---|---|---|---|"]  # fmt: skip
+        for key in relaid:
+            r = results[key]
+            lines.append(
+                f"| {key.split('/')[1]} | {r['rewrite']} | {' x '.join(map(str, r['chunks']))} / "
+                f"{' x '.join(map(str, r['storage']))} | {r['rewrite_wall_s']:.0f} / {r['rewrite_cpu_s']:.0f} "
+                f"| {r['append_wall_s']:.0f} / {r['append_cpu_s']:.0f} | {r['peak_mb']:.0f} | {r['load']:.1f} |"
+            )
+        lines.append("")
     rss = [k for k in results if k.startswith("rss/")]
     if rss:
         lines += ["**Peak RSS in store size and years** (one 1,000-village batch, default indicators, years and "
@@ -823,6 +876,9 @@ def main() -> None:
         if "append" in only:
             for layout in LAYOUTS:
                 results[f"append/{size}/{layout}"] = run_phase("append", size=size, layout=layout)
+        if "relayout" in only:
+            for layout in ("chunks", "shard16"):
+                results[f"relayout/{size}/{layout}"] = run_phase("relayout", size=size, layout=layout)
         if "rss" in only:
             for years in (12, 24, 48):
                 results[f"rss/{size}/{years}"] = run_phase("rss", size=size, years=years)
