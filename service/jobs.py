@@ -496,7 +496,7 @@ def job_batches(settings: Settings) -> dict[str, int]:
     once; nothing on a cluster, where the batches' means stay on the workers and only tables come back.
 
     A 1,000-feature batch of 48 years holds 420 MB of means and about as much again in partial sums and the
-    table's season cubes; two of them in flight held a server at 2.3 GB. One batch of 64 MB of means (152
+    table's season cubes; two of them in flight held a server at 2.3 GB. One batch of 64 MB of means (159
     features of 48 years) at a time: 672 MB in process, for 19 % more CPU (bench/RESULTS.md, "A job's memory").
     """
     if (settings.scheduler or "").strip():
