@@ -1,4 +1,5 @@
-"""Compiled day loops of the single-sine degree days: one pass instead of some thirty numpy steps.
+"""Compiled day loops: the single-sine degree days (one pass instead of some thirty numpy steps) and the
+days with values of a season cut (one pass over its variables instead of a mask per variable and set).
 
 The single-sine degree days of a day (service.indicators.degree_days.single_sine) take two arcsines, two
 square roots and a dozen arithmetic steps. numpy does each step as a pass over the whole block; the loops here
@@ -102,6 +103,35 @@ def _values_source(
         if value != value:  # a missing day adds nothing
             value = 0.0
         out[i] = value
+
+
+def _presence_source(
+    first: np.ndarray, second: np.ndarray, third: np.ndarray, held: np.ndarray, out: np.ndarray
+) -> None:
+    """Per row of (row, day) arrays: how many days have each combination of values present, ``out[row, code]``
+    with bit k of code set when array k (held[k]) is not NaN that day."""
+    for r in range(out.shape[0]):
+        for d in range(first.shape[1]):
+            code = 0
+            if held[0] and first[r, d] == first[r, d]:
+                code |= 1
+            if held[1] and second[r, d] == second[r, d]:
+                code |= 2
+            if held[2] and third[r, d] == third[r, d]:
+                code |= 4
+            out[r, code] += 1
+
+
+def presence_counts(arrays: list[np.ndarray | None]) -> np.ndarray:
+    """Days per (row, combination) of up to three C-contiguous float64 (..., day) arrays of one shape (None:
+    not held): int64 (..., 8), index ``code`` with bit k set where arrays[k] has a value (not NaN)."""
+    present = [a for a in arrays if a is not None]
+    lead, n_day = present[0].shape[:-1], present[0].shape[-1]
+    flat = [(a if a is not None else present[0]).reshape(-1, n_day) for a in (*arrays, None, None)[:3]]
+    held = np.array([a is not None for a in (*arrays, None, None)[:3]], dtype=np.bool_)
+    out = np.zeros((flat[0].shape[0], 8), dtype=np.int64)
+    _compile("presence", _presence_source)(flat[0], flat[1], flat[2], held, out)
+    return out.reshape(*lead, 8)
 
 
 def _compile(name: str, source: Callable[..., None]) -> Callable[..., None]:

@@ -84,78 +84,16 @@ def simple_average(
     return (high + low) * 0.5 - lower
 
 
-def _cosine(sines: np.ndarray, out: np.ndarray) -> np.ndarray:
-    """sqrt(1 - s * s) into ``out``."""
-    np.multiply(sines, sines, out=out)
-    np.subtract(1.0, out, out=out)
-    return np.sqrt(out, out=out)
-
-
-def _single_sine_block(
-    scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray, lower: float, upper: float | None
-) -> np.ndarray:
-    """:func:`single_sine` of a (rows, day) block in scratch "values": the same operations on every day
-    (so the same bits) in scratch arrays, flat days (amplitude 0) replaced afterwards."""
-    shape = tmax.shape
-    mean = np.add(tmax, tmin, out=scratch.get("mean", shape))
-    mean *= 0.5
-    amplitude = np.subtract(tmax, tmin, out=scratch.get("amplitude", shape))
-    np.abs(amplitude, out=amplitude)
-    amplitude *= 0.5
-    flat = np.equal(amplitude, 0.0, out=scratch.get("flat", shape, bool))
-    value = scratch.get("values", shape)
-    term = scratch.get("term", shape)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        # a flat day (amplitude 0) gets inf or NaN here; its value is replaced below, as single_sine does
-        sin1 = np.subtract(lower, mean, out=scratch.get("sin1", shape))
-        np.divide(sin1, amplitude, out=sin1)
-        np.clip(sin1, -1.0, 1.0, out=sin1)
-        theta1 = np.arcsin(sin1, out=scratch.get("theta1", shape))
-        cos1 = _cosine(sin1, scratch.get("cos1", shape))
-        if upper is None:
-            np.subtract(_HALF_PI, theta1, out=term)
-            np.subtract(mean, lower, out=value)
-            np.multiply(value, term, out=value)  # (mean - lower) * (pi/2 - theta1)
-            np.multiply(amplitude, cos1, out=term)
-            np.add(value, term, out=value)
-        else:
-            sin2 = np.subtract(upper, mean, out=scratch.get("sin2", shape))
-            np.divide(sin2, amplitude, out=sin2)
-            np.clip(sin2, -1.0, 1.0, out=sin2)
-            theta2 = np.arcsin(sin2, out=scratch.get("theta2", shape))
-            cos2 = _cosine(sin2, scratch.get("cos2", shape))
-            np.subtract(theta2, theta1, out=term)
-            np.subtract(mean, lower, out=value)
-            np.multiply(value, term, out=value)  # (mean - lower) * (theta2 - theta1)
-            np.subtract(cos1, cos2, out=term)
-            np.multiply(amplitude, term, out=term)
-            np.add(value, term, out=value)  # + amplitude * (cos1 - cos2)
-            np.subtract(_HALF_PI, theta2, out=term)
-            np.multiply(upper - lower, term, out=term)
-            np.add(value, term, out=value)  # + (upper - lower) * (pi/2 - theta2)
-        value /= np.pi
-    if flat.any():
-        flat_mean = mean[flat]
-        if upper is None:
-            value[flat] = np.maximum(flat_mean - lower, 0.0)
-        else:
-            value[flat] = np.clip(flat_mean, lower, upper) - lower
-    # rounding can leave -1e-16 on days entirely below the threshold: as np.maximum(value, 0.0) (NaN stays
-    # NaN; no value is -0.0 here, the one case where the two could differ)
-    below = np.less(value, 0.0, out=flat)
-    np.copyto(value, 0.0, where=below)
-    return value
-
-
 def season_degree_days(cube: SeasonCube, lower: float, upper: float | None) -> np.ndarray:
     """The season's sum of single-sine degree days (degC day) over the days with tmax and tmin; NaN when none.
 
-    Equal to summing :func:`single_sine` over each season-year's valid days, in blocks of scratch memory.
+    Equal to summing :func:`single_sine` over each season-year's valid days (np.nansum), computed by the
+    compiled day loops of service/indicators/compiled.py in blocks of scratch memory.
     """
 
     def block(scratch: Scratch, tmax: np.ndarray, tmin: np.ndarray) -> np.ndarray:
         if tmax.dtype != np.float64 or tmin.dtype != np.float64:  # the compiled loops take float64
-            return valid_sums(scratch, _single_sine_block(scratch, tmax, tmin, lower, upper))
+            return valid_sums(scratch, single_sine(tmax, tmin, lower, upper))
         terms = scratch.get("values", tmax.shape)
         degree_day_terms(tmax, tmin, lower, upper, lambda name: scratch.get(name, (tmax.size,)), terms)
         return np.add.reduce(terms, axis=-1, dtype=np.float64)  # as valid_sums (np.nansum) adds them

@@ -39,6 +39,7 @@ from pydantic import ValidationError
 
 from service.errors import FeatureError, RequestError, StoreFormatError
 from service.indicators.base import VARIABLES, DailySeries, SeasonCube
+from service.indicators.compiled import presence_counts
 from service.schemas import MonthsSeason, PropertySeason, Season, WindowSeason
 
 DEFAULT_MAX_MISSING_SHARE = (
@@ -111,11 +112,28 @@ class SeasonCut:
         if key not in self._cache:
             if not key[1]:
                 raise RuntimeError("present_days needs at least one variable")
+            counts = self._presence()
+            if counts is not None:
+                bits = sum(1 << VARIABLES.index(name) for name in key[1])
+                if any(getattr(self.cube, name) is None for name in key[1]):
+                    self._missing(next(n for n in key[1] if getattr(self.cube, n) is None))  # its error
+                self._cache[key] = counts[..., [c for c in range(8) if c & bits == bits]].sum(axis=-1)
+                return self._cache[key]
             masks = [self._missing(name) for name in key[1]]
             missing = masks[0] if len(masks) == 1 else np.logical_or.reduce(masks)
             width = missing.shape[-1]
             self._cache[key] = (width - np.count_nonzero(missing, axis=-1)).astype(np.int64)
         return self._cache[key]
+
+    def _presence(self) -> np.ndarray | None:
+        """Days per (feature, season-year) with each combination of the cut variables present (bit k: the
+        k-th of VARIABLES), counted in one compiled pass; None unless every cut variable is float64."""
+        if "presence" not in self._cache:
+            arrays = [getattr(self.cube, name) for name in VARIABLES]
+            cut = [a for a in arrays if a is not None]
+            usable = bool(cut) and all(a.dtype == np.float64 and a.flags.c_contiguous for a in cut)
+            self._cache["presence"] = presence_counts(arrays) if usable else None
+        return self._cache["presence"]
 
     def _missing(self, name: str) -> np.ndarray:
         """(feature, season-year, day) bool: the day lacks variable ``name`` (or is padding); kept per cut."""

@@ -144,6 +144,28 @@ def test_gap_in_the_record_counts_as_missing_days():
     assert cut.complete(["prcp"]).tolist() == [[False, True]]
 
 
+@pytest.mark.parametrize("variables", [("tmax", "tmin", "prcp"), ("tmin", "prcp"), ("prcp",)])
+def test_days_present_of_every_variable_set_count_the_cube(variables):
+    # the compiled count of the days with each combination of values (service/indicators/compiled.py) gives
+    # what counting the cube's non-NaN days gives, for every set of the cut variables; float32 counts alike
+    rng = np.random.default_rng(7)
+    daily = make_daily("1999-01-01", "2002-12-31", n_features=5)
+    values = {name: getattr(daily, name).copy() for name in ("tmax", "tmin", "prcp")}
+    for array in values.values():
+        array[rng.random(array.shape) < 0.3] = np.nan
+    values["prcp"][1] = np.nan
+    for dtype in (np.float64, np.float32):
+        typed = with_values(daily, **{name: a.astype(dtype) for name, a in values.items()})
+        cut = _cut(typed, MonthsSeason(months=[11, 12, 1, 2]), variables=variables)
+        for k in range(1, 1 << len(variables)):
+            subset = tuple(v for i, v in enumerate(variables) if k >> i & 1)
+            present = np.logical_and.reduce([~np.isnan(getattr(cut.cube, v)) for v in subset])
+            assert np.array_equal(cut.present_days(subset), present.sum(axis=-1)), (dtype, subset)
+        if len(variables) < 3:
+            with pytest.raises(RuntimeError, match="was not cut"):
+                cut.present_days(("tmax", "tmin", "prcp"))
+
+
 def test_feature_subset_and_float32_input():
     daily = make_daily("2000-01-01", "2001-12-31", n_features=3)
     prcp = (daily.prcp * np.arange(1, 4)[:, None]).astype(np.float32)
