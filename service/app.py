@@ -10,6 +10,7 @@ import json
 import logging
 import math
 import re
+import threading
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
@@ -405,6 +406,19 @@ def routers() -> list[Any]:
     return found
 
 
+def _warm_up_kernels() -> None:
+    """Load the aggregation's and the indicator table's compiled kernels (logged, never raised: a request
+    compiles what is missing itself)."""
+    from service import weighted_sums
+    from service.indicators import compiled
+
+    try:
+        weighted_sums.warm_up()
+        compiled.warm_up()
+    except Exception:  # noqa: BLE001 - a warm-up must never take the server down
+        log.exception("loading the compiled kernels ahead of the first request failed")
+
+
 def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
     """The wxshock app; with ``open_stores`` its lifespan opens the datasets and starts the job worker."""
     state = ServiceState(settings=settings, tokens=load_tokens(settings) if open_stores else {})
@@ -418,6 +432,8 @@ def create_app(settings: Settings, *, open_stores: bool = True) -> FastAPI:
             state.jobs = JobRunner(settings, state.registry)
             await run_in_threadpool(state.jobs.start)
             log.info("wxshock %s ready: datasets %s", __version__, ", ".join(state.registry))
+            # The compiled kernels load on a side thread now, not inside the first request (about 1 s of CPU).
+            threading.Thread(target=_warm_up_kernels, name="wxshock-warm-up", daemon=True).start()
         try:
             yield
         finally:

@@ -667,3 +667,18 @@ def test_health_answers_within_a_second_during_the_largest_request_a_job_and_con
     assert statuses == [200] * 9 and state["state"] in ("queued", "running", "succeeded")
     assert max(latencies) < 1.0, sorted(latencies)[-5:]
     assert report["oom_kills"] in (0, None) and report["peak_rss_bytes"] < 3 << 30
+
+
+def test_started_server_loads_the_compiled_kernels_before_any_request(strict_server: Any) -> None:
+    """The lifespan loads the aggregation's and the table's kernels on a side thread (no request needed)."""
+    import threading
+    import time
+
+    from service import weighted_sums
+    from service.indicators import compiled
+
+    deadline = time.monotonic() + 60
+    while any(t.name == "wxshock-warm-up" for t in threading.enumerate()) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert weighted_sums._compiled is not None
+    assert {"presence", "sines", "values"} <= set(compiled._compiled)

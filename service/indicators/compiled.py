@@ -173,3 +173,17 @@ def degree_day_terms(
         flat_max, flat_min, float(lower), top, capped, sin1, theta1, sin2, theta2, flat_out
     )
     return out
+
+
+def warm_up() -> None:
+    """Compile (or load from numba's cache) the table's kernels on tiny arrays, so that a long-running process
+    pays the one-time cost before its first request rather than in it."""
+    values = np.array([[1.0, np.nan]])
+    presence_counts([values, values, None])
+    scratch: dict[str, np.ndarray] = {}
+
+    def take(name: str) -> np.ndarray:
+        return scratch.setdefault(name, np.empty(values.size))
+
+    degree_day_terms(values + 20.0, values, 10.0, 30.0, take, np.empty_like(values))
+    degree_day_terms(values + 20.0, values, 10.0, None, take, np.empty_like(values))
