@@ -170,15 +170,15 @@ def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
         return original(*a, **k)
 
     aggregate.chunk_sums = counted
-    # the weighted-sum kernel's one-time load (numba imported, machine code from its cache), as a running
+    # the compiled kernels' one-time load (weighted sums, table) (numba imported, machine code from its cache), as a running
     # server has done before its first request; timed apart (older code has no kernel: 0)
     kernel_cpu = time.process_time()
-    try:
-        from service.weighted_sums import warm_up
-    except ImportError:
-        pass
-    else:
-        warm_up()
+    for module in ("service.weighted_sums", "service.indicators.compiled"):
+        try:
+            warm = __import__(module, fromlist=["warm_up"]).warm_up
+        except (ImportError, AttributeError):
+            continue
+        warm()
     kernel_cpu = time.process_time() - kernel_cpu
     wall, cpu = time.perf_counter(), time.process_time()
     result = pipeline.run(request, store, settings, prepared=prepared)

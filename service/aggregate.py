@@ -23,7 +23,7 @@ from dask.highlevelgraph import HighLevelGraph
 from scipy import sparse
 
 from service.errors import RequestError
-from service.weighted_sums import chunk_weighted_sums
+from service.weighted_sums import add_rows, chunk_weighted_sums
 
 if TYPE_CHECKING:
     from service.geometry import Weights
@@ -183,7 +183,7 @@ def combine(partials: Sequence[Partial]) -> Partial:
     correction = None
     for p in partials:
         at = np.searchsorted(rows, p.rows)
-        weighted_sum[at] += p.weighted_sum
+        add_rows(weighted_sum, at, p.weighted_sum)
         total[at] += p.total
         if p.correction is not None:
             if correction is None:
@@ -193,22 +193,27 @@ def combine(partials: Sequence[Partial]) -> Partial:
 
 
 def finish(
-    partials: Sequence[Partial], n_features: int, days: int, add_offset: float, out: np.ndarray | None = None
+    partials: Sequence[Partial],
+    n_features: int,
+    days: int,
+    add_offset: float,
+    out: np.ndarray | None = None,
+    zeroed: bool = False,
 ) -> np.ndarray:
     """(feature, day) means in the variable's units from the last partial sums; NaN where no weight.
 
     The last reduction step and the division share one (feature, day) array: fresh memory is the costly
     part of this step (page faults), so it is allocated once. ``out``, when given, is that array (it may be a
-    view, e.g. one time block of a longer series) and is overwritten.
+    view, e.g. one time block of a longer series) and is overwritten (``zeroed``: it holds zeros already).
     """
     if out is None:
         out = np.zeros((n_features, days))
-    else:
+    elif not zeroed:
         out[...] = 0.0
     total = np.zeros(n_features)
     correction = None
     for p in partials:
-        out[p.rows] += p.weighted_sum
+        add_rows(out, p.rows, p.weighted_sum)
         total[p.rows] += p.total
         if p.correction is not None:
             if correction is None:
@@ -381,9 +386,10 @@ def finish_series(
     ``finish`` per block joined along time, without a fresh array per block and the copy that joins them.
     """
     start = blocks[0][0] if blocks else 0
-    out = np.empty((n_features, (blocks[-1][1] - start) if blocks else 0))
+    # np.zeros: the system hands over zeroed pages as they are first touched, so no pass of writing zeros
+    out = np.zeros((n_features, (blocks[-1][1] - start) if blocks else 0))
     for partials, (t0, t1) in zip(lasts, blocks, strict=True):
-        finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start])
+        finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start], zeroed=True)
     return out
 
 

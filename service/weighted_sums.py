@@ -27,6 +27,7 @@ TILE_DAYS = 4096
 
 _lock = threading.Lock()
 _compiled: Callable[..., tuple[np.ndarray, np.ndarray]] | None = None
+_compiled_add: Callable[..., None] | None = None
 
 
 def _kernel_source(
@@ -85,6 +86,38 @@ def _kernel_source(
                 if values[t] == fill:
                     correction[r, t] -= w
     return sums, correction
+
+
+def _add_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
+    """out[rows[r], :] += values[r, :] for each r in turn (rows may repeat: each adds in order)."""
+    for r in range(rows.size):
+        target = out[rows[r]]
+        source = values[r]
+        for t in range(target.size):
+            target[t] += source[t]
+
+
+def _compile_add() -> Callable[..., None]:
+    """The row-adding loop compiled lazily, as the kernel is."""
+    global _compiled_add
+    with _lock:
+        if _compiled_add is None:
+            import numba
+
+            options: dict[str, Any] = {"nogil": True, "error_model": "numpy"}
+            try:
+                _compiled_add = numba.njit(cache=True, **options)(_add_rows_source)
+            except RuntimeError:
+                _compiled_add = numba.njit(cache=False, **options)(_add_rows_source)
+        return _compiled_add
+
+
+def add_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
+    """Add each row of ``values`` (rows, days) float64 into ``out[rows]`` (a (features, days) float64 array or a
+    view of one): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the temporary sum,
+    each element getting the same single addition (so the same bits)."""
+    if values.size:
+        _compile_add()(out, np.asarray(rows, dtype=np.int64), np.ascontiguousarray(values, dtype=np.float64))
 
 
 def _compile() -> Callable[..., tuple[np.ndarray, np.ndarray]]:
@@ -171,3 +204,6 @@ def warm_up() -> None:
     chunk_weighted_sums(one, cell, rows, 0.1, tile, int(np.iinfo(np.int16).min))
     tile.flags.writeable = False
     chunk_weighted_sums(one, cell, rows, 0.1, tile, int(np.iinfo(np.int16).min))
+    out = np.zeros((2, 4))
+    add_rows(out, np.array([1]), np.ones((1, 4)))
+    add_rows(out[:, 1:3], np.array([1]), np.ones((1, 2)))

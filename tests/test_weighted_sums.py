@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 from scipy import sparse
 
+from service import weighted_sums
 from service.aggregate import Partial, aggregate, chunk_weights, finish
 from service.store import Layout
 from service.weighted_sums import chunk_weighted_sums
@@ -169,3 +170,21 @@ def test_warm_up_loads_the_kernel_for_writable_and_read_only_chunks() -> None:
     assert weighted_sums._compiled is not None
     readonly = [sig for sig in weighted_sums._compiled.signatures if not sig[4].mutable]
     assert readonly and len(weighted_sums._compiled.signatures) >= 2
+
+
+def test_add_rows_is_numpys_fancy_index_add_bit_for_bit_on_views() -> None:
+    """add_rows(out, rows, values) gives what ``out[rows] += values`` gives (the numpy reference), on a whole
+    array and on a strided window of days, with rows in any order and a row left untouched."""
+    rng = np.random.default_rng(7)
+    base = rng.normal(size=(6, 50)) * 1e3
+    values = rng.normal(size=(3, 50)) / 7.0
+    rows = np.array([4, 0, 2])
+    expected, got = base.copy(), base.copy()
+    expected[rows] += values
+    weighted_sums.add_rows(got, rows, values)
+    assert np.array_equal(got, expected)
+    expected, got = base.copy(), base.copy()
+    expected[:, 10:30][rows] += values[:, :20]
+    weighted_sums.add_rows(got[:, 10:30], rows, values[:, :20])
+    assert np.array_equal(got, expected)
+    assert np.array_equal(got[[1, 3, 5]], base[[1, 3, 5]])
