@@ -483,7 +483,9 @@ def phase_job(args: argparse.Namespace) -> dict[str, Any]:
                         raise SystemExit(f"job refused: {submitted.status_code} {submitted.text[:500]}")
                     server.sample()
                     after_submit = server.peak_rss
-                    # The run's own peak: the kernel's high-water mark reset to the RSS now (Linux >= 4.0)
+                    # The run's own peak: the kernel's high-water mark reset to the RSS now (Linux >= 4.0),
+                    # a second after the 202, so that the submission's malloc_trim (after its response) is done
+                    time.sleep(1.0)
                     with contextlib.suppress(OSError):
                         Path(f"/proc/{server.pid}/clear_refs").write_text("5")
                     run_peak = 0
@@ -672,8 +674,8 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
         "",
         f"Measured {results['started']} on {platform.machine()}, {os.cpu_count()} cores, Python "
         f"{platform.python_version()}, in one run (`python bench/bench_scale.py`); each phase in its own process. "
-        "The machine was shared with other engineers' work (load averages beside each figure, on 2 cores), so wall "
-        "times are upper bounds; CPU seconds are the steadier measure. Store: "
+        "The 1-minute load average is beside each figure (2 cores): where it is above 2, others' work shared the "
+        "machine and wall times are upper bounds; CPU seconds are the steadier measure. Store: "
         f"`{Path(args.store).relative_to(ROOT) if Path(args.store).is_relative_to(ROOT) else args.store}`.",
         "",
         "| what | wall s | CPU s | load | notes |",
