@@ -14,20 +14,18 @@ when that directory is writable, else in the user's cache directory (or ``NUMBA_
 
 from __future__ import annotations
 
-import threading
-from collections.abc import Callable
-from typing import Any
-
 import numpy as np
+
+from service import jit
 
 # Days added up at a time: a feature's running sums for these days (32 kB) stay in the first-level cache while
 # each of its cells is added in. Measured on a 32 x 32 x 3,653-day chunk with 1,764 weights: 1.1 ms at 4,096
 # days (the whole chunk), 1.8 ms at 256, 2.3 ms at 128 (the loop vectorises best on long rows).
 TILE_DAYS = 4096
 
-_lock = threading.Lock()
-_compiled: Callable[..., tuple[np.ndarray, np.ndarray]] | None = None
-_compiled_add: Callable[..., None] | None = None
+# names of the compiled loops (service.jit)
+KERNEL = "weighted_sums.chunk"
+ADD_ROWS = "weighted_sums.add_rows"
 
 
 def _kernel_source(
@@ -97,43 +95,14 @@ def _add_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> N
             target[t] += source[t]
 
 
-def _compile_add() -> Callable[..., None]:
-    """The row-adding loop compiled lazily, as the kernel is."""
-    global _compiled_add
-    with _lock:
-        if _compiled_add is None:
-            import numba
-
-            options: dict[str, Any] = {"nogil": True, "error_model": "numpy"}
-            try:
-                _compiled_add = numba.njit(cache=True, **options)(_add_rows_source)
-            except RuntimeError:
-                _compiled_add = numba.njit(cache=False, **options)(_add_rows_source)
-        return _compiled_add
-
-
 def add_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
     """Add each row of ``values`` (rows, days) float64 into ``out[rows]`` (a (features, days) float64 array or a
     view of one): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the temporary sum,
     each element getting the same single addition (so the same bits)."""
     if values.size:
-        _compile_add()(out, np.asarray(rows, dtype=np.int64), np.ascontiguousarray(values, dtype=np.float64))
-
-
-def _compile() -> Callable[..., tuple[np.ndarray, np.ndarray]]:
-    """The kernel compiled lazily (numba imported here, on first use), cached where a cache can be written."""
-    global _compiled
-    with _lock:
-        if _compiled is None:
-            import numba
-
-            options: dict[str, Any] = {"nogil": True, "error_model": "numpy"}
-            try:
-                _compiled = numba.njit(cache=True, **options)(_kernel_source)
-            except RuntimeError:
-                # no directory numba can write its cache into (read-only install, no writable home)
-                _compiled = numba.njit(cache=False, **options)(_kernel_source)
-        return _compiled
+        jit.compiled(ADD_ROWS, _add_rows_source)(
+            out, np.asarray(rows, dtype=np.int64), np.ascontiguousarray(values, dtype=np.float64)
+        )
 
 
 def chunk_weighted_sums(
@@ -153,7 +122,7 @@ def chunk_weighted_sums(
     no cell it uses has one.
     """
     chunk, window = _in_chunk(tile if tile.ndim == 3 else tile[:, None, :])
-    sums, correction = _compile()(
+    sums, correction = jit.compiled(KERNEL, _kernel_source)(
         np.asarray(data, dtype=np.float64),
         np.asarray(indices, dtype=np.int64),
         np.asarray(indptr, dtype=np.int64),

@@ -674,11 +674,10 @@ def test_started_server_loads_the_compiled_kernels_before_any_request(strict_ser
     import threading
     import time
 
-    from service import weighted_sums
-    from service.indicators import compiled
+    from service import jit, weighted_sums
 
     deadline = time.monotonic() + 60
     while any(t.name == "wxshock-warm-up" for t in threading.enumerate()) and time.monotonic() < deadline:
         time.sleep(0.05)
-    assert weighted_sums._compiled is not None
-    assert {"presence", "sines", "values"} <= set(compiled._compiled)
+    assert jit.loaded(weighted_sums.KERNEL) is not None
+    assert all(jit.loaded(f"table.{name}") is not None for name in ("presence", "sines", "values"))

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import sparse
 
-from service import weighted_sums
+from service import jit, weighted_sums
 from service.aggregate import Partial, aggregate, chunk_weights, finish
 from service.store import Layout
 from service.weighted_sums import chunk_weighted_sums
@@ -141,7 +141,7 @@ def test_importing_the_service_does_not_compile_or_import_numba() -> None:
     code = (
         "import sys, service.aggregate, service.pipeline, service.cli; "
         "assert 'numba' not in sys.modules, 'numba imported'; "
-        "from service import weighted_sums; assert weighted_sums._compiled is None"
+        "from service import jit, weighted_sums; assert jit.loaded(weighted_sums.KERNEL) is None"
     )
     subprocess.run([sys.executable, "-c", code], check=True, cwd=ROOT)
 
@@ -156,8 +156,9 @@ def test_compiles_without_a_writable_cache() -> None:
         "s, corr = chunk_weighted_sums(np.array([0.5, 0.5]), np.array([0, 1]), np.array([0, 2]), 0.1,\n"
         "                              np.array([[10, 20], [30, -32768]], dtype=np.int16), -32768)\n"
         "assert np.array_equal(s, [[2.0, 1.0]]) and np.array_equal(corr, [[0.0, -0.5]]), (s, corr)\n"
-        "from service import weighted_sums\n"
-        "assert type(weighted_sums._compiled._cache).__name__ == 'NullCache', weighted_sums._compiled._cache\n"
+        "from service import jit, weighted_sums\n"
+        "kernel = jit.loaded(weighted_sums.KERNEL)\n"
+        "assert type(kernel._cache).__name__ == 'NullCache', kernel._cache\n"
     )
     env = {**os.environ, "NUMBA_CACHE_LOCATOR_CLASSES": "ZipCacheLocator"}
     subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env, check=True)
@@ -167,9 +168,10 @@ def test_warm_up_loads_the_kernel_for_writable_and_read_only_chunks() -> None:
     from service import weighted_sums
 
     weighted_sums.warm_up()
-    assert weighted_sums._compiled is not None
-    readonly = [sig for sig in weighted_sums._compiled.signatures if not sig[4].mutable]
-    assert readonly and len(weighted_sums._compiled.signatures) >= 2
+    kernel = jit.loaded(weighted_sums.KERNEL)
+    assert kernel is not None and jit.loaded(weighted_sums.ADD_ROWS) is not None
+    readonly = [sig for sig in kernel.signatures if not sig[4].mutable]
+    assert readonly and len(kernel.signatures) >= 2
 
 
 def test_add_rows_is_numpys_fancy_index_add_bit_for_bit_on_views() -> None:

@@ -8,21 +8,19 @@ reordered or fused), so the values are the same bits. The arcsines stay numpy's 
 two loops), because a compiled arcsine may differ from numpy's in the last bit.
 
 numba compiles the loops the first time degree days are computed, not when the module is imported, and keeps
-the machine code in its cache where it can write one (as service/weighted_sums.py does).
+the machine code in its cache where it can write one (service/jit.py).
 """
 
 from __future__ import annotations
 
 import math
-import threading
 from collections.abc import Callable
-from typing import Any
 
 import numpy as np
 
+from service import jit
+
 _HALF_PI = np.pi / 2.0
-_lock = threading.Lock()
-_compiled: dict[str, Callable[..., None]] = {}
 
 
 def _sines_source(
@@ -135,17 +133,8 @@ def presence_counts(arrays: list[np.ndarray | None]) -> np.ndarray:
 
 
 def _compile(name: str, source: Callable[..., None]) -> Callable[..., None]:
-    """``source`` compiled lazily (numba imported here, on first use), cached where a cache can be written."""
-    with _lock:
-        if name not in _compiled:
-            import numba
-
-            options: dict[str, Any] = {"nogil": True, "error_model": "numpy"}
-            try:
-                _compiled[name] = numba.njit(cache=True, **options)(source)
-            except RuntimeError:  # no directory numba can write its cache into
-                _compiled[name] = numba.njit(cache=False, **options)(source)
-        return _compiled[name]
+    """``source`` compiled lazily under the table's ``name`` (service.jit)."""
+    return jit.compiled(f"table.{name}", source)
 
 
 def degree_day_terms(
