@@ -62,10 +62,7 @@ def main() -> None:
     from bench_hardening import points
 
     from service import pipeline, request_text
-    from service.encode import stable_frame
-    from service.encode.bundle import write_bundle
-    from service.encode.stata import stata_pieces
-    from service.encode.stream import stream
+    from service.jobs import write_pieces
     from service.schemas import IndicatorRequest
     from service.settings import Settings
     from service.store import open_store
@@ -89,26 +86,10 @@ def main() -> None:
     assert table is not None
     spilled = sum(f.stat().st_size for f in (spill / "rows").iterdir()) / MB
     t0 = sampler.step(f"batches computed and spilled ({spilled:.0f} MB)", t0)
-    frames = table.frames
-
-    def stable():  # noqa: ANN202
-        return (stable_frame(f) for f in frames)
-
     for fmt in formats:
         out = root / f"out.{fmt}"
         with open(out, "wb") as handle:
-            if fmt == "bundle":
-                write_bundle(
-                    handle, stable, table.columns, table.provenance, table.warnings, spill / "entries"
-                )
-            else:
-                parts = (
-                    stata_pieces(stable, table.columns, table.provenance)
-                    if fmt == "dta"
-                    else stream(frames, table.columns, table.provenance, table.warnings, fmt)
-                )
-                for data in parts:
-                    handle.write(data)
+            write_pieces(handle, fmt, table, spill / "entries")
         t0 = sampler.step(f"{fmt} written ({out.stat().st_size / MB:.0f} MB)", t0)
         out.unlink()
     table = frames = None  # noqa: F841 - dropped before the trim

@@ -27,7 +27,7 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, BinaryIO
 
 from service.encode.formats import SUFFIXES
 from service.errors import (
@@ -411,6 +411,32 @@ def run_with_pipeline(
     return encode.encode(result, fmt)
 
 
+def write_pieces(handle: BinaryIO, fmt: str, table: Any, staging: Path) -> None:
+    """Write a table computed in pieces (pipeline.run_in_pieces) to ``handle`` in ``fmt``, piece by piece: the
+    streamed formats through service.encode.stream, Stata through stata_pieces, the bundle entry by entry
+    (each entry staged under ``staging``); the bytes of the whole-table encoders."""
+    from service.encode import stable_frame
+    from service.encode.bundle import write_bundle
+    from service.encode.stata import stata_pieces
+    from service.encode.stream import stream
+
+    frames = table.frames
+
+    def stable() -> Iterator[Any]:
+        return (stable_frame(frame) for frame in frames)
+
+    if fmt == "bundle":
+        write_bundle(handle, stable, table.columns, table.provenance, table.warnings, staging)
+        return
+    parts = (
+        stata_pieces(stable, table.columns, table.provenance)
+        if fmt == "dta"
+        else stream(frames, table.columns, table.provenance, table.warnings, fmt)
+    )
+    for data in parts:
+        handle.write(data)
+
+
 def run_to_file(
     request: IndicatorRequest,
     registry: StoreRegistry,
@@ -432,10 +458,8 @@ def run_to_file(
     import shutil
 
     from service import pipeline
-    from service.encode import FORMATS, provenance_headers, stable_frame
-    from service.encode.bundle import write_bundle
-    from service.encode.stata import stata_pieces
-    from service.encode.stream import STREAMED_FORMATS, stream
+    from service.encode import FORMATS, provenance_headers
+    from service.encode.stream import STREAMED_FORMATS
 
     if fmt not in (*STREAMED_FORMATS, "dta", "bundle") or request.variants or request.events is not None:
         return None
@@ -456,24 +480,8 @@ def run_to_file(
         )
         if table is None:
             return None
-        frames = table.frames
-
-        def stable() -> Iterator[Any]:
-            return (stable_frame(frame) for frame in frames)
-
         with open(partial, "wb") as handle:
-            if fmt == "bundle":
-                write_bundle(
-                    handle, stable, table.columns, table.provenance, table.warnings, spill / "entries"
-                )
-            else:
-                parts = (
-                    stata_pieces(stable, table.columns, table.provenance)
-                    if fmt == "dta"
-                    else stream(frames, table.columns, table.provenance, table.warnings, fmt)
-                )
-                for data in parts:
-                    handle.write(data)
+            write_pieces(handle, fmt, table, spill / "entries")
             handle.flush()
             os.fsync(handle.fileno())
         size = partial.stat().st_size
