@@ -39,8 +39,12 @@ if TYPE_CHECKING:
 
 WEIGHTINGS = ("area", "centers")
 
-# Candidate cells handled in one vectorised pass (bounds memory: about 100 bytes per candidate).
-CANDIDATES_PER_PASS = 2_000_000
+# Candidate cells handled in one vectorised pass. It bounds memory: a candidate on a feature's edge holds its
+# clipped piece (a GEOS polygon) until the pass ends, about 2-3 kB each. 50,000 buffered points in one pass of
+# 2,000,000 took the weights' peak from 690 MB to 2,200 MB; in passes of 50,000 candidates to 930 MB, in the
+# same time (bench/RESULTS.md, "Scale"). Passes do not change the weights (each candidate is computed alone,
+# and passes follow the features' order).
+CANDIDATES_PER_PASS = 50_000
 # A feature's bounding box may hold this many times max_cells candidate cells before it is refused
 # outright (a ring-shaped or diagonal community touches far fewer cells than its bounding box holds).
 BBOX_CELLS_FACTOR = 16
