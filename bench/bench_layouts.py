@@ -356,12 +356,8 @@ def phase_http(args: argparse.Namespace) -> dict[str, Any]:
 def phase_pass(args: argparse.Namespace) -> dict[str, Any]:
     """Raw read + decode of every inner chunk (3 variables, all days; best of two), then the village batch."""
     use_read_unit(args.read_unit)
-    import numpy as np
-    from bench_scale import batch_request, polygons
-    from numcodecs import Blosc
+    from bench_scale import decode_chunks, timed_batch
 
-    from service import aggregate, pipeline
-    from service.settings import Settings
     from service.store import open_store
 
     store = open_store(store_path(args.size, args.layout))
@@ -376,46 +372,10 @@ def phase_pass(args: argparse.Namespace) -> dict[str, Any]:
         for tb in range(-(-store.n_times // ct))
     ]
 
-    def one(item: tuple[str, tuple[int, ...]]) -> tuple[int, int]:
-        var, coords = item
-        reader = readers[var]
-        if reader.shard_shape is None:
-            data = reader._get(reader._metadata.encode_chunk_key(coords))
-        else:
-            shard = tuple(c // p for c, p in zip(coords, reader._per_shard, strict=True))
-            index = reader._shard_index(shard)
-            local = tuple(c % p for c, p in zip(coords, reader._per_shard, strict=True))
-            offset, length = (int(v) for v in index[np.ravel_multi_index(local, reader._per_shard)])
-            data = reader._get(reader._metadata.encode_chunk_key(shard), start=offset, length=length)
-        out = np.empty(reader.inner_shape, dtype=reader.dtype)
-        Blosc().decode(data, out=out)
-        return out.nbytes, len(data)
-
-    passes = []
-    for _ in range(2):
-        for reader in readers.values():
-            if reader.shard_shape is not None:
-                reader._indexes.clear()
-        wall, cpu = time.perf_counter(), time.process_time()
-        with ThreadPoolExecutor(os.cpu_count() or 1) as pool:
-            sizes = list(pool.map(one, items))
-        passes.append((time.perf_counter() - wall, time.process_time() - cpu))
+    passes, sizes = decode_chunks(readers, items)
     decode_wall, decode_cpu = min(passes)
     decode_load = load()
-    request = batch_request(polygons(store, BATCH[args.size]))
-    settings = Settings(threads=os.cpu_count())
-    prepared = pipeline.prepare(request, store, settings)
-    reads = [0]
-    original = aggregate.chunk_sums
-
-    def counted(*a: Any, **k: Any) -> Any:
-        reads[0] += 1
-        return original(*a, **k)
-
-    aggregate.chunk_sums = counted
-    wall, cpu = time.perf_counter(), time.process_time()
-    result = pipeline.run(request, store, settings, prepared=prepared)
-    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    batch = timed_batch(store, BATCH[args.size])
     return {
         "chunks": len(items),
         "decoded_gib": sum(s[0] for s in sizes) / 2**30,
@@ -424,10 +384,11 @@ def phase_pass(args: argparse.Namespace) -> dict[str, Any]:
         "decode_cpu_s": decode_cpu,
         "decode_load": decode_load,
         "features": BATCH[args.size],
-        "batch_wall_s": wall,
-        "batch_cpu_s": cpu,
-        "batch_rows": len(result.frame),
-        "read_tasks": reads[0],
+        "batch_wall_s": batch["wall_s"],
+        "batch_cpu_s": batch["cpu_s"],
+        "kernel_load_cpu_s": batch["kernel_load_cpu_s"],
+        "batch_rows": batch["rows"],
+        "read_tasks": batch["chunk_reads"],
         "peak_mb": peak_mb(),
         "load": load(),
     }

@@ -98,9 +98,6 @@ def touched_chunks(
 
 def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
     """Read every touched chunk's bytes and blosc-decode them with numcodecs on all cores; best of two passes."""
-    import numpy as np
-    from numcodecs import Blosc
-
     from service import pipeline
     from service.indicators import table
     from service.settings import Settings
@@ -116,8 +113,27 @@ def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
     readers = {v: store._chunk_readers[v] for v in variables}
     if any(r is None for r in readers.values()):
         raise SystemExit("the store's codecs are not bytes + blosc: no direct decode to compare with")
+    passes, sizes = decode_chunks(readers, chunks)
+    best = min(passes)
+    return {
+        "chunks": len(chunks),
+        "decoded_gib": sum(s[0] for s in sizes) / 2**30,
+        "wall_s": best[0],
+        "cpu_s": best[1],
+        "passes": passes,
+        "load": load(),
+    }
 
-    def one(item: tuple[str, tuple]) -> int:
+
+def decode_chunks(
+    readers: dict[str, Any], items: list[tuple[str, tuple]]
+) -> tuple[list[tuple[float, float]], list[tuple[int, int]]]:
+    """Read each (variable, inner chunk coordinates) item's bytes and blosc-decode them with numcodecs on all
+    cores, twice: ([(wall s, CPU s)] of each pass, [(decoded bytes, compressed bytes)] of each item)."""
+    import numpy as np
+    from numcodecs import Blosc
+
+    def one(item: tuple[str, tuple]) -> tuple[int, int]:
         var, coords = item
         reader = readers[var]
         if reader.shard_shape is None:
@@ -130,36 +146,38 @@ def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
             data = reader._get(reader._metadata.encode_chunk_key(shard), start=offset, length=length)
         out = np.empty(reader.inner_shape, dtype=reader.dtype)
         Blosc().decode(data, out=out)
-        return out.nbytes
+        return out.nbytes, len(data)
 
-    passes = []
+    passes, sizes = [], []
     for _ in range(2):
         for reader in readers.values():
             if reader.shard_shape is not None:
                 reader._indexes.clear()
         wall, cpu = time.perf_counter(), time.process_time()
         with ThreadPoolExecutor(os.cpu_count() or 1) as pool:
-            decoded = sum(pool.map(one, chunks))
+            sizes = list(pool.map(one, items))
         passes.append((time.perf_counter() - wall, time.process_time() - cpu))
-    best = min(passes)
-    return {
-        "chunks": len(chunks),
-        "decoded_gib": decoded / 2**30,
-        "wall_s": best[0],
-        "cpu_s": best[1],
-        "passes": passes,
-        "load": load(),
-    }
+    return passes, sizes
 
 
 def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
     """pipeline.run over every village, indicators included, on local threads."""
-    from service import aggregate, pipeline
-    from service.settings import Settings
     from service.store import open_store
 
     store = open_store(args.store)
-    request = batch_request(polygons(store, args.features))
+    return {**timed_batch(store, args.features), "peak_mb": peak_mb(), "load": load()}
+
+
+def timed_batch(store: Any, features: int) -> dict[str, Any]:
+    """``features`` invented villages through pipeline.run (default indicators, every season-year) on local
+    threads, the weights prepared and the compiled kernels loaded before the clock: wall and CPU seconds, rows,
+    columns, chunk reads."""
+    import importlib
+
+    from service import aggregate, pipeline
+    from service.settings import Settings
+
+    request = batch_request(polygons(store, features))
     settings = Settings(threads=os.cpu_count())
     prepared = pipeline.prepare(request, store, settings)
     reads = [0]
@@ -170,19 +188,22 @@ def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
         return original(*a, **k)
 
     aggregate.chunk_sums = counted
-    # the compiled kernels' one-time load (weighted sums, table) (numba imported, machine code from its cache), as a running
-    # server has done before its first request; timed apart (older code has no kernel: 0)
+    # the compiled kernels' one-time load (numba imported, machine code from its cache), as a running server has
+    # done before its first request; timed apart (older code has no kernels: about 0)
     kernel_cpu = time.process_time()
     for module in ("service.weighted_sums", "service.indicators.compiled"):
         try:
-            warm = __import__(module, fromlist=["warm_up"]).warm_up
+            warm_up = importlib.import_module(module).warm_up
         except (ImportError, AttributeError):
             continue
-        warm()
+        warm_up()
     kernel_cpu = time.process_time() - kernel_cpu
-    wall, cpu = time.perf_counter(), time.process_time()
-    result = pipeline.run(request, store, settings, prepared=prepared)
-    wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    try:
+        wall, cpu = time.perf_counter(), time.process_time()
+        result = pipeline.run(request, store, settings, prepared=prepared)
+        wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+    finally:
+        aggregate.chunk_sums = original
     return {
         "wall_s": wall,
         "cpu_s": cpu,
@@ -190,8 +211,6 @@ def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
         "rows": len(result.frame),
         "columns": len(result.frame.columns),
         "chunk_reads": reads[0],
-        "peak_mb": peak_mb(),
-        "load": load(),
     }
 
 
@@ -615,7 +634,9 @@ def main() -> int:
     parser.add_argument("--job-no-trim", action="store_true", help="also a server without malloc_trim")
     parser.add_argument("--job-formats", default="csv,parquet", help="formats of the job phase, in order")
     parser.add_argument(
-        "--job-env", action="append", help="a server setting for the job phase, e.g. WXSHOCK_JOB_BATCH_SERIES_MB=64"
+        "--job-env",
+        action="append",
+        help="a server setting for the job phase, e.g. WXSHOCK_JOB_BATCH_SERIES_MB=64",
     )
     parser.add_argument("--job-cluster", action="store_true", help="the job phase on a local dask cluster")
     parser.add_argument("--trim-features", type=int, default=2000)
