@@ -193,23 +193,16 @@ def combine(partials: Sequence[Partial]) -> Partial:
 
 
 def finish(
-    partials: Sequence[Partial],
-    n_features: int,
-    days: int,
-    add_offset: float,
-    out: np.ndarray | None = None,
-    zeroed: bool = False,
+    partials: Sequence[Partial], n_features: int, days: int, add_offset: float, out: np.ndarray | None = None
 ) -> np.ndarray:
     """(feature, day) means in the variable's units from the last partial sums; NaN where no weight.
 
     The last reduction step and the division share one (feature, day) array: fresh memory is the costly
     part of this step (page faults), so it is allocated once. ``out``, when given, is that array (it may be a
-    view, e.g. one time block of a longer series) and is overwritten (``zeroed``: it holds zeros already).
+    view, e.g. one time block of a longer series) holding zeros, and the sums are added into it.
     """
     if out is None:
         out = np.zeros((n_features, days))
-    elif not zeroed:
-        out[...] = 0.0
     total = np.zeros(n_features)
     correction = None
     for p in partials:
@@ -389,7 +382,7 @@ def finish_series(
     # np.zeros: the system hands over zeroed pages as they are first touched, so no pass of writing zeros
     out = np.zeros((n_features, (blocks[-1][1] - start) if blocks else 0))
     for partials, (t0, t1) in zip(lasts, blocks, strict=True):
-        finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start], zeroed=True)
+        finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start])
     return out
 
 
