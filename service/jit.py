@@ -14,6 +14,9 @@ _compiled: dict[str, Any] = {}
 
 def compiled(name: str, source: Callable[..., Any]) -> Any:
     """``source`` compiled (nopython, without the GIL, numpy's error model) under ``name``, once per process."""
+    found = _compiled.get(name)  # every chunk task asks: no lock once compiled
+    if found is not None:
+        return found
     with _lock:
         if name not in _compiled:
             import numba

@@ -87,7 +87,7 @@ def _kernel_source(
 
 
 def _add_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
-    """out[rows[r], :] += values[r, :] for each r in turn (rows may repeat: each adds in order)."""
+    """out[rows[r], :] += values[r, :] for each r (the rows distinct, as numpy's ``out[rows] += values`` needs)."""
     for r in range(rows.size):
         target = out[rows[r]]
         source = values[r]
@@ -97,7 +97,7 @@ def _add_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> N
 
 def add_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
     """Add each row of ``values`` (rows, days) float64 into ``out[rows]`` (a (features, days) float64 array or a
-    view of one): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the temporary sum,
+    view of one; ``rows`` distinct): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the temporary sum,
     each element getting the same single addition (so the same bits)."""
     if values.size:
         jit.compiled(ADD_ROWS, _add_rows_source)(
