@@ -22,8 +22,9 @@ import xarray as xr
 from dask.highlevelgraph import HighLevelGraph
 from scipy import sparse
 
+from service.buffers import series_pool
 from service.errors import RequestError
-from service.weighted_sums import add_rows, chunk_weighted_sums
+from service.weighted_sums import add_rows, chunk_weighted_sums, put_rows, scale_rows
 
 if TYPE_CHECKING:
     from service.geometry import Weights
@@ -150,10 +151,18 @@ def chunk_weights(weights: Weights, shape: tuple[int, int], chunk: tuple[int, in
 
 
 def chunk_sums(
-    store: Store, var: str, chunk: ChunkWeights, t: slice, scale_factor: float, fill_value: int
+    store: Store,
+    var: str,
+    chunk: ChunkWeights,
+    t: slice,
+    scale_factor: float,
+    fill_value: int,
+    cached: bool = True,
 ) -> Partial:
-    """One task: read one chunk's stored integers and return its features' partial sums (scaled units)."""
-    return block_sums(store.read_raw(var, chunk.y, chunk.x, t), chunk, scale_factor, fill_value)
+    """One task: read one chunk's stored integers and return its features' partial sums (scaled units);
+    ``cached`` False reads around the decoded-tile cache (Store.read_raw)."""
+    block = store.read_raw(var, chunk.y, chunk.x, t, cached=cached)
+    return block_sums(block, chunk, scale_factor, fill_value)
 
 
 def block_sums(block: np.ndarray, chunk: ChunkWeights, scale_factor: float, fill_value: int) -> Partial:
@@ -197,33 +206,36 @@ def finish(
 ) -> np.ndarray:
     """(feature, day) means in the variable's units from the last partial sums; NaN where no weight.
 
-    The last reduction step and the division share one (feature, day) array: fresh memory is the costly
-    part of this step (page faults), so it is allocated once. ``out``, when given, is that array (it may be a
-    view, e.g. one time block of a longer series) holding zeros, and the sums are added into it.
+    ``out``, when given, is the array to finish into (it may be a view, e.g. one time block of a longer series);
+    whatever it holds is overwritten. Each element gets the bits of adding the partials into zeros and dividing,
+    as numpy makes them, in two compiled passes over memory (service.weighted_sums.put_rows, scale_rows).
     """
     if out is None:
-        out = np.zeros((n_features, days))
+        out = np.empty((n_features, days))
     total = np.zeros(n_features)
+    started = np.zeros(n_features, dtype=np.bool_)
     correction = None
     for p in partials:
-        add_rows(out, p.rows, p.weighted_sum)
+        put_rows(out, p.rows, p.weighted_sum, started)
         total[p.rows] += p.total
         if p.correction is not None:
             if correction is None:
                 correction = np.zeros((n_features, days))
             correction[p.rows] += p.correction
+    if not started.all():
+        out[~started] = 0.0  # features no partial reached: no weight, NaN below
     no_weight = total <= 0
     if correction is None:
         # Every cell had data on every day: one reciprocal per feature.
         with np.errstate(divide="ignore"):
-            out *= np.where(no_weight, np.nan, 1.0 / np.where(no_weight, 1.0, total))[:, None]
-    else:
-        weight = correction
-        weight += total[:, None]
-        enough = weight > total[:, None] * MIN_WEIGHT_SHARE
-        with np.errstate(invalid="ignore", divide="ignore"):
-            out /= weight
-        out[~enough] = np.nan
+            scale_rows(out, np.where(no_weight, np.nan, 1.0 / np.where(no_weight, 1.0, total)), add_offset)
+        return out
+    weight = correction
+    weight += total[:, None]
+    enough = weight > total[:, None] * MIN_WEIGHT_SHARE
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out /= weight
+    out[~enough] = np.nan
     if add_offset:
         out += add_offset
     return out
@@ -318,7 +330,12 @@ def aggregate(
 
 
 def _partial_graphs(
-    store: Store, weights: Weights | GridWeights, variables: Sequence[str], start: int, stop: int
+    store: Store,
+    weights: Weights | GridWeights,
+    variables: Sequence[str],
+    start: int,
+    stop: int,
+    cached: bool = True,
 ) -> dict[str, tuple[dict[Any, Any], str, list[tuple[int, int]], list[list[Any]]]]:
     """The chunk tasks and reduction tree of each variable, on its own grid: {var: (graph, name, time blocks,
     the last keys of each block)}; the last keys of a block are the partial sums ``finish`` takes."""
@@ -363,7 +380,16 @@ def _partial_graphs(
             leaves = []
             for k, chunk in enumerate(plan):
                 key = (f"{name}-chunk", b, k)
-                dsk[key] = (chunk_sums, store, var, chunk, slice(t0, t1), enc.scale_factor, enc.fill_value)
+                dsk[key] = (
+                    chunk_sums,
+                    store,
+                    var,
+                    chunk,
+                    slice(t0, t1),
+                    enc.scale_factor,
+                    enc.fill_value,
+                    cached,
+                )
                 leaves.append(key)
             lasts.append(_tree(dsk, leaves, f"{name}-{b}"))
         graphs[var] = (dsk, name, blocks, lasts)
@@ -375,31 +401,37 @@ def finish_series(
 ) -> np.ndarray:
     """(feature, day) means over all the time blocks at once, from each block's last partial sums.
 
-    One array for the whole series, each block finished into its own columns: the same values as
-    ``finish`` per block joined along time, without a fresh array per block and the copy that joins them.
+    One array for the whole series (lent by service.buffers), each block finished into its own columns: the same
+    values as ``finish`` per block joined along time, without an array per block and the copy that joins them.
     """
     start = blocks[0][0] if blocks else 0
-    # np.zeros: the system hands over zeroed pages as they are first touched, so no pass of writing zeros
-    out = np.zeros((n_features, (blocks[-1][1] - start) if blocks else 0))
+    # memory of an earlier batch when there is some: fresh memory costs more than the arithmetic (service.buffers)
+    out = series_pool().empty((n_features, (blocks[-1][1] - start) if blocks else 0))
     for partials, (t0, t1) in zip(lasts, blocks, strict=True):
         finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start])
     return out
 
 
 def lazy_series(
-    store: Store, weights: Weights | GridWeights, *, variables: Sequence[str], time: slice = slice(None)
+    store: Store,
+    weights: Weights | GridWeights,
+    *,
+    variables: Sequence[str],
+    time: slice = slice(None),
+    cached: bool = True,
 ) -> dict[str, Any]:
     """Lazy daily weighted means per feature as one dask Delayed per variable: (feature, day) float64.
 
     The values of :func:`aggregate`, bit for bit (same chunk tasks, same reduction), each variable's whole
     series made by one task into one array: for a caller that wants the arrays, not an xarray Dataset.
+    ``cached`` False reads the chunks around the decoded-tile cache (the same values).
     """
     from dask.delayed import Delayed
 
     first = weights.first if isinstance(weights, GridWeights) else weights
     n_features = len(first.feature_ids)
     start, stop = _time_range(time, store.n_times)
-    graphs = _partial_graphs(store, weights, variables, start, stop)
+    graphs = _partial_graphs(store, weights, variables, start, stop, cached)
     series = {}
     for var in variables:
         dsk, name, blocks, lasts = graphs[var]

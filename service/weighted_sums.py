@@ -26,6 +26,8 @@ TILE_DAYS = 4096
 # names of the compiled loops (service.jit)
 KERNEL = "weighted_sums.chunk"
 ADD_ROWS = "weighted_sums.add_rows"
+PUT_ROWS = "weighted_sums.put_rows"
+SCALE_ROWS = "weighted_sums.scale_rows"
 
 
 def _kernel_source(
@@ -93,6 +95,55 @@ def _add_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> N
         source = values[r]
         for t in range(target.size):
             target[t] += source[t]
+
+
+def _put_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray, started: np.ndarray) -> None:
+    """out[rows[r], :] = 0.0 + values[r, :] for a row not started yet, += for one that is; marks rows started."""
+    for r in range(rows.size):
+        row = rows[r]
+        target = out[row]
+        source = values[r]
+        if started[row]:
+            for t in range(target.size):
+                target[t] += source[t]
+        else:
+            started[row] = True
+            for t in range(target.size):
+                target[t] = 0.0 + source[t]  # the bits of zeros += source: 0.0 + -0.0 is 0.0
+
+
+def _scale_rows_source(out: np.ndarray, factor: np.ndarray, offset: float) -> None:
+    """out[r, :] = out[r, :] * factor[r] (+ offset when it is not 0), two roundings as numpy makes them."""
+    for r in range(out.shape[0]):
+        target = out[r]
+        f = factor[r]
+        if offset != 0.0:
+            for t in range(target.size):
+                target[t] = target[t] * f + offset  # numba does not contract this into one fused multiply-add
+        else:
+            for t in range(target.size):
+                target[t] = target[t] * f
+
+
+def put_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray, started: np.ndarray) -> None:
+    """Add each row of ``values`` (rows, days) float64 into ``out[rows]`` as if ``out`` held zeros in the rows not yet
+    ``started`` ((features,) bool, updated): ``out`` need not be zeroed, each element gets the bits of
+    ``zeros[rows] += values`` and then of each later ``+=`` (``rows`` distinct)."""
+    if values.size:
+        jit.compiled(PUT_ROWS, _put_rows_source)(
+            out, np.asarray(rows, dtype=np.int64), np.ascontiguousarray(values, dtype=np.float64), started
+        )
+    else:
+        started[np.asarray(rows, dtype=np.int64)] = True
+
+
+def scale_rows(out: np.ndarray, factor: np.ndarray, offset: float) -> None:
+    """``out *= factor[:, None]`` then, when ``offset`` is not 0, ``out += offset``, in one pass with numpy's bits
+    (``out`` (features, days) float64, C-contiguous rows; ``factor`` (features,) float64, NaN where none)."""
+    if out.size:
+        jit.compiled(SCALE_ROWS, _scale_rows_source)(
+            out, np.ascontiguousarray(factor, dtype=np.float64), float(offset)
+        )
 
 
 def add_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
@@ -176,3 +227,7 @@ def warm_up() -> None:
     out = np.zeros((2, 4))
     add_rows(out, np.array([1]), np.ones((1, 4)))
     add_rows(out[:, 1:3], np.array([1]), np.ones((1, 2)))
+    started = np.zeros(2, dtype=np.bool_)
+    for view in (out, out[:, 1:3]):
+        put_rows(view, np.array([1]), np.ones((1, view.shape[1])), started)
+        scale_rows(view, np.ones(2), 0.5)

@@ -190,3 +190,42 @@ def test_add_rows_is_numpys_fancy_index_add_bit_for_bit_on_views() -> None:
     weighted_sums.add_rows(got[:, 10:30], rows, values[:, :20])
     assert np.array_equal(got, expected)
     assert np.array_equal(got[[1, 3, 5]], base[[1, 3, 5]])
+
+
+def numpy_finish(partials: list[Partial], n: int, days: int, add_offset: float) -> np.ndarray:
+    """The means as numpy makes them (the reference for aggregate.finish): partial sums added into zeros by fancy
+    index, times one reciprocal per feature (NaN without weight), plus the offset when it is not 0."""
+    out = np.zeros((n, days))
+    total = np.zeros(n)
+    for p in partials:
+        out[p.rows] += p.weighted_sum
+        total[p.rows] += p.total
+    no_weight = total <= 0
+    with np.errstate(divide="ignore"):
+        out *= np.where(no_weight, np.nan, 1.0 / np.where(no_weight, 1.0, total))[:, None]
+    if add_offset:
+        out += add_offset
+    return out
+
+
+@pytest.mark.parametrize("add_offset", [0.0, 273.15])
+def test_finish_into_used_memory_is_numpys_bit_for_bit(add_offset: float) -> None:
+    """finish writes every element of an array holding garbage (a reused batch array, service.buffers) with the
+    bits numpy's zeros + fancy-index adds + scaling give: rows in several partials, a row in none (NaN), a
+    zero-weight row, sums of -0.0 (whose sign 0.0 + -0.0 drops), on a whole array and on a window of days."""
+    rng = np.random.default_rng(11)
+    n, days = 7, 40
+    partials = []
+    for rows in ([0, 2, 5], [2, 3], [5, 0, 6]):
+        sums = rng.normal(size=(len(rows), days)) * 1e3 / 3.0
+        sums[:, :4] = -0.0
+        partials.append(Partial(np.array(rows), sums, rng.uniform(0.5, 2.0, len(rows)), None))
+    partials.append(Partial(np.array([1]), np.full((1, days), 5.0), np.zeros(1), None))  # no weight: NaN
+    expected = numpy_finish(partials, n, days, add_offset)
+    assert np.isnan(expected[[1, 4]]).all() and not np.signbit(expected[0, :4]).any()  # the premises hold
+    got = finish(partials, n, days, add_offset, out=np.full((n, days), 1e300))
+    assert np.array_equal(got.view(np.uint64), expected.view(np.uint64))
+    series = np.full((n, days + 10), -7.0)
+    finish(partials, n, days, add_offset, out=series[:, 5 : days + 5])
+    assert np.array_equal(series[:, 5 : days + 5].view(np.uint64), expected.view(np.uint64))
+    assert (series[:, :5] == -7.0).all() and (series[:, days + 5 :] == -7.0).all()
