@@ -298,3 +298,30 @@ def test_variable_subset_and_bad_arguments(tmp_path: Path) -> None:
     other, _ = write(tmp_path, "other", ny=4, nx=3, years=(2000, 2000))
     with pytest.raises(ValueError, match="do not fit store"):
         aggregate(other, w)
+
+
+def test_lazy_series_equals_aggregate_with_and_without_the_tile_cache(tmp_path: Path) -> None:
+    """lazy_series gives aggregate's values bit for bit; cached=False reads around the tile cache (a job's pass)
+    and leaves it as it was, with the same values."""
+    from service.aggregate import lazy_series
+    from service.store.chunks import configure_tile_cache, tile_cache
+
+    store, _ = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=4, time_chunk=200),
+                     missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
+    weights = weights_for(store, random_features(12, np.random.default_rng(3), 10, 9))
+    (whole,) = dask.compute(aggregate(store, weights), scheduler="threads")
+    configure_tile_cache(1 << 24)
+    try:
+        store = open_store(store.location)  # readers made with the cache on
+        before = tile_cache().nbytes
+        (around,) = dask.compute(
+            lazy_series(store, weights, variables=VARIABLES, cached=False), scheduler="threads"
+        )
+        assert tile_cache().nbytes == before
+        (kept,) = dask.compute(lazy_series(store, weights, variables=VARIABLES), scheduler="threads")
+        assert tile_cache().nbytes > before
+    finally:
+        configure_tile_cache(0)
+    for var in VARIABLES:
+        assert np.array_equal(around[var], whole[var].values, equal_nan=True)
+        assert np.array_equal(kept[var], whole[var].values, equal_nan=True)

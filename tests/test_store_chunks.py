@@ -96,6 +96,21 @@ def test_cache_serves_read_only_chunks(store) -> None:
         second[0, 0, 0] = 1
 
 
+def test_a_read_around_the_cache_neither_takes_nor_keeps_chunks(store) -> None:
+    """cached=False (a job's reads) leaves the cache as it was and gives the same values, writable."""
+    array = _zarr_array(store, "tmax")
+    cache = TileCache(max_bytes=1 << 20)
+    reader = ChunkReader.for_array(array, cache=cache)
+    window = (slice(1, 3), slice(2, 3), slice(10, 190))
+    around = reader.read(*window, cached=False)
+    assert cache.nbytes == 0 and cache.hits == cache.misses == 0
+    kept = reader.read(*window)
+    again = reader.read(*window, cached=False)
+    assert cache.hits == 0 and cache.misses == 1 and cache.nbytes > 0
+    assert around.tobytes() == kept.tobytes() == again.tobytes() == np.asarray(array[window]).tobytes()
+    assert again.flags.writeable and not kept.flags.writeable
+
+
 def test_cache_keeps_its_budget() -> None:
     cache = TileCache(max_bytes=1000)
     for k in range(10):

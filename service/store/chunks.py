@@ -221,12 +221,14 @@ class ChunkReader:
             self._indexes[shard] = index
         return index
 
-    def chunk(self, coords: tuple[int, ...]) -> np.ndarray:
-        """The decoded inner chunk at inner-chunk grid ``coords`` (full chunk shape, padded at the array's edge)."""
-        if self.cache is not None:
-            cached = self.cache.get((self._token, coords))
-            if cached is not None:
-                return cached
+    def chunk(self, coords: tuple[int, ...], cached: bool = True) -> np.ndarray:
+        """The decoded inner chunk at inner-chunk grid ``coords`` (full chunk shape, padded at the array's edge);
+        ``cached`` False reads around the cache (neither taken from it nor kept in it)."""
+        cache = self.cache if cached else None
+        if cache is not None:
+            hit = cache.get((self._token, coords))
+            if hit is not None:
+                return hit
         if self.shard_shape is None:
             data = self._get(self._metadata.encode_chunk_key(coords))
         else:
@@ -239,14 +241,15 @@ class ChunkReader:
                 if offset != _EMPTY:
                     data = self._get(self._metadata.encode_chunk_key(shard), start=offset, length=length)
         values = self._decode(data)
-        if self.cache is not None:
-            self.cache.put((self._token, coords), values)
+        if cache is not None:
+            cache.put((self._token, coords), values)
         return values
 
     # -- windows --------------------------------------------------------------------------------------------------
 
-    def read(self, *window: slice) -> np.ndarray:
-        """The values of a window of index slices (step 1), one per dimension, in stored integers."""
+    def read(self, *window: slice, cached: bool = True) -> np.ndarray:
+        """The values of a window of index slices (step 1), one per dimension, in stored integers; ``cached``
+        False reads around the decoded-tile cache."""
         bounds = [s.indices(n)[:2] for s, n in zip(window, self.shape, strict=True)]
         if any(s.step not in (None, 1) for s in window):
             raise ValueError("ChunkReader reads windows of step 1")
@@ -254,7 +257,7 @@ class ChunkReader:
         last = [max(start, stop - 1) // c for (start, stop), c in zip(bounds, self.inner_shape, strict=True)]
         out_shape = tuple(max(0, stop - start) for start, stop in bounds)
         if first == last and all(out_shape):
-            chunk = self.chunk(tuple(first))
+            chunk = self.chunk(tuple(first), cached)
             return chunk[
                 tuple(
                     slice(start - f * c, stop - f * c)
@@ -271,7 +274,7 @@ class ChunkReader:
                 lo, hi = max(start, k * c), min(stop, (k + 1) * c)
                 source.append(slice(lo - k * c, hi - k * c))
                 target.append(slice(lo - start, hi - start))
-            out[tuple(target)] = self.chunk(chunk_coords)[tuple(source)]
+            out[tuple(target)] = self.chunk(chunk_coords, cached)[tuple(source)]
         return out
 
 

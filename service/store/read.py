@@ -305,15 +305,17 @@ class Store:
         """Each daily variable's direct chunk reader (service.store.chunks), None where zarr must read it."""
         return {v: ChunkReader.for_array(a, cache=tile_cache()) for v, a in self._var_arrays.items()}
 
-    def read_raw(self, var: str, y: slice, x: slice, t: slice) -> np.ndarray:
+    def read_raw(self, var: str, y: slice, x: slice, t: slice, *, cached: bool = True) -> np.ndarray:
         """(ny, nx, nt) stored integers of a window (index slices on the variable's grid); fill_value marks
-        missing (so do the days outside the variable's coverage).
+        missing (so do the days outside the variable's coverage). ``cached`` False reads around the process's
+        decoded-tile cache (a job's one pass over many chunks, which would only push out the chunks that
+        on-demand requests reuse).
 
         May be a read-only view of a decoded chunk: copy before writing into it.
         """
         reader = self._chunk_readers.get(var)
         if reader is not None:
-            return reader.read(y, x, t)
+            return reader.read(y, x, t, cached=cached)
         try:
             array = self._var_arrays[var]
         except KeyError:
