@@ -310,6 +310,8 @@ def test_lazy_series_equals_aggregate_with_and_without_the_tile_cache(tmp_path: 
                      missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
     weights = weights_for(store, random_features(12, np.random.default_rng(3), 10, 9))
     (whole,) = dask.compute(aggregate(store, weights), scheduler="threads")
+    budget = tile_cache().max_bytes
+    configure_tile_cache(0)  # emptied
     configure_tile_cache(1 << 24)
     try:
         store = open_store(store.location)  # readers made with the cache on
@@ -321,7 +323,7 @@ def test_lazy_series_equals_aggregate_with_and_without_the_tile_cache(tmp_path: 
         (kept,) = dask.compute(lazy_series(store, weights, variables=VARIABLES), scheduler="threads")
         assert tile_cache().nbytes > before
     finally:
-        configure_tile_cache(0)
+        configure_tile_cache(budget)
     for var in VARIABLES:
         assert np.array_equal(around[var], whole[var].values, equal_nan=True)
         assert np.array_equal(kept[var], whole[var].values, equal_nan=True)
