@@ -66,10 +66,13 @@ DEFAULT_PAIR = ("prcp_total", "tmean")
 DEFAULT_BASELINE_SEASONS = 30
 # Distribution-fitted and percentile indices on fewer baseline seasons get the warning short_baseline_fit.
 MIN_FIT_SEASONS = 30
-# Rows are cut and computed in blocks of about this many daily values per variable (8 M, 64 MB of
-# float64): every feature's row is independent, and blocks keep the cubes and the indicators' temporaries
-# small enough to stay fast (measured: 3x faster than one cube of 5,000 features x 48 years).
-FEATURE_BLOCK_ELEMENTS = 8_000_000
+# Rows are cut and computed in blocks of about this many daily values per variable (2 M, 16 MB of float64):
+# every feature's row is independent, and blocks keep the cubes and the indicators' temporaries small enough to
+# stay fast (measured: 3x faster than one cube of 5,000 features x 48 years). Below glibc's largest mmap
+# threshold (32 MB), the blocks' temporaries reuse freed heap memory instead of fresh pages from the kernel: on
+# the 5,000-village batch 8 M-value blocks spent 0.4-1.0 CPU-s of kernel time on page faults, 2 M ones almost
+# none, in the same user time (bench/RESULTS.md, "Scale").
+FEATURE_BLOCK_ELEMENTS = 2_000_000
 
 
 @dataclass(frozen=True)
