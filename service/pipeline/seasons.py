@@ -23,6 +23,7 @@ from service.pipeline.cells import cells_table
 from service.pipeline.checks import _dry_run, _prepare_resolved, _without_skipped
 from service.pipeline.core import (
     DEFAULT_BATCH_FEATURES,
+    Alongside,
     Cancelled,
     Progress,
     _check_years,
@@ -82,9 +83,11 @@ def run(
             stores=stores,
         )
     run_ = _batch_run(request, store, settings, progress, cancelled, batch_size, invalid_features, prepared)
-    resolved, prepared, batches = run_.resolved, run_.prepared, run_.batches
+    prepared, batches = run_.prepared, run_.batches
     parsed, weights = prepared.parsed, prepared.weights
-    parts = dict(run_.computed)
+    with run_.provenance:
+        parts = dict(run_.computed)
+        document = run_.provenance.value()
     frames = [parts[k][0] for k in range(len(batches))]
     warnings = [w for k in range(len(batches)) for w in parts[k][1]]
     frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
@@ -96,11 +99,7 @@ def run(
     ] + skipped_warnings(prepared.skipped)
     warnings.extend(later)
     frame = add_warning_notes(frame, later)  # notes last, with the codes of the warnings made here
-    return RunResult(
-        frame=frame,
-        provenance=provenance(resolved, store, parsed, prepared.skipped),
-        warnings=warnings,
-    )
+    return RunResult(frame=frame, provenance=document, warnings=warnings)
 
 
 @dataclass
@@ -110,6 +109,8 @@ class _BatchRun:
     resolved: IndicatorRequest
     prepared: Prepared
     batches: list[np.ndarray]
+    # the run's provenance, computed on a thread of its own while the batches are (join it: ``with``)
+    provenance: Alongside[dict[str, Any]]
     # (batch number, (frame, warnings)) in the order batches finish; raises RunCancelledError at the end when
     # cancelled before every batch was computed
     computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
@@ -161,7 +162,11 @@ def _batch_run(
         # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
         # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order later.
         computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled, in_flight=in_flight)
-    return _BatchRun(resolved, prepared, batches, _counted(computed, batches, len(parsed.features), progress))
+    # started just before the first batch: nothing below waits for it until the last batch is in
+    document = Alongside(lambda: provenance(resolved, store, parsed, prepared.skipped))
+    return _BatchRun(
+        resolved, prepared, batches, document, _counted(computed, batches, len(parsed.features), progress)
+    )
 
 
 def _counted(
@@ -209,8 +214,6 @@ def run_in_pieces(
     use :func:`run`). ``series_bytes`` and ``in_flight`` bound the daily means held at once (a job's smaller
     batches, fewer of them at a time).
     """
-    import pickle
-
     if request.variants or request.events is not None:
         return None
     run_ = _batch_run(
@@ -225,7 +228,15 @@ def run_in_pieces(
         series_bytes,
         in_flight,
     )
-    resolved, prepared = run_.resolved, run_.prepared
+    with run_.provenance:
+        return _spilled_run(run_, spill)
+
+
+def _spilled_run(run_: _BatchRun, spill: Path) -> SeriesTable:
+    """run_in_pieces' rows written to ``spill`` batch by batch as they are computed; the table reading them."""
+    import pickle
+
+    prepared = run_.prepared
     parsed, weights = prepared.parsed, prepared.weights
     later = [
         warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
@@ -256,7 +267,7 @@ def run_in_pieces(
     n_pieces = -(-len(weights.feature_ids) // PIECE_FEATURES)
     return SeriesTable(
         columns=columns or [],
-        provenance=provenance(resolved, store, parsed, prepared.skipped),
+        provenance=run_.provenance.value(),
         warnings=warnings,
         frames=_Spilled([paths[k] for k in sorted(paths)], n_pieces),
     )
