@@ -161,7 +161,8 @@ def chunk_sums(
 ) -> Partial:
     """One task: read one chunk's stored integers and return its features' partial sums (scaled units);
     ``cached`` False reads around the decoded-tile cache (Store.read_raw)."""
-    block = store.read_raw(var, chunk.y, chunk.x, t, cached=cached)
+    # the thread's scratch memory: the sums are all this task keeps of the chunk
+    block = store.read_raw(var, chunk.y, chunk.x, t, cached=cached, scratch=True)
     return block_sums(block, chunk, scale_factor, fill_value)
 
 

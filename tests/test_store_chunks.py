@@ -48,8 +48,9 @@ def test_reader_gives_zarrs_values(store, window) -> None:
         want = np.asarray(array[window])
         assert got.dtype == want.dtype and got.shape == want.shape
         assert got.tobytes() == want.tobytes()
-        # through the Store, as the aggregation reads
+        # through the Store, and into the thread's scratch memory as the aggregation's chunk tasks read
         assert store.read_raw(var, *window).tobytes() == want.tobytes()
+        assert store.read_raw(var, *window, scratch=True).tobytes() == want.tobytes()
 
 
 def test_missing_chunk_reads_as_fill(tmp_path) -> None:
@@ -109,6 +110,30 @@ def test_a_read_around_the_cache_neither_takes_nor_keeps_chunks(store) -> None:
     assert cache.hits == 0 and cache.misses == 1 and cache.nbytes > 0
     assert around.tobytes() == kept.tobytes() == again.tobytes() == np.asarray(array[window]).tobytes()
     assert again.flags.writeable and not kept.flags.writeable
+
+
+def test_scratch_reads_reuse_one_chunk_per_thread_and_never_a_cached_one(store) -> None:
+    """Scratch reads on one thread decode into the same memory (the last read wins); another thread has its own;
+    with a cache the chunk goes to the cache (read-only, never overwritten) instead."""
+    import threading
+
+    array = _zarr_array(store, "tmax")
+    reader = ChunkReader.for_array(array)
+    one, two = (slice(0, 2), slice(0, 2), slice(0, 100)), (slice(0, 2), slice(0, 2), slice(400, 500))
+    first = reader.read(*one, scratch=True)
+    first_values = np.asarray(array[one])
+    assert first.tobytes() == first_values.tobytes()
+    second = reader.read(*two, scratch=True)
+    assert first.base is second.base and second.tobytes() == np.asarray(array[two]).tobytes()
+    other: list[np.ndarray] = []
+    thread = threading.Thread(target=lambda: other.append(reader.read(*one, scratch=True)))
+    thread.start()
+    thread.join()
+    assert other[0].base is not second.base and other[0].tobytes() == first_values.tobytes()
+    cached = ChunkReader.for_array(array, cache=TileCache(max_bytes=1 << 22))
+    kept = cached.read(*one, scratch=True)
+    cached.read(*two, scratch=True)
+    assert not kept.flags.writeable and kept.tobytes() == first_values.tobytes()
 
 
 def test_cache_keeps_its_budget() -> None:

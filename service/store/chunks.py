@@ -14,6 +14,7 @@ The values are those zarr gives, bit for bit (a test compares both paths on ever
 from __future__ import annotations
 
 import itertools
+import os
 import struct
 import threading
 from collections import OrderedDict
@@ -30,6 +31,10 @@ _EMPTY = 2**64 - 1
 # Bytes of the crc32c checksum after a shard's index.
 _CRC_BYTES = 4
 _TOKENS = itertools.count()
+# Each thread's scratch memory for reads whose chunk is used at once and dropped (ChunkReader.chunk, scratch=True):
+# the compressed bytes and the decoded chunk, reused read after read. Fresh memory for every chunk cost the
+# 5,000-village batch about 1.3 CPU-s of page faults and allocation (bench/RESULTS.md, "Scale").
+_SCRATCH = threading.local()
 
 
 class TileCache:
@@ -168,9 +173,19 @@ class ChunkReader:
     # -- bytes ----------------------------------------------------------------------------------------------------
 
     def _get(
-        self, key: str, start: int | None = None, length: int | None = None, suffix: int | None = None
-    ) -> bytes | None:
-        """Bytes of a stored object (all, a range, or the last ``suffix`` bytes); None when it does not exist."""
+        self,
+        key: str,
+        start: int | None = None,
+        length: int | None = None,
+        suffix: int | None = None,
+        scratch: bool = False,
+    ) -> bytes | memoryview | None:
+        """Bytes of a stored object (all, a range, or the last ``suffix`` bytes); None when it does not exist.
+
+        ``scratch``: a local file's bytes are read into this thread's scratch buffer, valid until its next
+        scratch read (a view of it is returned)."""
+        if self._root is not None and scratch and suffix is None:
+            return self._read_into_scratch(key, start, length)
         if self._root is not None:
             try:
                 with open(self._root / key, "rb") as f:
@@ -198,11 +213,40 @@ class ChunkReader:
         buffer = sync(self._store.get(key, prototype=default_buffer_prototype(), byte_range=byte_range))
         return None if buffer is None else buffer.to_bytes()
 
-    def _decode(self, data: bytes | None) -> np.ndarray:
-        """One inner chunk's values (its full shape, C order) from its compressed bytes; fill when absent."""
+    def _read_into_scratch(self, key: str, start: int | None, length: int | None) -> memoryview | None:
+        """A local file's bytes (all, or ``length`` from ``start``) in this thread's scratch buffer; None if absent."""
+        try:
+            with open(self._root / key, "rb", buffering=0) as f:  # type: ignore[operator]
+                if start is not None:
+                    f.seek(start)
+                    size = int(length or 0)
+                else:
+                    size = os.fstat(f.fileno()).st_size
+                buffer = getattr(_SCRATCH, "compressed", None)
+                if buffer is None or len(buffer) < size:
+                    buffer = _SCRATCH.compressed = bytearray(size)
+                view = memoryview(buffer)[:size]
+                got = f.readinto(view)
+                return view[:got]
+        except FileNotFoundError:
+            return None
+
+    def _decode(self, data: bytes | memoryview | None, scratch: bool = False) -> np.ndarray:
+        """One inner chunk's values (its full shape, C order) from its compressed bytes; fill when absent.
+
+        ``scratch``: decoded into this thread's scratch chunk of that shape, valid until its next scratch read."""
         if data is None:
             return np.full(self.inner_shape, self.fill_value, dtype=self.dtype)
-        out = np.empty(self.inner_shape, dtype=self.dtype)
+        out = None
+        if scratch:
+            tiles = getattr(_SCRATCH, "tiles", None)
+            if tiles is None:
+                tiles = _SCRATCH.tiles = {}
+            out = tiles.get((self.inner_shape, self.dtype))
+            if out is None:
+                out = tiles[(self.inner_shape, self.dtype)] = np.empty(self.inner_shape, dtype=self.dtype)
+        else:
+            out = np.empty(self.inner_shape, dtype=self.dtype)
         self._codec.decode(data, out=out)
         return out
 
@@ -221,16 +265,21 @@ class ChunkReader:
             self._indexes[shard] = index
         return index
 
-    def chunk(self, coords: tuple[int, ...], cached: bool = True) -> np.ndarray:
-        """The decoded inner chunk at inner-chunk grid ``coords`` (full chunk shape, padded at the array's edge);
-        ``cached`` False reads around the cache (neither taken from it nor kept in it)."""
-        cache = self.cache if cached else None
+    def chunk(self, coords: tuple[int, ...], cached: bool = True, scratch: bool = False) -> np.ndarray:
+        """The decoded inner chunk at inner-chunk grid ``coords`` (full chunk shape, padded at the array's edge).
+
+        ``cached`` False reads around the cache (neither taken from it nor kept in it). ``scratch`` True lets a
+        chunk that does not go into the cache be decoded into this thread's scratch memory: the array is then
+        valid only until this thread's next scratch read (for a caller that uses the chunk at once).
+        """
+        cache = self.cache if cached and self.cache is not None and self.cache.max_bytes else None
+        scratch = scratch and cache is None
         if cache is not None:
             hit = cache.get((self._token, coords))
             if hit is not None:
                 return hit
         if self.shard_shape is None:
-            data = self._get(self._metadata.encode_chunk_key(coords))
+            data = self._get(self._metadata.encode_chunk_key(coords), scratch=scratch)
         else:
             shard = tuple(c // p for c, p in zip(coords, self._per_shard, strict=True))
             index = self._shard_index(shard)
@@ -239,17 +288,20 @@ class ChunkReader:
                 local = tuple(c % p for c, p in zip(coords, self._per_shard, strict=True))
                 offset, length = (int(v) for v in index[np.ravel_multi_index(local, self._per_shard)])
                 if offset != _EMPTY:
-                    data = self._get(self._metadata.encode_chunk_key(shard), start=offset, length=length)
-        values = self._decode(data)
+                    data = self._get(
+                        self._metadata.encode_chunk_key(shard), start=offset, length=length, scratch=scratch
+                    )
+        values = self._decode(data, scratch)
         if cache is not None:
             cache.put((self._token, coords), values)
         return values
 
     # -- windows --------------------------------------------------------------------------------------------------
 
-    def read(self, *window: slice, cached: bool = True) -> np.ndarray:
+    def read(self, *window: slice, cached: bool = True, scratch: bool = False) -> np.ndarray:
         """The values of a window of index slices (step 1), one per dimension, in stored integers; ``cached``
-        False reads around the decoded-tile cache."""
+        False reads around the decoded-tile cache; ``scratch`` True may give a view of this thread's scratch
+        memory, valid until its next scratch read (see :meth:`chunk`)."""
         bounds = [s.indices(n)[:2] for s, n in zip(window, self.shape, strict=True)]
         if any(s.step not in (None, 1) for s in window):
             raise ValueError("ChunkReader reads windows of step 1")
@@ -257,7 +309,7 @@ class ChunkReader:
         last = [max(start, stop - 1) // c for (start, stop), c in zip(bounds, self.inner_shape, strict=True)]
         out_shape = tuple(max(0, stop - start) for start, stop in bounds)
         if first == last and all(out_shape):
-            chunk = self.chunk(tuple(first), cached)
+            chunk = self.chunk(tuple(first), cached, scratch)
             return chunk[
                 tuple(
                     slice(start - f * c, stop - f * c)
@@ -274,7 +326,7 @@ class ChunkReader:
                 lo, hi = max(start, k * c), min(stop, (k + 1) * c)
                 source.append(slice(lo - k * c, hi - k * c))
                 target.append(slice(lo - start, hi - start))
-            out[tuple(target)] = self.chunk(chunk_coords, cached)[tuple(source)]
+            out[tuple(target)] = self.chunk(chunk_coords, cached, scratch)[tuple(source)]
         return out
 
 

@@ -305,17 +305,21 @@ class Store:
         """Each daily variable's direct chunk reader (service.store.chunks), None where zarr must read it."""
         return {v: ChunkReader.for_array(a, cache=tile_cache()) for v, a in self._var_arrays.items()}
 
-    def read_raw(self, var: str, y: slice, x: slice, t: slice, *, cached: bool = True) -> np.ndarray:
+    def read_raw(
+        self, var: str, y: slice, x: slice, t: slice, *, cached: bool = True, scratch: bool = False
+    ) -> np.ndarray:
         """(ny, nx, nt) stored integers of a window (index slices on the variable's grid); fill_value marks
         missing (so do the days outside the variable's coverage). ``cached`` False reads around the process's
         decoded-tile cache (a job's one pass over many chunks, which would only push out the chunks that
         on-demand requests reuse).
 
-        May be a read-only view of a decoded chunk: copy before writing into it.
+        May be a read-only view of a decoded chunk: copy before writing into it. With ``scratch`` True it may be a
+        view of this thread's scratch memory, valid only until the thread's next scratch read: for a caller that
+        uses the values at once and keeps nothing of them (the aggregation's chunk tasks).
         """
         reader = self._chunk_readers.get(var)
         if reader is not None:
-            return reader.read(y, x, t, cached=cached)
+            return reader.read(y, x, t, cached=cached, scratch=scratch)
         try:
             array = self._var_arrays[var]
         except KeyError:
