@@ -46,6 +46,11 @@ def snap_decimals(scale_factor: float, add_offset: float = 0.0) -> int:
     return min(places + SNAP_EXTRA_DECIMALS, 12)
 
 
+# Arrays at least this large are snapped by one compiled pass (a batch's daily means, 140 MB a variable); smaller
+# ones by numpy, without loading the compiled code for them.
+SNAP_COMPILED_SIZE = 1 << 20
+
+
 def snap_daily(values: np.ndarray, decimals: int) -> np.ndarray:
     """Daily values (any shape, float64) rounded to ``decimals`` places, in place; NaN stays NaN.
 
@@ -57,6 +62,11 @@ def snap_daily(values: np.ndarray, decimals: int) -> np.ndarray:
     [25.0, 1.0, -0.0]
     """
     factor = float(10**decimals)
+    if values.size >= SNAP_COMPILED_SIZE and values.dtype == np.float64 and values.flags.c_contiguous:
+        from service.indicators.compiled import snap_in_one_pass
+
+        snap_in_one_pass(values, factor)  # the same steps, one pass over memory instead of three
+        return values
     np.multiply(values, factor, out=values)
     np.rint(values, out=values)
     np.divide(values, factor, out=values)
