@@ -208,6 +208,26 @@ def test_buffer_is_drawn_in_metres_not_degrees() -> None:
         np.testing.assert_allclose(distance, stretched, rtol=2e-4)
 
 
+def test_buffer_circles_in_blocks_are_those_of_one_pass(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Circles made BUFFER_BLOCK points at a time (bounded memory for 50,000 points) have the vertices of all
+    points at once, bit for bit, poles (through PROJ) included."""
+    from service.geometry import planes
+
+    rng = np.random.default_rng(8)
+    lon, lat, radius = (
+        rng.uniform(-180, 180, 1001),
+        rng.uniform(-89.9, 89.9, 1001),
+        rng.uniform(10, 5e4, 1001),
+    )
+    lat[[3, 700]] = (90.0, -90.0)
+    monkeypatch.setattr(planes, "BUFFER_BLOCK", 64)
+    blocked = shapely.get_coordinates(planes.buffer_circles(lon, lat, radius))
+    monkeypatch.setattr(planes, "BUFFER_BLOCK", 10**6)
+    whole = shapely.get_coordinates(planes.buffer_circles(lon, lat, radius))
+    assert blocked.shape == (1001 * (geometry.BUFFER_VERTICES + 1), 2)
+    assert np.array_equal(blocked.view(np.int64), whole.view(np.int64))
+
+
 def test_community_smaller_than_one_cell_gets_its_area() -> None:
     grid = lambert_grid(nx=2, ny=2)
     fc = collection(polygon(box(1_000, 1_000, 2_000, 3_000)))
@@ -637,3 +657,56 @@ def test_passes_of_candidates_do_not_change_the_weights(
     assert (one_pass.matrix != many.matrix).nnz == 0 and one_pass.matrix.nnz > 30
     for name in ("coverage", "n_cells", "area_km2", "latitude", "longitude"):
         assert np.array_equal(getattr(one_pass, name), getattr(many, name)), name
+
+
+@pytest.mark.parametrize("projected", [False, True])
+@pytest.mark.parametrize("multipart", [False, True])
+def test_blocks_and_unshared_parts_do_not_change_the_weights(
+    monkeypatch: pytest.MonkeyPatch, projected: bool, multipart: bool
+) -> None:
+    """Buffer circles and reprojections made a few geometries at a time (as a large job's are), and single
+    polygons taken as their own parts, give the weights of whole-array steps and shapely.get_parts' copies,
+    bit for bit."""
+    from service.geometry import planes
+    from service.geometry import weights as weights_module
+
+    rng = np.random.default_rng(5)
+    if (
+        projected
+    ):  # metres of the test Lambert CRS: its plane's areas and the circles' way back both reproject
+        grid, crs, scale, radius = (
+            lambert_grid(nx=12, ny=9, size=1_000.0),
+            LAMBERT_CRS.to_wkt(),
+            10_000.0,
+            900.0,
+        )
+    else:
+        grid, crs, scale, radius = lonlat_grid(0.0, 0.0, 0.1, 12, 10), None, 1.0, 4_000.0
+    shapes: list[dict[str, Any]] = []
+    for _ in range(12):
+        x, y = rng.uniform(0.05, 0.9) * scale, rng.uniform(0.05, 0.7) * scale
+        shapes.append(
+            polygon(box(x, y, x + rng.uniform(0.02, 0.2) * scale, y + rng.uniform(0.02, 0.2) * scale))
+        )
+    for _ in range(9):
+        shapes.append(
+            {"type": "Point", "coordinates": [rng.uniform(0.1, 1.0) * scale, rng.uniform(0.1, 0.8) * scale]}
+        )
+    if multipart:
+        a, b = box(0.1 * scale, 0.1 * scale, 0.2 * scale, 0.2 * scale), box(0.6, 0.5, 0.7, 0.65)
+        shapes.append({"type": "MultiPolygon", "coordinates": [a, [[[v * scale for v in p] for p in b[0]]]]})
+    props = [{"buffer_m": radius} if s["type"] == "Point" else {} for s in shapes]
+    fc = collection(*shapes, properties=props)
+
+    def weights() -> geometry.Weights:
+        parsed = parse_features(fc, **({"crs": crs} if crs else {}))
+        return compute_weights(parsed, grid, cache_size=0)
+
+    monkeypatch.setattr(planes, "BUFFER_BLOCK", 4)
+    blocked = weights()
+    monkeypatch.setattr(planes, "BUFFER_BLOCK", 10**9)
+    monkeypatch.setattr(weights_module, "_parts", lambda g: shapely.get_parts(g, return_index=True))
+    whole = weights()
+    assert (blocked.matrix != whole.matrix).nnz == 0 and blocked.matrix.nnz > 30
+    for name in ("coverage", "n_cells", "area_km2", "latitude", "longitude"):
+        assert np.array_equal(getattr(blocked, name), getattr(whole, name)), name

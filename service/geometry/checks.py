@@ -26,7 +26,7 @@ import shapely
 from service.errors import FeatureError, LimitExceededError, RequestError, WxshockError
 from service.geometry.antimeridian import crossing, split
 from service.geometry.planes import WGS84 as _WGS84
-from service.geometry.planes import buffer_circles
+from service.geometry.planes import buffer_circles, transform_in_blocks
 
 # Survey programmes displace published cluster points by a few km (common practice: up to 2 km urban,
 # 5-10 km rural); a radius beyond 100 km describes a region, not a cluster, and is almost surely a unit error.
@@ -493,7 +493,7 @@ def _circles(xy: np.ndarray, radius: np.ndarray, crs: pyproj.CRS) -> np.ndarray:
     circles = buffer_circles(np.asarray(lon), np.asarray(lat), radius)
     if not same:
         back = pyproj.Transformer.from_crs(_WGS84, crs, always_xy=True)
-        circles = shapely.transform(circles, lambda c: np.column_stack(back.transform(c[:, 0], c[:, 1])))
+        circles = transform_in_blocks(circles, lambda c: np.column_stack(back.transform(c[:, 0], c[:, 1])))
     return circles
 
 

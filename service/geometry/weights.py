@@ -32,7 +32,7 @@ from service.geometry.checks import (
     request_crs,
     skipped_from,
 )
-from service.geometry.planes import _Plane, _plane, _to_grid
+from service.geometry.planes import _Plane, _plane, _to_grid, transform_in_blocks
 
 if TYPE_CHECKING:
     from service.store import Grid
@@ -371,9 +371,10 @@ def _clip(
 
 
 def _outside_reason(
-    feature: Feature, grid_geometry: shapely.Geometry, parsed_crs: pyproj.CRS, grid: Grid, plane: _Plane
+    feature: Feature, grid_bounds: np.ndarray, parsed_crs: pyproj.CRS, grid: Grid, plane: _Plane
 ) -> FeatureError:
-    """The error for a feature that overlaps no cell: swapped coordinates if swapping fits, else outside."""
+    """The error for a feature that overlaps no cell: swapped coordinates if swapping fits, else outside
+    (``grid_bounds``: the feature's bounds on the grid's CRS, (xmin, ymin, xmax, ymax))."""
     bounds = (
         float(plane.x_edges[0]),
         float(plane.y_edges[0]),
@@ -395,7 +396,7 @@ def _outside_reason(
                     "swapped_coordinates",
                 )
     gx, gy = np.asarray(grid.x_edges), np.asarray(grid.y_edges)
-    fb = shapely.bounds(grid_geometry)
+    fb = grid_bounds
     return FeatureWithoutDataError(
         f"feature {feature.id!r} lies outside the grid (grid spans x {min(gx[0], gx[-1]):.6g} to "
         f"{max(gx[0], gx[-1]):.6g}, y {min(gy[0], gy[-1]):.6g} to {max(gy[0], gy[-1]):.6g} in its CRS; the "
@@ -432,13 +433,18 @@ def _compute_weights(
         # Shapes that the reprojection carried across the grid's 180th meridian (lon/lat requests were cut
         # at parse time; this catches projected requests and datum shifts at the meridian).
         on_grid = _split_on_grid(on_grid, features, faults)
-    geoms = shapely.transform(on_grid, plane.to_plane)
+    # What an outside feature's error reports; then the shapes on the grid's CRS are let go (a copy of every
+    # footprint: each copy of 50,000 buffered points holds about 75 MB).
+    grid_bounds = shapely.bounds(on_grid)
+    geoms = transform_in_blocks(on_grid, plane.to_plane)
+    del on_grid
     feature_area = plane.feature_areas_km2(geoms)
-    parts, owner = shapely.get_parts(geoms, return_index=True)
+    plane_area = shapely.area(geoms)
+    parts, owner = _parts(geoms)
+    del geoms
     latitude, longitude = _centroids(parts, owner, m, plane)
     if plane.period is not None:
         parts, owner = wrap_parts(parts, owner, plane.x_edges[0], plane.x_edges[-1], plane.period)
-    shapely.prepare(parts)
     ranges = _index_ranges(shapely.bounds(parts), plane)
     part_candidates = (ranges[1] - ranges[0]) * (ranges[3] - ranges[2])
     candidates = np.bincount(owner, weights=part_candidates, minlength=m).astype(np.int64)
@@ -451,7 +457,11 @@ def _compute_weights(
     layer_flat = None if layer is None else np.nan_to_num(layer.ravel(), nan=0.0)
     pieces = _Pieces()
     for rows in _passes(np.flatnonzero(~too_big[owner] & (part_candidates > 0)), part_candidates):
+        # Prepared for this pass alone: a prepared part keeps the index its first point-in-polygon test builds
+        # (a few kB), so parts prepared all at once held 200 MB more by the last pass for 50,000 buffered points.
+        shapely.prepare(parts[rows])
         part, ix, iy, area, ground, counted = _overlaps(parts, rows, ranges, plane, weighting)
+        shapely.destroy_prepared(parts[rows])
         gx = nx - 1 - ix if plane.x_flipped else ix
         gy = ny - 1 - iy if plane.y_flipped else iy
         pieces.part.append(part)
@@ -487,14 +497,14 @@ def _compute_weights(
         if touched[r] > max_cells:
             faults[int(r)] = _too_many_cells(f, int(touched[r]), max_cells, "it touches")
         elif touched[r] == 0 and not (weighting == "centers" and n_cells[r] > 0):
-            faults[int(r)] = _outside_reason(f, on_grid[r], source, grid, plane)
+            faults[int(r)] = _outside_reason(f, grid_bounds[r], source, grid, plane)
         elif n_cells[r] == 0:
             faults[int(r)] = _without_data(f, int(touched[r]), weighting, layer is not None, data_area[r] > 0)
     skipped = _settle(faults, features, parsed, mode)
     coverage = np.clip(data_area / np.where(feature_area > 0, feature_area, 1.0), 0.0, 1.0)
     # A feature wholly on cells with data has coverage 1 exactly, not 1 less the midpoint rule's 1e-6 on
     # projected grids (plane areas of the pieces add up to the feature's to rounding).
-    coverage[data_plane >= shapely.area(geoms) * (1 - 1e-9)] = 1.0
+    coverage[data_plane >= plane_area * (1 - 1e-9)] = 1.0
     faulted = np.zeros(m, dtype=bool)
     faulted[list(faults)] = True
     coverage[faulted] = 0.0
@@ -515,6 +525,14 @@ def _compute_weights(
         weighting=weighting,
         skipped=skipped,
     )
+
+
+def _parts(geoms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Every polygon of the geometries and the index of the geometry it belongs to (shapely.get_parts), without
+    the copy get_parts makes of each geometry when every one is a single non-empty polygon."""
+    if len(geoms) and bool(np.all((shapely.get_type_id(geoms) == 3) & ~shapely.is_empty(geoms))):
+        return geoms, np.arange(len(geoms), dtype=np.int64)
+    return shapely.get_parts(geoms, return_index=True)
 
 
 def _spread(values: np.ndarray, active: np.ndarray, n: int, fill: float) -> np.ndarray:
