@@ -454,32 +454,54 @@ def run_to_file(
     Memory stays flat in the number of features: each batch's rows wait in a spill directory beside ``path``
     until they are encoded in request order (pipeline.run_in_pieces; service.encode.stream, the Stata writer
     and the bundle piece by piece). The bytes are those of run_with_pipeline in every format.
+    :func:`plan_to_file` then :func:`write_planned`, for a caller that lets the request go in between.
     """
-    import shutil
+    planned = plan_to_file(
+        request, registry, settings, fmt, progress=progress, cancelled=cancelled, prepared=prepared
+    )
+    return None if planned is None else write_planned(planned, fmt, path)
 
+
+def plan_to_file(
+    request: IndicatorRequest,
+    registry: StoreRegistry,
+    settings: Settings,
+    fmt: str,
+    *,
+    progress: Callable[[int, int], None],
+    cancelled: Callable[[], bool],
+    prepared: Prepared | None = None,
+) -> Any:
+    """The first half of :func:`run_to_file`: the job's batches planned (pipeline.plan_in_pieces), holding
+    nothing of the request's features but their ids and properties; None where the table is made whole."""
     from service import pipeline
-    from service.encode import FORMATS, provenance_headers
     from service.encode.stream import STREAMED_FORMATS
 
     if fmt not in (*STREAMED_FORMATS, "dta", "bundle") or request.variants or request.events is not None:
         return None
-    store = registry.get_dataset(request.dataset)
+    return pipeline.plan_in_pieces(
+        request,
+        registry.get_dataset(request.dataset),
+        settings,
+        progress=progress,
+        cancelled=cancelled,
+        invalid_features=JOB_INVALID_FEATURES,
+        prepared=prepared,
+        **job_batches(settings),
+    )
+
+
+def write_planned(planned: Any, fmt: str, path: Path) -> tuple[int, str, dict[str, str]]:
+    """The second half of :func:`run_to_file`: compute the planned batches and write the table to ``path``."""
+    import shutil
+
+    from service import pipeline
+    from service.encode import FORMATS, provenance_headers
+
     spill = path.with_name(path.name + ".spill")
     partial = path.with_name(path.name + ".partial")
     try:
-        table = pipeline.run_in_pieces(
-            request,
-            store,
-            settings,
-            spill / "rows",
-            progress=progress,
-            cancelled=cancelled,
-            invalid_features=JOB_INVALID_FEATURES,
-            prepared=prepared,
-            **job_batches(settings),
-        )
-        if table is None:
-            return None
+        table = pipeline.spill_pieces(planned, spill / "rows")
         with open(partial, "wb") as handle:
             write_pieces(handle, fmt, table, spill / "entries")
             handle.flush()
@@ -890,12 +912,17 @@ class JobRunner:
             if prepared is not None:
                 kwargs["prepared"] = prepared
             name = f"{job.id}.{SUFFIXES[job.format]}"
-            written = None
+            planned = None
             if self._run_job is run_with_pipeline:  # written batch by batch where the format allows
+                planned = plan_to_file(request, self.registry, self.settings, job.format, **kwargs)
+            if planned is not None:
+                # The plan holds the features' ids and properties: the request's validated features (about
+                # 2 kB each) and the features kept from the submission are let go before the batches run.
+                del request, prepared, kwargs
                 result = self.results / name
-                written = run_to_file(request, self.registry, self.settings, job.format, result, **kwargs)
-            if written is None:
-                result = None
+                written = write_planned(planned, job.format, result)
+                del planned
+            else:
                 body, media_type, headers = self._run_job(
                     request, self.registry, self.settings, job.format, **kwargs
                 )

@@ -30,9 +30,11 @@ from service.jobs import (
     JobRunner,
     Principal,
     feature_count,
+    plan_to_file,
     request_digest,
     run_to_file,
     run_with_pipeline,
+    write_planned,
 )
 from service.registry import StoreRegistry
 from service.schemas import IndicatorRequest
@@ -251,6 +253,39 @@ def test_a_job_written_batch_by_batch_is_the_whole_table(
         assert path.read_bytes() == expected, fmt
         assert not list(tmp_path.glob("*.spill")) and not list(tmp_path.glob("*.partial"))
     assert done[-1] == (7, 7) and len(done) == 5 * (len(batches) + 1)  # progress per batch
+
+
+def test_a_planned_job_holds_no_feature_of_its_request(
+    tiny_demo: Path, tmp_path: Path, tiny_communities: dict
+) -> None:
+    """Once its batches are planned, a job's run keeps its features' ids and properties alone: the request's
+    validated features (about 2 kB each) are let go for the minutes the batches take, as the worker lets go of
+    its request; the table written from the plan is the whole table's."""
+    import gc
+    import pickle
+
+    from service.schemas.features import GeoJSONFeature
+
+    def alive() -> int:
+        gc.collect()
+        return sum(isinstance(o, GeoJSONFeature) for o in gc.get_objects())
+
+    store = open_store(tiny_demo)
+    registry, settings = StoreRegistry({store.name: store}), Settings(data_dir=tmp_path)
+    before = alive()
+    request = _request(tiny_communities, 7)
+    assert alive() - before == 7
+    # as the worker has them: the weights kept at submission are read back from their pickle
+    kept = pickle.dumps(pipeline.prepare(request, store, settings, invalid_features="skip"))
+    planned = plan_to_file(
+        request, registry, settings, "csv", progress=lambda d, t: None, cancelled=lambda: False,
+        prepared=pickle.loads(kept),
+    )  # fmt: skip
+    expected, _, _ = encode.encode(pipeline.run(request, store, settings, invalid_features="skip"), "csv")
+    del request
+    assert alive() - before <= 1  # a batch's request keeps one feature, as the model wants one
+    size, _, _ = write_planned(planned, "csv", tmp_path / "table.csv")
+    assert (tmp_path / "table.csv").read_bytes() == expected and size == len(expected)
 
 
 def test_a_repeated_submission_with_the_same_key_is_one_job(

@@ -86,14 +86,17 @@ from service.pipeline.files import (  # noqa: F401
 )
 from service.pipeline.seasons import (  # noqa: F401
     PIECE_FEATURES,
+    PiecesRun,
     _batch_run,
     _BatchRun,
     _cells_batches,
     _counted,
     _pieces_in_order,
+    plan_in_pieces,
     prepare,
     run,
     run_in_pieces,
+    spill_pieces,
 )
 from service.pipeline.series import (  # noqa: F401
     SERIES_PIECE_ROWS,

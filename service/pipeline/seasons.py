@@ -152,7 +152,7 @@ def _batch_run(
     computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
     if resolved.aggregation == "cells":
         computed = _cells_batches(
-            batches, store, weights, properties, resolved, span, variables, settings, cancelled
+            batches, store, weights, properties, light, span, variables, settings, cancelled
         )
     else:
         lazy = (
@@ -190,6 +190,68 @@ def _counted(
 PIECE_FEATURES = 1000
 
 
+@dataclass
+class PiecesRun:
+    """A run in pieces once its weights are known, before any batch is computed: the batches to come, the
+    provenance (being taken on a thread of its own: the features' count and hash), and of the features only
+    their ids (in the weights) and properties (in the batches' graphs).
+
+    Neither the request's features (about 2 kB a feature as validated models) nor their parsed shapes are held
+    here (the provenance's thread lets them go when it is done), so a job's run that keeps this for minutes does
+    not keep them (bench/RESULTS.md, "A job's memory").
+    """
+
+    provenance: Alongside[dict[str, Any]]
+    feature_ids: list[str]
+    skipped: list[dict[str, Any]]
+    # warnings made once for the whole run (repaired geometry, skipped features): last, and in every row's notes
+    later: list[dict[str, Any]]
+    computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
+
+
+def plan_in_pieces(
+    request: IndicatorRequest,
+    store: Store,
+    settings: Settings,
+    *,
+    progress: Progress | None = None,
+    cancelled: Cancelled | None = None,
+    batch_size: int = DEFAULT_BATCH_FEATURES,
+    invalid_features: str = "fail",
+    prepared: Prepared | None = None,
+    series_bytes: int | None = None,
+    in_flight: int | None = None,
+) -> PiecesRun | None:
+    """The first half of :func:`run_in_pieces`: resolve, weigh and batch the request, take its provenance; None
+    for a request with events or variants. Nothing is computed until :func:`spill_pieces` reads the batches."""
+    if request.variants or request.events is not None:
+        return None
+    run_ = _batch_run(
+        request,
+        store,
+        settings,
+        progress,
+        cancelled,
+        batch_size,
+        invalid_features,
+        prepared,
+        series_bytes,
+        in_flight,
+    )
+    parsed, skipped = run_.prepared.parsed, run_.prepared.skipped
+    later = [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in parsed.repaired
+    ] + skipped_warnings(skipped)
+    return PiecesRun(
+        provenance=run_.provenance,
+        feature_ids=run_.prepared.weights.feature_ids,
+        skipped=skipped,
+        later=later,
+        computed=run_.computed,
+    )
+
+
 def run_in_pieces(
     request: IndicatorRequest,
     store: Store,
@@ -212,46 +274,45 @@ def run_in_pieces(
     request order, each time they are iterated. The caller encodes them (service.encode.stream, .stata,
     .bundle) and then removes ``spill``. None for a request with events or variants (their runs are made whole:
     use :func:`run`). ``series_bytes`` and ``in_flight`` bound the daily means held at once (a job's smaller
-    batches, fewer of them at a time).
+    batches, fewer of them at a time). :func:`plan_in_pieces` then :func:`spill_pieces`, for a caller that lets
+    the request go in between (a job).
     """
-    if request.variants or request.events is not None:
-        return None
-    run_ = _batch_run(
+    planned = plan_in_pieces(
         request,
         store,
         settings,
-        progress,
-        cancelled,
-        batch_size,
-        invalid_features,
-        prepared,
-        series_bytes,
-        in_flight,
+        progress=progress,
+        cancelled=cancelled,
+        batch_size=batch_size,
+        invalid_features=invalid_features,
+        prepared=prepared,
+        series_bytes=series_bytes,
+        in_flight=in_flight,
     )
-    with run_.provenance:
-        return _spilled_run(run_, spill)
+    return None if planned is None else spill_pieces(planned, spill)
 
 
-def _spilled_run(run_: _BatchRun, spill: Path) -> SeriesTable:
-    """run_in_pieces' rows written to ``spill`` batch by batch as they are computed; the table reading them."""
+def spill_pieces(planned: PiecesRun, spill: Path) -> SeriesTable:
+    """The second half of :func:`run_in_pieces`: compute the planned batches, writing their rows under ``spill``."""
+    with planned.provenance:
+        return _spilled_run(planned, spill)
+
+
+def _spilled_run(planned: PiecesRun, spill: Path) -> SeriesTable:
+    """spill_pieces' rows written to ``spill`` batch by batch as they are computed; the table reading them."""
     import pickle
 
-    prepared = run_.prepared
-    parsed, weights = prepared.parsed, prepared.weights
-    later = [
-        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
-        for feature_id in parsed.repaired
-    ] + skipped_warnings(prepared.skipped)
-    position = {fid: i for i, fid in enumerate(weights.feature_ids)}
+    later, skipped = planned.later, planned.skipped
+    position = {fid: i for i, fid in enumerate(planned.feature_ids)}
     spill.mkdir(parents=True, exist_ok=True)
     columns: list[str] | None = None
     warnings: list[dict[str, Any]] = []
     paths = {}
-    for k, (frame, batch_warnings) in run_.computed:
+    for k, (frame, batch_warnings) in planned.computed:
         at = frame["feature_id"].map(position).to_numpy()
         order = np.argsort(at, kind="stable")
         frame, at = frame.iloc[order].reset_index(drop=True), at[order]
-        frame, batch_warnings = _without_skipped(frame, batch_warnings, prepared.skipped)
+        frame, batch_warnings = _without_skipped(frame, batch_warnings, skipped)
         frame = add_warning_notes(frame, later)
         columns = columns or [str(c) for c in frame.columns]
         warnings.extend(batch_warnings)
@@ -262,12 +323,12 @@ def _spilled_run(run_: _BatchRun, spill: Path) -> SeriesTable:
             for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(frame)], strict=True):
                 if hi > lo:
                     pickle.dump((int(piece[lo]), at[lo:hi], frame.iloc[lo:hi]), handle, protocol=5)
-    warnings = _warnings_in_order(warnings, weights.feature_ids)
+    warnings = _warnings_in_order(warnings, planned.feature_ids)
     warnings.extend(later)
-    n_pieces = -(-len(weights.feature_ids) // PIECE_FEATURES)
+    n_pieces = -(-len(planned.feature_ids) // PIECE_FEATURES)
     return SeriesTable(
         columns=columns or [],
-        provenance=run_.provenance.value(),
+        provenance=planned.provenance.value(),
         warnings=warnings,
         frames=_Spilled([paths[k] for k in sorted(paths)], n_pieces),
     )
