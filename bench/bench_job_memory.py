@@ -107,9 +107,10 @@ def main() -> None:
     def ignore(done: int, total: int) -> None:
         return None
 
+    # around the tile cache, as jobs.plan_to_file reads
     planned = pipeline.plan_in_pieces(
         request, store, settings, progress=ignore, cancelled=lambda: False,
-        invalid_features=jobs.JOB_INVALID_FEATURES, prepared=prepared, **batches,
+        invalid_features=jobs.JOB_INVALID_FEATURES, prepared=prepared, cached=False, **batches,
     )  # fmt: skip
     assert planned is not None
     request = prepared = None  # as the job worker lets them go (service/jobs.py, JobRunner._run)

@@ -487,6 +487,9 @@ def plan_to_file(
         cancelled=cancelled,
         invalid_features=JOB_INVALID_FEATURES,
         prepared=prepared,
+        # one pass over many chunks: kept in the decoded-tile cache they would fill it (192 MB of a server's
+        # memory) and push out the chunks on-demand requests reuse
+        cached=False,
         **job_batches(settings),
     )
 

@@ -288,6 +288,33 @@ def test_a_planned_job_holds_no_feature_of_its_request(
     assert (tmp_path / "table.csv").read_bytes() == expected and size == len(expected)
 
 
+def test_a_job_reads_around_the_tile_cache(tiny_demo: Path, tmp_path: Path, tiny_communities: dict) -> None:
+    """A job's one pass over its chunks neither fills the server's decoded-tile cache nor takes from it (the
+    cache is for on-demand requests that come back to the same cells); its table is the same."""
+    from service.store.chunks import configure_tile_cache, tile_cache
+
+    budget = tile_cache().max_bytes
+    configure_tile_cache(1 << 24)
+    try:
+        store = open_store(tiny_demo)  # its chunk readers share the cache
+        registry, settings = StoreRegistry({store.name: store}), Settings(data_dir=tmp_path)
+        request = _request(tiny_communities, 4)
+        before = (tile_cache().nbytes, tile_cache().hits, tile_cache().misses)
+        run_to_file(
+            request, registry, settings, "csv", tmp_path / "table.csv", progress=lambda d, t: None,
+            cancelled=lambda: False,
+        )  # fmt: skip
+        assert (tile_cache().nbytes, tile_cache().hits, tile_cache().misses) == before
+        whole = pipeline.run(
+            request, store, settings, invalid_features="skip"
+        )  # on demand: through the cache
+        assert tile_cache().nbytes > before[0]
+    finally:
+        configure_tile_cache(0)
+        configure_tile_cache(budget)
+    assert (tmp_path / "table.csv").read_bytes() == encode.encode(whole, "csv")[0]
+
+
 def test_a_repeated_submission_with_the_same_key_is_one_job(
     runner: JobRunner, tiny_communities: dict
 ) -> None:

@@ -446,14 +446,16 @@ def lazy_batch_table(
     resolved: IndicatorRequest,
     span: slice,
     variables: tuple[str, ...],
+    cached: bool = True,
 ) -> Any:
     """One feature batch as a dask graph ending in one task that returns its table: (frame, warnings).
 
     The chunk tasks and the reduction are the aggregation's (service.aggregate); the last task takes the
     batch's daily means, snaps them, computes the indicator table and adds the feature columns. On a cluster
-    that runs on a worker, so the daily series never travel to the server.
+    that runs on a worker, so the daily series never travel to the server. ``cached`` False reads the chunks
+    around the decoded-tile cache (a job's one pass: the same values).
     """
-    return _lazy_batch(batch_table, store, weights, rows, properties, resolved, span, variables)
+    return _lazy_batch(batch_table, store, weights, rows, properties, resolved, span, variables, cached)
 
 
 def _lazy_batch(
@@ -465,12 +467,13 @@ def _lazy_batch(
     what: Any,
     span: slice,
     variables: tuple[str, ...],
+    cached: bool = True,
 ) -> Any:
     """A feature batch's aggregation as a dask graph ending in one task, ``last``, that computes what the batch
     returns (``what``: the resolved request, or the batch jobs) from its daily means."""
     batch = take_weights(weights, rows)
     # one task per variable finishes its whole series into one array (no per-block arrays joined by dask)
-    arrays = lazy_series(store, batch, variables=variables, time=span)
+    arrays = lazy_series(store, batch, variables=variables, time=span, cached=cached)
     by_id = _feature_frame(batch, np.arange(len(rows)))
     # a key of its own: two runs with the same features but other indicators must not share a table
     token = f"wxshock-table-{uuid.uuid4().hex}"

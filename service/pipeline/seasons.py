@@ -127,11 +127,13 @@ def _batch_run(
     prepared: Prepared | None,
     series_bytes: int | None = None,
     in_flight: int | None = None,
+    cached: bool = True,
 ) -> _BatchRun:
     """The common part of :func:`run` and :func:`run_in_pieces`: resolve, weigh, batch, compute lazily.
 
     ``series_bytes`` caps a batch's daily means (float64 bytes) below the on-demand budget and ``in_flight``
-    the batches computed at once (None: service.cluster's default), for a job's flat memory.
+    the batches computed at once (None: service.cluster's default), for a job's flat memory; ``cached`` False
+    reads the chunks around the decoded-tile cache (series batches; a job's one pass would only fill it).
     """
     resolved = resolve_request(request, store.dates, store.calendar, store.variables)
     _check_years((resolved.years.start, resolved.years.end), settings)
@@ -156,7 +158,12 @@ def _batch_run(
         )
     else:
         lazy = (
-            (k, lazy_batch_table(store, weights, rows, [properties[i] for i in rows], light, span, variables))
+            (
+                k,
+                lazy_batch_table(
+                    store, weights, rows, [properties[i] for i in rows], light, span, variables, cached
+                ),
+            )
             for k, rows in enumerate(batches)
         )
         # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
@@ -221,6 +228,7 @@ def plan_in_pieces(
     prepared: Prepared | None = None,
     series_bytes: int | None = None,
     in_flight: int | None = None,
+    cached: bool = True,
 ) -> PiecesRun | None:
     """The first half of :func:`run_in_pieces`: resolve, weigh and batch the request, take its provenance; None
     for a request with events or variants. Nothing is computed until :func:`spill_pieces` reads the batches."""
@@ -237,6 +245,7 @@ def plan_in_pieces(
         prepared,
         series_bytes,
         in_flight,
+        cached,
     )
     parsed, skipped = run_.prepared.parsed, run_.prepared.skipped
     later = [
@@ -265,6 +274,7 @@ def run_in_pieces(
     prepared: Prepared | None = None,
     series_bytes: int | None = None,
     in_flight: int | None = None,
+    cached: bool = True,
 ) -> SeriesTable | None:
     """The table of :func:`run`, row for row, made batch by batch: memory flat in the number of features.
 
@@ -274,8 +284,8 @@ def run_in_pieces(
     request order, each time they are iterated. The caller encodes them (service.encode.stream, .stata,
     .bundle) and then removes ``spill``. None for a request with events or variants (their runs are made whole:
     use :func:`run`). ``series_bytes`` and ``in_flight`` bound the daily means held at once (a job's smaller
-    batches, fewer of them at a time). :func:`plan_in_pieces` then :func:`spill_pieces`, for a caller that lets
-    the request go in between (a job).
+    batches, fewer of them at a time); ``cached`` False reads around the decoded-tile cache (a job's one pass).
+    :func:`plan_in_pieces` then :func:`spill_pieces`, for a caller that lets the request go in between (a job).
     """
     planned = plan_in_pieces(
         request,
@@ -288,6 +298,7 @@ def run_in_pieces(
         prepared=prepared,
         series_bytes=series_bytes,
         in_flight=in_flight,
+        cached=cached,
     )
     return None if planned is None else spill_pieces(planned, spill)
 
