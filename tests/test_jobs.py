@@ -294,6 +294,7 @@ def test_a_job_reads_around_the_tile_cache(tiny_demo: Path, tmp_path: Path, tiny
     from service.store.chunks import configure_tile_cache, tile_cache
 
     budget = tile_cache().max_bytes
+    configure_tile_cache(0)  # emptied: earlier tests may have left chunks in the shared cache
     configure_tile_cache(1 << 24)
     try:
         store = open_store(tiny_demo)  # its chunk readers share the cache
