@@ -22,7 +22,9 @@ from service.indicators.table import (
 from service.pipeline.cells import cells_table
 from service.pipeline.checks import _dry_run, _prepare_resolved, _without_skipped
 from service.pipeline.core import (
+    BATCH_SERIES_BYTES,
     DEFAULT_BATCH_FEATURES,
+    LOCAL_BATCH_SERIES_BYTES,
     Alongside,
     Cancelled,
     Progress,
@@ -149,7 +151,10 @@ def _batch_run(
     if series_bytes is not None:
         per_feature = max(1, span.stop - span.start) * max(1, len(variables)) * 8
         batch_size = min(batch_size, max(1, series_bytes // per_feature))
-    batches = feature_batches(weights, batch_size_for(batch_size, span, variables))
+    cap = BATCH_SERIES_BYTES
+    if in_flight is None and not (settings.scheduler or "").strip():
+        in_flight, cap = 1, LOCAL_BATCH_SERIES_BYTES  # on local threads: one batch at a time, twice the size
+    batches = feature_batches(weights, batch_size_for(batch_size, span, variables, cap))
     light = _without_features(resolved)
     computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
     if resolved.aggregation == "cells":
