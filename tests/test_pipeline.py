@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import io
 import json
-import threading
-import time
 from pathlib import Path
 from typing import Any
 
@@ -249,84 +247,3 @@ def test_provenance_gives_both_digests_of_the_resolved_request(
     prov = example_result.provenance
     assert prov["request_hash"] == request_hash(resolved, store.fingerprint)
     assert prov["request"]["features"]["sha256"] == request_text.features_sha256(resolved)
-
-
-def _provenance_threads() -> list[threading.Thread]:
-    """Threads still making a provenance (service.pipeline.core.Alongside)."""
-    return [t for t in threading.enumerate() if t.name == "wxshock-provenance"]
-
-
-def test_provenance_is_made_while_the_batches_run(
-    store, settings, tiny_communities, example_result, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    from service.pipeline import core, seasons
-
-    begun, made, table = threading.Event(), seasons.provenance, core.batch_table
-    waited: list[bool] = []
-
-    def provenance(*args: Any) -> dict[str, Any]:
-        begun.set()
-        return made(*args)
-
-    def batch_table(*args: Any) -> Any:
-        # made after the batches (as before), the provenance would not begin while a batch's table waits here
-        waited.append(begun.wait(timeout=10))
-        return table(*args)
-
-    monkeypatch.setattr(seasons, "provenance", provenance)
-    monkeypatch.setattr(core, "batch_table", batch_table)
-    request = validate_request(IndicatorRequest, example_request(tiny_communities))
-    result = run(request, store, settings, batch_size=25)
-    assert waited == [True, True, True]
-    assert result.provenance == example_result.provenance
-
-
-def test_a_cancelled_or_failing_run_raises_its_own_error_and_leaves_no_provenance_thread(
-    store, settings, tiny_communities, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    from service.errors import RunCancelledError
-    from service.pipeline import core, run_in_pieces, seasons
-
-    made = seasons.provenance
-
-    def slow(*args: Any) -> dict[str, Any]:
-        time.sleep(0.5)
-        return made(*args)
-
-    monkeypatch.setattr(seasons, "provenance", slow)
-    request = validate_request(IndicatorRequest, {**example_request(tiny_communities), "lags": [0]})
-    done: list[int] = []
-    with pytest.raises(RunCancelledError, match="cancelled after"):
-        run_in_pieces(
-            request,
-            store,
-            settings,
-            tmp_path / "spill",
-            batch_size=10,
-            in_flight=1,
-            progress=lambda d, _: done.append(d),
-            cancelled=lambda: len(done) > 1,
-        )
-    assert _provenance_threads() == []
-
-    def broken(*args: Any) -> Any:
-        raise RuntimeError("a batch table failed")
-
-    monkeypatch.setattr(core, "batch_table", broken)
-    with pytest.raises(RuntimeError, match="a batch table failed"):
-        run(request, store, settings)
-    assert _provenance_threads() == []
-
-
-def test_an_error_of_the_provenance_is_the_run_s_error(
-    store, settings, tiny_communities, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    from service.pipeline import seasons
-
-    def broken(*args: Any) -> Any:
-        raise ValueError("provenance failed")
-
-    monkeypatch.setattr(seasons, "provenance", broken)
-    request = validate_request(IndicatorRequest, {**example_request(tiny_communities), "lags": [0]})
-    with pytest.raises(ValueError, match="provenance failed"):
-        run(request, store, settings)

@@ -1,12 +1,10 @@
 """Shared pieces of the pipeline: stores, provenance, weights, feature batches, batch tables."""
 
 import hashlib
-import threading
 import uuid
 from collections.abc import Callable, Mapping, Sequence
-from concurrent.futures import Future
 from dataclasses import dataclass, fields, replace
-from typing import Any, Generic, TypeVar
+from typing import Any
 
 import dask
 import numpy as np
@@ -39,8 +37,6 @@ Progress = Callable[[int, int], None]
 
 
 Cancelled = Callable[[], bool]
-
-T = TypeVar("T")
 
 
 # Features per aggregation batch at most: with BATCH_SERIES_BYTES (long records get fewer) this bounds memory,
@@ -106,39 +102,6 @@ def provenance(
         # what was computed, in words (a resolved request only: an unresolved one has no choices to state)
         document["methods"] = methods_statement(resolved, snap_places(store, needed_variables(resolved)))
     return document
-
-
-class Alongside(Generic[T]):
-    """``work()`` on a thread of its own, started at once, while the caller computes its batches.
-
-    A run's provenance hashes every feature's JSON (about 0.3 CPU-s for 5,000 villages) and needs none of the
-    batches, so it runs while they are computed rather than after the last one. :meth:`value` waits for it and
-    returns its value or raises its error, where the run would have computed it. Used as a context manager,
-    the thread is joined on the way out whatever happens, so a run that fails or is cancelled raises its own
-    error and leaves no work behind.
-    """
-
-    def __init__(self, work: Callable[[], T], name: str = "wxshock-provenance") -> None:
-        self._done: Future[T] = Future()
-        self._thread = threading.Thread(target=self._run, args=(work,), name=name, daemon=True)
-        self._thread.start()
-
-    def _run(self, work: Callable[[], T]) -> None:
-        """Run ``work`` and keep its value or its error."""
-        try:
-            self._done.set_result(work())
-        except BaseException as exc:  # noqa: BLE001 - kept and raised by value(), in the caller's thread
-            self._done.set_exception(exc)
-
-    def value(self) -> T:
-        """The work's value, once it is done; its error raised here."""
-        return self._done.result()
-
-    def __enter__(self) -> "Alongside[T]":
-        return self
-
-    def __exit__(self, *exc_info: object) -> None:
-        self._thread.join()
 
 
 def snap_places(store: Store, variables: tuple[str, ...]) -> dict[str, int]:

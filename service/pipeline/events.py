@@ -24,7 +24,6 @@ from service.indicators.windows import ResolvedEvents, compute_event_table, reso
 from service.pipeline.checks import _prepare_resolved, _without_skipped
 from service.pipeline.core import (
     DEFAULT_BATCH_FEATURES,
-    Alongside,
     BatchJob,
     Cancelled,
     Progress,
@@ -191,26 +190,19 @@ def run_events(
             job, events_of[k] = _events_job(resolved, light, rows, len(weights.feature_ids))
             yield k, lazy_batch_tables(store, weights, rows, [None] * rows.size, [job], span, variables)
 
-    def event_provenance() -> dict[str, Any]:
-        document = provenance(resolved.request, store, parsed, prepared.skipped)
-        document["request"] = _event_summary(document["request"], resolved.request)
-        return document
-
     parts: dict[int, tuple[pd.DataFrame, list[dict[str, Any]]]] = {}
     done = 0
     if progress is not None:
         progress(0, total)
     # as run: each batch's aggregation and its event table run where the chunks are read; only the table
-    # comes back, batches finish in any order and are put in order below; the provenance is made meanwhile
-    with Alongside(event_provenance) as aside:
-        for k, (part,) in cluster.compute_each(lazy(), settings=settings, cancelled=cancelled):
-            parts[k] = part
-            done += batches[k].size
-            if progress is not None:
-                progress(done, total)
-        if len(parts) < len(batches):
-            raise RunCancelledError(f"cancelled after {done} of {total} features")
-        document = aside.value()
+    # comes back, batches finish in any order and are put in order below
+    for k, (part,) in cluster.compute_each(lazy(), settings=settings, cancelled=cancelled):
+        parts[k] = part
+        done += batches[k].size
+        if progress is not None:
+            progress(done, total)
+    if len(parts) < len(batches):
+        raise RunCancelledError(f"cancelled after {done} of {total} features")
     frames = [parts[k][0] for k in range(len(batches))]
     orders = [_row_order(parts[k][0], events_of[k]) for k in range(len(batches))]
     warnings = [w for k in range(len(batches)) for w in parts[k][1]]
@@ -224,4 +216,6 @@ def run_events(
     ] + skipped_warnings(prepared.skipped)
     warnings.extend(later)
     frame = add_warning_notes(frame, later)
+    document = provenance(resolved.request, store, parsed, prepared.skipped)
+    document["request"] = _event_summary(document["request"], resolved.request)
     return RunResult(frame=frame, provenance=document, warnings=warnings)

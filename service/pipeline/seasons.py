@@ -25,7 +25,6 @@ from service.pipeline.core import (
     BATCH_SERIES_BYTES,
     DEFAULT_BATCH_FEATURES,
     LOCAL_BATCH_SERIES_BYTES,
-    Alongside,
     Cancelled,
     Progress,
     _check_years,
@@ -87,9 +86,7 @@ def run(
     run_ = _batch_run(request, store, settings, progress, cancelled, batch_size, invalid_features, prepared)
     prepared, batches = run_.prepared, run_.batches
     parsed, weights = prepared.parsed, prepared.weights
-    with run_.provenance:
-        parts = dict(run_.computed)
-        document = run_.provenance.value()
+    parts = dict(run_.computed)
     frames = [parts[k][0] for k in range(len(batches))]
     warnings = [w for k in range(len(batches)) for w in parts[k][1]]
     frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
@@ -101,7 +98,7 @@ def run(
     ] + skipped_warnings(prepared.skipped)
     warnings.extend(later)
     frame = add_warning_notes(frame, later)  # notes last, with the codes of the warnings made here
-    return RunResult(frame=frame, provenance=document, warnings=warnings)
+    return RunResult(frame=frame, provenance=run_.provenance, warnings=warnings)
 
 
 @dataclass
@@ -111,8 +108,8 @@ class _BatchRun:
     resolved: IndicatorRequest
     prepared: Prepared
     batches: list[np.ndarray]
-    # the run's provenance, computed on a thread of its own while the batches are (join it: ``with``)
-    provenance: Alongside[dict[str, Any]]
+    # the run's provenance (the features' count and hash), taken before the first batch
+    provenance: dict[str, Any]
     # (batch number, (frame, warnings)) in the order batches finish; raises RunCancelledError at the end when
     # cancelled before every batch was computed
     computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
@@ -174,8 +171,9 @@ def _batch_run(
         # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
         # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order later.
         computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled, in_flight=in_flight)
-    # started just before the first batch: nothing below waits for it until the last batch is in
-    document = Alongside(lambda: provenance(resolved, store, parsed, prepared.skipped))
+    # Taken before the batches, on this thread: on a thread of its own beside the chunk tasks it did not hide
+    # behind them (its hashing holds the GIL, which every chunk task needs back after each compiled kernel).
+    document = provenance(resolved, store, parsed, prepared.skipped)
     return _BatchRun(
         resolved, prepared, batches, document, _counted(computed, batches, len(parsed.features), progress)
     )
@@ -205,15 +203,14 @@ PIECE_FEATURES = 1000
 @dataclass
 class PiecesRun:
     """A run in pieces once its weights are known, before any batch is computed: the batches to come, the
-    provenance (being taken on a thread of its own: the features' count and hash), and of the features only
-    their ids (in the weights) and properties (in the batches' graphs).
+    provenance (with the features' count and hash), and of the features only their ids (in the weights) and
+    properties (in the batches' graphs).
 
     Neither the request's features (about 2 kB a feature as validated models) nor their parsed shapes are held
-    here (the provenance's thread lets them go when it is done), so a job's run that keeps this for minutes does
-    not keep them (bench/RESULTS.md, "A job's memory").
+    here, so a job's run that keeps this for minutes does not keep them (bench/RESULTS.md, "A job's memory").
     """
 
-    provenance: Alongside[dict[str, Any]]
+    provenance: dict[str, Any]
     feature_ids: list[str]
     skipped: list[dict[str, Any]]
     # warnings made once for the whole run (repaired geometry, skipped features): last, and in every row's notes
@@ -309,13 +306,8 @@ def run_in_pieces(
 
 
 def spill_pieces(planned: PiecesRun, spill: Path) -> SeriesTable:
-    """The second half of :func:`run_in_pieces`: compute the planned batches, writing their rows under ``spill``."""
-    with planned.provenance:
-        return _spilled_run(planned, spill)
-
-
-def _spilled_run(planned: PiecesRun, spill: Path) -> SeriesTable:
-    """spill_pieces' rows written to ``spill`` batch by batch as they are computed; the table reading them."""
+    """The second half of :func:`run_in_pieces`: compute the planned batches, writing their rows under ``spill``
+    batch by batch as they are computed; the table reading them."""
     import pickle
 
     later, skipped = planned.later, planned.skipped
@@ -344,7 +336,7 @@ def _spilled_run(planned: PiecesRun, spill: Path) -> SeriesTable:
     n_pieces = -(-len(planned.feature_ids) // PIECE_FEATURES)
     return SeriesTable(
         columns=columns or [],
-        provenance=planned.provenance.value(),
+        provenance=planned.provenance,
         warnings=warnings,
         frames=_Spilled([paths[k] for k in sorted(paths)], n_pieces),
     )

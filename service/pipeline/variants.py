@@ -29,7 +29,6 @@ from service.pipeline.cells import cells_table
 from service.pipeline.checks import _dry_run, _without_skipped
 from service.pipeline.core import (
     DEFAULT_BATCH_FEATURES,
-    Alongside,
     BatchJob,
     Cancelled,
     Progress,
@@ -277,19 +276,16 @@ def run_variants(
     if progress is not None:
         progress(0, total)
     properties = [f.properties for f in parsed.features]
-    # every variant is resolved: the provenance is made while the batches are computed
-    with Alongside(lambda: _variants_provenance(request, runs, parsed, store)) as aside:
-        for members, group_weights, span, variables, batches in work:
-            if members[0].final.aggregation == "cells":
-                _cells_variants(members, group_weights, batches, properties, span, settings, cancelled, step)
-            else:
-                _shared_variants(
-                    members, group_weights, batches, properties, span, variables, settings, cancelled, step
-                )
-            if cancelled is not None and cancelled():
-                raise RunCancelledError(f"cancelled after {count[0]} of {total} feature computations")
-        document = aside.value()
-    return _combine_variants(request, runs, parsed, document)
+    for members, group_weights, span, variables, batches in work:
+        if members[0].final.aggregation == "cells":
+            _cells_variants(members, group_weights, batches, properties, span, settings, cancelled, step)
+        else:
+            _shared_variants(
+                members, group_weights, batches, properties, span, variables, settings, cancelled, step
+            )
+        if cancelled is not None and cancelled():
+            raise RunCancelledError(f"cancelled after {count[0]} of {total} feature computations")
+    return _combine_variants(request, runs, parsed, store)
 
 
 def _group_span(members: list[_VariantRun]) -> tuple[slice, tuple[str, ...]]:
@@ -415,9 +411,9 @@ def _variant_frame(run_: _VariantRun, parsed: ParsedFeatures) -> tuple[pd.DataFr
 
 
 def _combine_variants(
-    request: IndicatorRequest, runs: list[_VariantRun], parsed: ParsedFeatures, document: dict[str, Any]
+    request: IndicatorRequest, runs: list[_VariantRun], parsed: ParsedFeatures, store: Store
 ) -> RunResult:
-    """One table for every variant, with their provenance ``document`` (:func:`_variants_provenance`)."""
+    """One table and one provenance for every variant."""
     parts = [_variant_frame(r, parsed) for r in runs]
     keys = ["event_id", "feature_id", "date"] if request.events is not None else ["feature_id", "year"]
     warnings = [w for _, part_warnings in parts for w in part_warnings]
@@ -431,7 +427,9 @@ def _combine_variants(
         frame = pd.concat(frames, ignore_index=True)
     else:
         frame = _wide_variants(runs, [p[0] for p in parts], keys, parsed, request.events is not None)
-    return RunResult(frame=frame, provenance=document, warnings=warnings)
+    return RunResult(
+        frame=frame, provenance=_variants_provenance(request, runs, parsed, store), warnings=warnings
+    )
 
 
 def _wide_variants(
