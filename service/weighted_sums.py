@@ -25,7 +25,6 @@ TILE_DAYS = 4096
 
 # names of the compiled loops (service.jit)
 KERNEL = "weighted_sums.chunk"
-ADD_ROWS = "weighted_sums.add_rows"
 PUT_ROWS = "weighted_sums.put_rows"
 SCALE_ROWS = "weighted_sums.scale_rows"
 
@@ -88,15 +87,6 @@ def _kernel_source(
     return sums, correction
 
 
-def _add_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
-    """out[rows[r], :] += values[r, :] for each r (the rows distinct, as numpy's ``out[rows] += values`` needs)."""
-    for r in range(rows.size):
-        target = out[rows[r]]
-        source = values[r]
-        for t in range(target.size):
-            target[t] += source[t]
-
-
 def _put_rows_source(out: np.ndarray, rows: np.ndarray, values: np.ndarray, started: np.ndarray) -> None:
     """out[rows[r], :] = 0.0 + values[r, :] for a row not started yet, += for one that is; marks rows started."""
     for r in range(rows.size):
@@ -148,12 +138,10 @@ def scale_rows(out: np.ndarray, factor: np.ndarray, offset: float) -> None:
 
 def add_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
     """Add each row of ``values`` (rows, days) float64 into ``out[rows]`` (a (features, days) float64 array or a
-    view of one; ``rows`` distinct): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the temporary sum,
-    each element getting the same single addition (so the same bits)."""
-    if values.size:
-        jit.compiled(ADD_ROWS, _add_rows_source)(
-            out, np.asarray(rows, dtype=np.int64), np.ascontiguousarray(values, dtype=np.float64)
-        )
+    view of one; ``rows`` distinct): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the
+    temporary sum, each element getting the same single addition (so the same bits). put_rows with every row
+    started."""
+    put_rows(out, rows, values, np.ones(out.shape[0], dtype=np.bool_))
 
 
 def chunk_weighted_sums(
@@ -225,8 +213,6 @@ def warm_up() -> None:
     tile.flags.writeable = False
     chunk_weighted_sums(one, cell, rows, 0.1, tile, int(np.iinfo(np.int16).min))
     out = np.zeros((2, 4))
-    add_rows(out, np.array([1]), np.ones((1, 4)))
-    add_rows(out[:, 1:3], np.array([1]), np.ones((1, 2)))
     started = np.zeros(2, dtype=np.bool_)
     for view in (out, out[:, 1:3]):
         put_rows(view, np.array([1]), np.ones((1, view.shape[1])), started)

@@ -169,7 +169,7 @@ def test_warm_up_loads_the_kernel_for_writable_and_read_only_chunks() -> None:
 
     weighted_sums.warm_up()
     kernel = jit.loaded(weighted_sums.KERNEL)
-    assert kernel is not None and jit.loaded(weighted_sums.ADD_ROWS) is not None
+    assert kernel is not None and jit.loaded(weighted_sums.PUT_ROWS) is not None
     readonly = [sig for sig in kernel.signatures if not sig[4].mutable]
     assert readonly and len(kernel.signatures) >= 2
 

@@ -20,8 +20,6 @@ import numpy as np
 
 from service import jit
 
-_HALF_PI = np.pi / 2.0
-
 
 def _sines_source(
     tmax: np.ndarray,
