@@ -138,21 +138,15 @@ def decode_chunks(
 
     Each chunk is decoded into a fresh array (the issue's measure), or with ``reuse`` into one array per thread
     and shape, reused."""
-    import threading
-
     import numpy as np
     from numcodecs import Blosc
 
-    scratch = threading.local()
+    from service.store.chunks import scratch_array
 
     def output(reader: Any) -> np.ndarray:
-        if not reuse:
-            return np.empty(reader.inner_shape, dtype=reader.dtype)
-        kept = scratch.__dict__.setdefault("arrays", {})
-        key = (reader.inner_shape, reader.dtype)
-        if key not in kept:
-            kept[key] = np.empty(reader.inner_shape, dtype=reader.dtype)
-        return kept[key]
+        if reuse:
+            return scratch_array(reader.inner_shape, reader.dtype)
+        return np.empty(reader.inner_shape, dtype=reader.dtype)
 
     def one(item: tuple[str, tuple]) -> tuple[int, int]:
         var, coords = item

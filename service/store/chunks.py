@@ -37,6 +37,15 @@ _TOKENS = itertools.count()
 _SCRATCH = threading.local()
 
 
+def scratch_array(shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
+    """This thread's scratch array of ``shape`` and ``dtype`` (uninitialised; the same array at every call)."""
+    arrays = _SCRATCH.__dict__.setdefault("arrays", {})
+    key = (tuple(shape), np.dtype(dtype))
+    if key not in arrays:
+        arrays[key] = np.empty(shape, dtype=dtype)
+    return arrays[key]
+
+
 class TileCache:
     """Decoded chunks kept in memory, least recently used first out, up to ``max_bytes``; thread-safe.
 
@@ -237,16 +246,9 @@ class ChunkReader:
         ``scratch``: decoded into this thread's scratch chunk of that shape, valid until its next scratch read."""
         if data is None:
             return np.full(self.inner_shape, self.fill_value, dtype=self.dtype)
-        out = None
-        if scratch:
-            tiles = getattr(_SCRATCH, "tiles", None)
-            if tiles is None:
-                tiles = _SCRATCH.tiles = {}
-            out = tiles.get((self.inner_shape, self.dtype))
-            if out is None:
-                out = tiles[(self.inner_shape, self.dtype)] = np.empty(self.inner_shape, dtype=self.dtype)
-        else:
-            out = np.empty(self.inner_shape, dtype=self.dtype)
+        out = (
+            scratch_array(self.inner_shape, self.dtype) if scratch else np.empty(self.inner_shape, self.dtype)
+        )
         self._codec.decode(data, out=out)
         return out
 
