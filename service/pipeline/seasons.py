@@ -145,12 +145,12 @@ def _batch_run(
     # a fixed baseline may lie after the requested years: read up to whichever ends later
     span = time_span(store, max(resolved.years.end, getattr(resolved.baseline, "end", resolved.years.end)))
     properties = [f.properties for f in parsed.features]
+    local = in_flight is None and not (settings.scheduler or "").strip()
+    if local:
+        in_flight = 1  # on local threads: one batch at a time, twice the size
+    cap = LOCAL_BATCH_SERIES_BYTES if local else BATCH_SERIES_BYTES
     if series_bytes is not None:
-        per_feature = max(1, span.stop - span.start) * max(1, len(variables)) * 8
-        batch_size = min(batch_size, max(1, series_bytes // per_feature))
-    cap = BATCH_SERIES_BYTES
-    if in_flight is None and not (settings.scheduler or "").strip():
-        in_flight, cap = 1, LOCAL_BATCH_SERIES_BYTES  # on local threads: one batch at a time, twice the size
+        cap = min(cap, series_bytes)
     batches = feature_batches(weights, batch_size_for(batch_size, span, variables, cap))
     light = _without_features(resolved)
     computed: Iterator[tuple[int, tuple[pd.DataFrame, list[dict[str, Any]]]]]
