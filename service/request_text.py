@@ -294,8 +294,22 @@ def canonical_chunks(model: BaseModel, *, exclude_unset: bool = False) -> Iterat
     Written feature by feature. With ``exclude_unset`` only the fields the sender gave are written (what a
     stored job re-validates from, so that it resolves exactly as the request sent).
     """
+    yield from _request_pieces(model, _feature_pieces(model, exclude_unset), exclude_unset=exclude_unset)
+
+
+def _request_pieces(
+    model: BaseModel,
+    features: Iterator[str | bytes],
+    around: dict[str, Any] | None = None,
+    key: str = "request",
+    *,
+    exclude_unset: bool = False,
+) -> Iterator[Any]:
+    """The request's canonical JSON in pieces, ``features`` (its features' pieces) in their place; held by
+    ``around`` under ``key`` when given."""
     head = _canonical({**_dump(model, exclude_unset, {"features"}), "features": _SLOT})
-    yield from _around(head, _feature_pieces(model, exclude_unset))
+    pieces = _around(head, features)
+    return pieces if around is None else _around(_canonical({**around, key: _SLOT}), pieces, key)
 
 
 def canonical_text(model: BaseModel, *, exclude_unset: bool = False) -> str:
@@ -303,11 +317,11 @@ def canonical_text(model: BaseModel, *, exclude_unset: bool = False) -> str:
     return "".join(canonical_chunks(model, exclude_unset=exclude_unset))
 
 
-def _sha256(pieces: Iterator[str]) -> str:
-    """SHA-256 (hex) of the UTF-8 of the pieces joined."""
+def _sha256(pieces: Iterator[str | bytes]) -> str:
+    """SHA-256 (hex) of the pieces joined (text as UTF-8)."""
     digest = hashlib.sha256()
     for piece in pieces:
-        digest.update(piece.encode("utf-8"))
+        digest.update(piece if isinstance(piece, bytes) else piece.encode("utf-8"))
     return digest.hexdigest()
 
 
@@ -318,10 +332,7 @@ def features_sha256(model: BaseModel) -> str:
 
 def canonical_sha256(model: BaseModel, around: dict[str, Any] | None = None, key: str = "request") -> str:
     """SHA-256 (hex) of the request's canonical JSON, or of ``around`` holding it under ``key``."""
-    pieces = canonical_chunks(model)
-    if around is not None:
-        pieces = _around(_canonical({**around, key: _SLOT}), pieces, key)
-    return _sha256(pieces)
+    return _sha256(_request_pieces(model, _feature_pieces(model, False), around, key))
 
 
 def request_digests(
@@ -341,14 +352,8 @@ def request_digests(
             features.update(data)
             yield data
 
-    head = _canonical({**_dump(model, False, {"features"}), "features": _SLOT})
-    pieces: Iterator[str | bytes] = _around(head, feature_pieces())
-    if around is not None:
-        pieces = _around(_canonical({**around, key: _SLOT}), pieces, key)
-    request = hashlib.sha256()
-    for piece in pieces:
-        request.update(piece if isinstance(piece, bytes) else piece.encode("utf-8"))
-    return features.hexdigest(), request.hexdigest()
+    request = _sha256(_request_pieces(model, feature_pieces(), around, key))
+    return features.hexdigest(), request
 
 
 def features_as_dict(model: BaseModel) -> dict[str, Any]:
