@@ -15,9 +15,10 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
+import queue
 import threading
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+from concurrent.futures import Future, ThreadPoolExecutor
 from typing import TYPE_CHECKING, Any
 
 import dask
@@ -132,19 +133,22 @@ def compute_each(
     settings: Settings,
     in_flight: int | None = None,
     cancelled: Callable[[], bool] | None = None,
+    overlap_tails: bool = False,
 ) -> Iterator[tuple[Any, Any]]:
     """Compute many independent collections, a few at a time; yield (key, value) as each one finishes.
 
     ``items`` gives (key, collection) pairs and is read lazily, so a caller may build each graph only when it
     is about to run. At most ``in_flight`` collections run at once (default: two on threads, so that one
     batch's single-threaded indicator table overlaps the next batch's chunk work; on a cluster one per worker
-    thread, at least two). Values come in the order they finish: the caller puts them in order. When
+    thread, at least two). On threads, ``overlap_tails`` counts a collection with one output task (a delayed
+    value) as no longer in flight once that task starts: the next one's tasks then run beside it, and at most
+    ``2 * in_flight`` run at once. Values come in the order they finish: the caller puts them in order. When
     ``cancelled()`` turns true no further collection starts; those running finish (threads) or are cancelled
     (cluster). Errors are those of :func:`compute`.
     """
     client = client_for(settings)
     if client is None:
-        yield from _each_on_threads(iter(items), settings, in_flight or 2, cancelled)
+        yield from _each_on_threads(iter(items), settings, in_flight or 2, cancelled, overlap_tails)
         return
     address = settings.scheduler or ""
     with _cluster_errors(address):
@@ -157,37 +161,76 @@ def compute_each(
     yield from _each_on_cluster(client, iter(items), address, in_flight, cancelled)
 
 
+def _output_key(collection: Any) -> Any:
+    """The key of a collection's one output task (a delayed value's), or None when it has several or none."""
+    keys = collection.__dask_keys__() if dask.is_dask_collection(collection) else []
+    return keys[0] if isinstance(keys, list) and len(keys) == 1 and not isinstance(keys[0], list) else None
+
+
 def _each_on_threads(
-    items: Iterator[tuple[Any, Any]], settings: Settings, in_flight: int, cancelled: Callable[[], bool] | None
+    items: Iterator[tuple[Any, Any]],
+    settings: Settings,
+    in_flight: int,
+    cancelled: Callable[[], bool] | None,
+    overlap_tails: bool = False,
 ) -> Iterator[tuple[Any, Any]]:
     """compute_each on local threads: every collection's tasks share one pool of settings.threads threads."""
     threads = settings.threads or os.cpu_count() or 1
-    pool, drivers = _pools(threads, in_flight)
+    pool, drivers = _pools(threads, 2 * in_flight if overlap_tails else in_flight)
     # the pools live as long as the process: making threads per request costs an on-demand answer
-    running: dict[Any, Any] = {}
+    running: dict[Future, Any] = {}
+    in_tail: set[Future] = set()
+    # ("done", future) when a computation ends, ("tail", future) when its output task starts
+    events: queue.SimpleQueue[tuple[str, Future]] = queue.SimpleQueue()
 
     def start() -> bool:
-        if cancelled is not None and cancelled():
+        before_tail = len(running) - len(in_tail)
+        if (
+            before_tail >= in_flight
+            or len(running) >= 2 * in_flight
+            or (cancelled is not None and cancelled())
+        ):
             return False
         try:
             key, collection = next(items)
         except StopIteration:
             return False
-        future = drivers.submit(dask.compute, collection, scheduler="threads", pool=pool)
+        tail = _output_key(collection) if overlap_tails else None
+        started = threading.Event()  # set once the future below exists, before its tail can be reported
+        holder: list[Future] = []
+
+        def at_task(task_key: Any, *_: Any) -> None:
+            if task_key == tail:
+                started.wait()
+                events.put(("tail", holder[0]))
+
+        options: dict[str, Any] = {}
+        if tail is not None:
+            # (start, start_state, pretask, posttask, finish); given here, dask's global callbacks stay untouched
+            options["callbacks"] = [(None, None, at_task, None, None)]
+        future = drivers.submit(dask.compute, collection, scheduler="threads", pool=pool, **options)
+        holder.append(future)
+        started.set()
         running[future] = key
+        future.add_done_callback(lambda f: events.put(("done", f)))
         return True
 
     try:
-        while len(running) < in_flight and start():
+        while start():
             pass
         while running:
-            done, _ = wait(running, return_when=FIRST_COMPLETED)
-            for future in done:
+            what, future = events.get()
+            if future not in running:
+                continue
+            if what == "tail":
+                in_tail.add(future)
+            else:
+                in_tail.discard(future)
                 key = running.pop(future)
                 (value,) = future.result()
                 yield key, value
-                while len(running) < in_flight and start():
-                    pass
+            while start():
+                pass
     finally:
         for future in running:
             future.cancel()

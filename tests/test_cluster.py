@@ -8,6 +8,7 @@ import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
+from typing import Any
 
 import dask
 import dask.array as da
@@ -95,6 +96,69 @@ def test_compute_each_starts_nothing_once_cancelled() -> None:
     ):
         seen.append(key)
     assert len(started) < 10 and len(seen) == len(started)
+
+
+def _two_step(first: Any, tail: Any) -> Any:
+    """A delayed value of two tasks: ``first()`` and then the one output task ``tail(its result)``."""
+    return dask.delayed(tail, pure=False)(dask.delayed(first, pure=False)())
+
+
+@pytest.mark.parametrize("overlap", [True, False])
+def test_overlap_tails_starts_the_next_collection_once_the_output_task_starts(overlap: bool) -> None:
+    """With one collection in flight, the next one's tasks run beside the first one's output task only when
+    tails overlap: the first's output task waits for the second's first task (and gives up after a while)."""
+    second_started = threading.Event()
+
+    def wait_for_second(_: Any) -> bool:
+        return second_started.wait(10.0 if overlap else 0.5)
+
+    def mark() -> int:
+        second_started.set()
+        return 1
+
+    items = iter([("a", _two_step(lambda: 0, wait_for_second)), ("b", _two_step(mark, lambda x: x + 1))])
+    got = dict(cluster.compute_each(items, settings=_settings(threads=2), in_flight=1, overlap_tails=overlap))
+    # without overlap the second collection starts only after the first has finished (its wait timed out)
+    assert got == {"a": overlap, "b": 2}
+
+
+def test_overlap_tails_keeps_in_flight_collections_before_their_tails_and_twice_that_in_all() -> None:
+    """in_flight 1 with overlapping tails: never two collections in their first task at once, never more than
+    two collections running, every value once; a collection of several output keys counts until it ends."""
+    lock = threading.Lock()
+    now = {"first": 0, "running": 0}
+    most = {"first": 0, "running": 0}
+
+    def enter(*names: str) -> None:
+        with lock:
+            for name in names:
+                now[name] += 1
+                most[name] = max(most[name], now[name])
+
+    def leave(*names: str) -> None:
+        with lock:
+            for name in names:
+                now[name] -= 1
+
+    def first() -> int:
+        enter("first", "running")
+        time.sleep(0.05)
+        leave("first")
+        return 1
+
+    def tail(x: int) -> int:
+        time.sleep(0.2)  # longer than the next collection's first task: tails pile up unless bounded
+        leave("running")
+        return x + 1
+
+    items: list[tuple[Any, Any]] = [(k, _two_step(first, tail)) for k in range(5)]
+    items.append(("array", da.arange(10, chunks=3) * 2))
+    got = dict(
+        cluster.compute_each(iter(items), settings=_settings(threads=4), in_flight=1, overlap_tails=True)
+    )
+    assert got.pop("array").tolist() == list(range(0, 20, 2))
+    assert got == dict.fromkeys(range(5), 2)
+    assert most == {"first": 1, "running": 2}
 
 
 def test_no_scheduler_means_no_client() -> None:

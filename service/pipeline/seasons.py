@@ -170,7 +170,9 @@ def _batch_run(
         )
         # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
         # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order later.
-        computed = cluster.compute_each(lazy, settings=settings, cancelled=cancelled, in_flight=in_flight)
+        computed = cluster.compute_each(
+            lazy, settings=settings, cancelled=cancelled, in_flight=in_flight, overlap_tails=local
+        )
     # Taken before the batches, on this thread: on a thread of its own beside the chunk tasks it did not hide
     # behind them (its hashing holds the GIL, which every chunk task needs back after each compiled kernel).
     document = provenance(resolved, store, parsed, prepared.skipped)
