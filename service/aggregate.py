@@ -31,10 +31,13 @@ if TYPE_CHECKING:
     from service.store import Store
 
 VARIABLE_UNITS = {"tmax": "degC", "tmin": "degC", "prcp": "mm/day", "tmean": "degC"}
-# Partial sums combined per reduction step: few levels (each level copies the partial sums into fresh memory
-# once), while no step holds more than this many partials at a time. 32: a 1,000-feature batch of the large
-# demo touches about 20 spatial chunks, so its partials go straight to ``finish`` (bench/RESULTS.md, "Scale").
-REDUCTION_FAN_IN = 32
+# Partial sums combined per reduction step: no step holds more than this many partials at a time, and each
+# level copies the partial sums into fresh memory once. 128: a local batch of the large demo (2,000 features,
+# every one of its 64 spatial chunks) goes straight to ``finish``; at 32 its partials went through one level of
+# ``combine``, which cost a pass over fresh memory and gave nothing back (the finishing task holds every block's
+# sums at once in either case): the 5,000-village batch's peak RSS 2,443 MB against 2,553, the same output
+# (bench/RESULTS.md, "Scale").
+REDUCTION_FAN_IN = 128
 # A day's mean is missing when the weight of its cells with data is below this share of the feature's
 # total weight (guards a denominator that is zero up to rounding).
 MIN_WEIGHT_SHARE = 1e-9

@@ -361,3 +361,23 @@ def test_chunk_weights_carry_each_rows_total(tmp_path: Path) -> None:
         assert np.array_equal(
             part.total.view(np.uint64), np.asarray(part.matrix.sum(axis=1)).ravel().view(np.uint64)
         )
+
+
+def test_a_reduction_tree_gives_the_flat_means(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """More chunks than REDUCTION_FAN_IN go through combine steps: the same means as partials added straight
+    into ``finish`` (to rounding: the additions are grouped differently), missing cells and days included."""
+    import service.aggregate as aggregate_module
+    from service.aggregate import lazy_series
+
+    store, _ = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=2, time_chunk=400),
+                     missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
+    weights = weights_for(store, random_features(12, np.random.default_rng(5), 10, 9))
+    (flat,) = dask.compute(lazy_series(store, weights, variables=VARIABLES), scheduler="threads")
+    monkeypatch.setattr(aggregate_module, "REDUCTION_FAN_IN", 3)
+    lazy = lazy_series(store, weights, variables=VARIABLES)
+    names = [str(k[0] if isinstance(k, tuple) else k) for k in dict(lazy["prcp"].__dask_graph__())]
+    assert sum("-combine-" in k for k in names) > 3  # at least two levels of combine steps
+    (tree,) = dask.compute(lazy, scheduler="threads")
+    for var in VARIABLES:
+        np.testing.assert_allclose(tree[var], flat[var], rtol=1e-13, atol=1e-12)
+        assert np.array_equal(np.isnan(tree[var]), np.isnan(flat[var]))
