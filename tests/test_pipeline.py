@@ -247,3 +247,32 @@ def test_provenance_gives_both_digests_of_the_resolved_request(
     prov = example_result.provenance
     assert prov["request_hash"] == request_hash(resolved, store.fingerprint)
     assert prov["request"]["features"]["sha256"] == request_text.features_sha256(resolved)
+
+
+@pytest.mark.parametrize("layout", ["wide", "long"])
+def test_the_last_batchs_table_in_two_row_parts_is_the_whole_one(
+    store, settings, tiny_communities, layout: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """On local threads the last batch's table runs as two row parts (nothing is left to overlap it): the same
+    frame and warnings, bit for bit, as one table; earlier batches keep one table task."""
+    from service.pipeline import core
+
+    request = validate_request(IndicatorRequest, {**example_request(tiny_communities), "layout": layout})
+    monkeypatch.setattr(core, "TABLE_PART_FEATURES", 10_000)  # every part would be too small: one table
+    whole = run(request, store, settings)
+    cut_at, rows_table = [], core._rows_table
+
+    def counted(last: Any, arrays: Any, rows: tuple[int, int], *args: Any) -> Any:
+        cut_at.append(rows)
+        return rows_table(last, arrays, rows, *args)
+
+    monkeypatch.setattr(core, "_rows_table", counted)
+    monkeypatch.setattr(core, "TABLE_PART_FEATURES", 5)
+    cut = run(request, store, settings)
+    assert sorted(cut_at) == [(0, 31), (31, 62)]  # the 62 communities' one batch, the last, in two parts
+    pd.testing.assert_frame_equal(cut.frame, whole.frame, check_exact=True)
+    assert cut.warnings == whole.warnings and whole.warnings
+    cut_at.clear()
+    batched = run(request, store, settings, batch_size=25)  # batches of 25, 25 and 12: only the last is cut
+    assert sorted(cut_at) == [(0, 6), (6, 12)]
+    pd.testing.assert_frame_equal(batched.frame, whole.frame, check_exact=True)

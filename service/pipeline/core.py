@@ -424,15 +424,20 @@ def lazy_batch_table(
     span: slice,
     variables: tuple[str, ...],
     cached: bool = True,
+    parts: int = 1,
 ) -> Any:
     """One feature batch as a dask graph ending in one task that returns its table: (frame, warnings).
 
     The chunk tasks and the reduction are the aggregation's (service.aggregate); the last task takes the
     batch's daily means, snaps them, computes the indicator table and adds the feature columns. On a cluster
     that runs on a worker, so the daily series never travel to the server. ``cached`` False reads the chunks
-    around the decoded-tile cache (a job's one pass: the same values).
+    around the decoded-tile cache (a job's one pass: the same values). ``parts`` > 1 cuts the table into that
+    many tasks over disjoint feature rows (each at least TABLE_PART_FEATURES), joined by the last task: the
+    same table, on several threads.
     """
-    return _lazy_batch(batch_table, store, weights, rows, properties, resolved, span, variables, cached)
+    return _lazy_batch(
+        batch_table, store, weights, rows, properties, resolved, span, variables, cached, parts
+    )
 
 
 def _lazy_batch(
@@ -445,26 +450,70 @@ def _lazy_batch(
     span: slice,
     variables: tuple[str, ...],
     cached: bool = True,
+    parts: int = 1,
 ) -> Any:
     """A feature batch's aggregation as a dask graph ending in one task, ``last``, that computes what the batch
-    returns (``what``: the resolved request, or the batch jobs) from its daily means."""
+    returns (``what``: the resolved request, or the batch jobs) from its daily means; with ``parts`` > 1,
+    ``last`` runs on row parts and the final task joins them."""
     batch = take_weights(weights, rows)
     # one task per variable finishes its whole series into one array (no per-block arrays joined by dask)
     arrays = lazy_series(store, batch, variables=variables, time=span, cached=cached)
     by_id = _feature_frame(batch, np.arange(len(rows)))
     # a key of its own: two runs with the same features but other indicators must not share a table
     token = f"wxshock-table-{uuid.uuid4().hex}"
-    return dask.delayed(last, pure=False)(
-        arrays,
-        store,
-        span,
-        np.asarray(batch.latitude, dtype=np.float64),
-        list(batch.feature_ids),
-        properties,
-        what,
-        by_id,
-        dask_key_name=token,
-    )
+    latitude = np.asarray(batch.latitude, dtype=np.float64)
+    feature_ids = list(batch.feature_ids)
+    cuts = _row_parts(len(rows), parts)
+    if len(cuts) == 1:
+        return dask.delayed(last, pure=False)(
+            arrays, store, span, latitude, feature_ids, properties, what, by_id, dask_key_name=token
+        )
+    tables = [
+        dask.delayed(_rows_table, pure=False)(
+            last,
+            arrays,
+            (lo, hi),
+            store,
+            span,
+            latitude[lo:hi],
+            feature_ids[lo:hi],
+            properties[lo:hi],
+            what,
+            by_id.iloc[lo:hi],
+            dask_key_name=f"{token}-{i}",
+        )
+        for i, (lo, hi) in enumerate(cuts)
+    ]
+    return dask.delayed(_joined, pure=False)(tables, dask_key_name=token)
+
+
+# A batch's table cut in row parts (lazy_batch_table's ``parts``) gives each part at least this many features:
+# below it the part's fixed costs (frames, warnings, the join) outweigh the second thread.
+TABLE_PART_FEATURES = 100
+
+
+def _row_parts(n_rows: int, parts: int) -> list[tuple[int, int]]:
+    """[lo, hi) feature rows of each of at most ``parts`` parts of a batch's table, in order."""
+    parts = max(1, min(parts, n_rows // TABLE_PART_FEATURES))
+    cuts = np.linspace(0, n_rows, parts + 1).round().astype(int)
+    return [(int(lo), int(hi)) for lo, hi in zip(cuts[:-1], cuts[1:], strict=True)]
+
+
+def _rows_table(
+    last: Callable[..., Any], arrays: dict[str, np.ndarray], rows: tuple[int, int], *args: Any
+) -> Any:
+    """``last`` on the feature rows ``rows`` of a batch's daily means: views of the batch's arrays (``last``
+    snaps them in place, each part its own rows)."""
+    lo, hi = rows
+    return last({var: array[lo:hi] for var, array in arrays.items()}, *args)
+
+
+def _joined(
+    tables: list[tuple[pd.DataFrame, list[dict[str, Any]]]],
+) -> tuple[pd.DataFrame, list[dict[str, Any]]]:
+    """The tables of a batch's consecutive row parts joined, rows in order, and their warnings."""
+    frame = pd.concat([frame for frame, _ in tables], ignore_index=True)
+    return frame, [w for _, warnings in tables for w in warnings]
 
 
 def batch_table(

@@ -159,11 +159,22 @@ def _batch_run(
             batches, store, weights, properties, light, span, variables, settings, cancelled
         )
     else:
+        # On local threads the last batch's table is cut in two row parts: no chunk work is left to overlap it,
+        # so one core would idle while it runs (the earlier tables overlap the next batch's chunk work instead).
+        last_parts = 2 if local else 1
         lazy = (
             (
                 k,
                 lazy_batch_table(
-                    store, weights, rows, [properties[i] for i in rows], light, span, variables, cached
+                    store,
+                    weights,
+                    rows,
+                    [properties[i] for i in rows],
+                    light,
+                    span,
+                    variables,
+                    cached,
+                    last_parts if k == len(batches) - 1 else 1,
                 ),
             )
             for k, rows in enumerate(batches)
