@@ -11,6 +11,7 @@ per thread, not by the store.
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
@@ -169,6 +170,51 @@ def chunk_sums(
     ``cached`` False reads around the decoded-tile cache (Store.read_raw)."""
     # the thread's scratch memory: the sums are all this task keeps of the chunk
     block = store.read_raw(var, chunk.y, chunk.x, t, cached=cached, scratch=True)
+    return block_sums(block, chunk, scale_factor, fill_value)
+
+
+class Handover:
+    """Partial sums that one feature batch computed for the next from the chunks both touch, until the next
+    batch's graph takes them (local threads, one batch before its table at a time: the next batch's graph is
+    made once every chunk task of the one before has run). Keys: (the receiving batch's weights key, variable,
+    first day, end day, chunk's first row, chunk's first column), so that no other batch can take them."""
+
+    def __init__(self) -> None:
+        self._partials: dict[tuple[Any, ...], Partial] = {}
+        self._lock = threading.Lock()
+
+    def put(self, key: tuple[Any, ...], partial: Partial) -> None:
+        """Keep ``partial`` for the next batch."""
+        with self._lock:
+            self._partials[key] = partial
+
+    def take(self, key: tuple[Any, ...]) -> Partial | None:
+        """The partial kept under ``key`` (removed), or None."""
+        with self._lock:
+            return self._partials.pop(key, None)
+
+    def __len__(self) -> int:
+        with self._lock:
+            return len(self._partials)
+
+
+def chunk_sums_for_two(
+    store: Store,
+    var: str,
+    chunk: ChunkWeights,
+    next_chunk: ChunkWeights,
+    t: slice,
+    scale_factor: float,
+    fill_value: int,
+    cached: bool,
+    handover: Handover,
+    key: tuple[Any, ...],
+) -> Partial:
+    """One task: :func:`chunk_sums` of this batch's features, and of the next batch's (``next_chunk``, the same
+    chunk in its weights) from the same read, kept in ``handover`` under ``key``. Each feature's sums are made
+    row by row as its own batch would make them, so the next batch's values are the same bits."""
+    block = store.read_raw(var, chunk.y, chunk.x, t, cached=cached, scratch=True)
+    handover.put(key, block_sums(block, next_chunk, scale_factor, fill_value))
     return block_sums(block, chunk, scale_factor, fill_value)
 
 
@@ -356,9 +402,15 @@ def _partial_graphs(
     start: int,
     stop: int,
     cached: bool = True,
+    handover: Handover | None = None,
+    next_weights: Weights | GridWeights | None = None,
 ) -> dict[str, tuple[dict[Any, Any], str, list[tuple[int, int]], list[list[Any]]]]:
     """The chunk tasks and reduction tree of each variable, on its own grid: {var: (graph, name, time blocks,
-    the last keys of each block)}; the last keys of a block are the partial sums ``finish`` takes."""
+    the last keys of each block)}; the last keys of a block are the partial sums ``finish`` takes.
+
+    With a ``handover``, a chunk whose partial sums the previous batch left there is not read again, and a chunk
+    that ``next_weights`` (the next batch's) also touch is read once for both (:func:`chunk_sums_for_two`).
+    """
     first = weights.first if isinstance(weights, GridWeights) else weights
     n_features = len(first.feature_ids)
     unknown = [v for v in variables if v not in store.variables]
@@ -375,7 +427,7 @@ def _partial_graphs(
                 "GridWeights with the weights of each grid"
             )
     token = dask.base.tokenize(weights.key, store.location, store.fingerprint, start, stop)
-    plans: dict[tuple[str, int, int], list[ChunkWeights]] = {}
+    plans: dict[tuple[Any, ...], list[ChunkWeights]] = {}
     graphs = {}
     for var in variables:
         grid = store.grid_of(var)
@@ -390,6 +442,13 @@ def _partial_graphs(
         plan = plans.get((grid, cy, cx))
         if plan is None:
             plan = plans[(grid, cy, cx)] = chunk_weights(on_grid, (ny, nx), (cy, cx))
+        shared: dict[tuple[int, int], ChunkWeights] = {}
+        if handover is not None and next_weights is not None:
+            next_plan = plans.get(("next", grid, cy, cx))
+            if next_plan is None:
+                next_on_grid = weights_on(next_weights, grid)
+                next_plan = plans[("next", grid, cy, cx)] = chunk_weights(next_on_grid, (ny, nx), (cy, cx))
+            shared = {(c.y.start, c.x.start): c for c in next_plan}
         blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
         enc = store.encoding(var)
         name = f"wxshock-{var}-{token}"
@@ -400,16 +459,36 @@ def _partial_graphs(
             leaves = []
             for k, chunk in enumerate(plan):
                 key = (f"{name}-chunk", b, k)
-                dsk[key] = (
-                    chunk_sums,
-                    store,
-                    var,
-                    chunk,
-                    slice(t0, t1),
-                    enc.scale_factor,
-                    enc.fill_value,
-                    cached,
-                )
+                # kept for one batch: its weights' key (each batch's own) with the variable, days and chunk
+                where = (var, t0, t1, chunk.y.start, chunk.x.start)
+                given = handover.take((weights.key, *where)) if handover is not None else None
+                if given is not None:
+                    dsk[key] = given  # the previous batch's read of this chunk made these sums
+                elif (chunk.y.start, chunk.x.start) in shared:
+                    dsk[key] = (
+                        chunk_sums_for_two,
+                        store,
+                        var,
+                        chunk,
+                        shared[(chunk.y.start, chunk.x.start)],
+                        slice(t0, t1),
+                        enc.scale_factor,
+                        enc.fill_value,
+                        cached,
+                        handover,
+                        (next_weights.key, *where),  # type: ignore[union-attr]
+                    )
+                else:
+                    dsk[key] = (
+                        chunk_sums,
+                        store,
+                        var,
+                        chunk,
+                        slice(t0, t1),
+                        enc.scale_factor,
+                        enc.fill_value,
+                        cached,
+                    )
                 leaves.append(key)
             lasts.append(_tree(dsk, leaves, f"{name}-{b}"))
         graphs[var] = (dsk, name, blocks, lasts)
@@ -439,19 +518,23 @@ def lazy_series(
     variables: Sequence[str],
     time: slice = slice(None),
     cached: bool = True,
+    handover: Handover | None = None,
+    next_weights: Weights | GridWeights | None = None,
 ) -> dict[str, Any]:
     """Lazy daily weighted means per feature as one dask Delayed per variable: (feature, day) float64.
 
     The values of :func:`aggregate`, bit for bit (same chunk tasks, same reduction), each variable's whole
     series made by one task into one array: for a caller that wants the arrays, not an xarray Dataset.
-    ``cached`` False reads the chunks around the decoded-tile cache (the same values).
+    ``cached`` False reads the chunks around the decoded-tile cache (the same values). ``handover`` and
+    ``next_weights`` let consecutive batches read the chunks both touch once (:func:`_partial_graphs`); the graph
+    of a batch must then be made after every chunk task of the batch before it has run.
     """
     from dask.delayed import Delayed
 
     first = weights.first if isinstance(weights, GridWeights) else weights
     n_features = len(first.feature_ids)
     start, stop = _time_range(time, store.n_times)
-    graphs = _partial_graphs(store, weights, variables, start, stop, cached)
+    graphs = _partial_graphs(store, weights, variables, start, stop, cached, handover, next_weights)
     series = {}
     for var in variables:
         dsk, name, blocks, lasts = graphs[var]

@@ -381,3 +381,48 @@ def test_a_reduction_tree_gives_the_flat_means(tmp_path: Path, monkeypatch: pyte
     for var in VARIABLES:
         np.testing.assert_allclose(tree[var], flat[var], rtol=1e-13, atol=1e-12)
         assert np.array_equal(np.isnan(tree[var]), np.isnan(flat[var]))
+
+
+def _reading_tasks(lazy: dict[str, Any]) -> int:
+    """Tasks of a lazy_series graph that read a chunk."""
+    from service.aggregate import chunk_sums, chunk_sums_for_two
+
+    count = 0
+    for series in lazy.values():
+        for task in dict(series.__dask_graph__()).values():
+            func = getattr(task, "func", task[0] if isinstance(task, tuple) and task else None)
+            count += func in (chunk_sums, chunk_sums_for_two)
+    return count
+
+
+def test_consecutive_batches_read_the_chunks_they_share_once(tmp_path: Path) -> None:
+    """With a Handover, a batch reads each chunk it shares with the next one once for both, and the next batch
+    takes those sums instead of reading: every value the same bits as each batch alone, with missing cells and
+    days, fewer reads, nothing left over."""
+    from service.aggregate import Handover, lazy_series
+    from service.pipeline.core import take_weights
+
+    store, _ = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=4, time_chunk=400),
+                     missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
+    weights = weights_for(store, random_features(16, np.random.default_rng(11), 10, 9))
+    first, second = take_weights(weights, np.arange(0, 8)), take_weights(weights, np.arange(8, 16))
+    alone = [lazy_series(store, w, variables=VARIABLES) for w in (first, second)]
+    expected = [dask.compute(lazy, scheduler="threads")[0] for lazy in alone]
+    handover = Handover()
+    lazy_first = lazy_series(store, first, variables=VARIABLES, handover=handover, next_weights=second)
+    (got_first,) = dask.compute(lazy_first, scheduler="threads")
+    kept = len(handover)
+    assert kept > 0  # the two batches share chunks
+    other = take_weights(weights, np.arange(4, 12))  # another batch touching the same chunks takes nothing
+    assert _reading_tasks(
+        lazy_series(store, other, variables=VARIABLES, handover=handover)
+    ) == _reading_tasks(lazy_series(store, other, variables=VARIABLES))
+    assert len(handover) == kept
+    lazy_second = lazy_series(store, second, variables=VARIABLES, handover=handover)
+    assert len(handover) == 0
+    assert _reading_tasks(lazy_first) == _reading_tasks(alone[0])
+    assert _reading_tasks(lazy_second) == _reading_tasks(alone[1]) - kept
+    (got_second,) = dask.compute(lazy_second, scheduler="threads")
+    for got, want in ((got_first, expected[0]), (got_second, expected[1])):
+        for var in VARIABLES:
+            assert np.array_equal(got[var].view(np.uint64), want[var].view(np.uint64))

@@ -12,7 +12,7 @@ import pandas as pd
 from scipy import sparse
 
 from service import __version__, request_text
-from service.aggregate import GridWeights, lazy_series
+from service.aggregate import GridWeights, Handover, lazy_series
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import (
     LimitExceededError,
@@ -390,11 +390,12 @@ def _feature_frame(weights: Weights | GridWeights, rows: np.ndarray) -> pd.DataF
 # get smaller batches, so that memory stays flat in years (1,000 features x 48 years x 3 variables is 420 MB).
 # On a cluster each worker thread computes a batch of up to this.
 BATCH_SERIES_BYTES = 448 << 20
-# On local threads a season run computes one batch at a time of up to twice that: the memory of the two batches
-# of that size it used to keep in flight, and half as many batch edges (a chunk on the edge of two batches is
-# read by both: 1,200 reads instead of 1,440 for the 5,000 villages of the large demo). Measured on that batch:
-# 15 % less CPU and 8-10 % less peak RSS, 6 % more wall time, because each batch's indicator table (one task,
-# holding the GIL most of the time) no longer overlaps the next batch's chunk work (bench/RESULTS.md, "Scale").
+# On local threads a season run computes batches of up to twice that, one at a time up to its indicator table:
+# the next batch's chunk work starts when a batch's table starts (service.cluster.compute_each, overlap_tails), so
+# two batches' series are held at once. Consecutive batches read the chunks they share once (aggregate.Handover),
+# and the last batch's table runs in two row parts. Measured on the 5,000 villages of the large demo (three
+# batches): 960 chunk reads, as many as the chunks touched (1,200 with every batch reading its own, 1,440 with
+# batches of half the size); peak RSS about 2.5 GB (bench/RESULTS.md, "Scale").
 LOCAL_BATCH_SERIES_BYTES = 2 * BATCH_SERIES_BYTES
 
 
@@ -425,6 +426,8 @@ def lazy_batch_table(
     variables: tuple[str, ...],
     cached: bool = True,
     parts: int = 1,
+    handover: Handover | None = None,
+    next_rows: np.ndarray | None = None,
 ) -> Any:
     """One feature batch as a dask graph ending in one task that returns its table: (frame, warnings).
 
@@ -433,10 +436,23 @@ def lazy_batch_table(
     that runs on a worker, so the daily series never travel to the server. ``cached`` False reads the chunks
     around the decoded-tile cache (a job's one pass: the same values). ``parts`` > 1 cuts the table into that
     many tasks over disjoint feature rows (each at least TABLE_PART_FEATURES), joined by the last task: the
-    same table, on several threads.
+    same table, on several threads. With a ``handover``, the chunks this batch shares with the next one
+    (``next_rows``) are read once for both, and those it shares with the one before are not read again
+    (service.aggregate.Handover: the batches must run one after the other).
     """
     return _lazy_batch(
-        batch_table, store, weights, rows, properties, resolved, span, variables, cached, parts
+        batch_table,
+        store,
+        weights,
+        rows,
+        properties,
+        resolved,
+        span,
+        variables,
+        cached,
+        parts,
+        handover,
+        next_rows,
     )
 
 
@@ -451,13 +467,18 @@ def _lazy_batch(
     variables: tuple[str, ...],
     cached: bool = True,
     parts: int = 1,
+    handover: Handover | None = None,
+    next_rows: np.ndarray | None = None,
 ) -> Any:
     """A feature batch's aggregation as a dask graph ending in one task, ``last``, that computes what the batch
     returns (``what``: the resolved request, or the batch jobs) from its daily means; with ``parts`` > 1,
     ``last`` runs on row parts and the final task joins them."""
     batch = take_weights(weights, rows)
+    following = take_weights(weights, next_rows) if handover is not None and next_rows is not None else None
     # one task per variable finishes its whole series into one array (no per-block arrays joined by dask)
-    arrays = lazy_series(store, batch, variables=variables, time=span, cached=cached)
+    arrays = lazy_series(
+        store, batch, variables=variables, time=span, cached=cached, handover=handover, next_weights=following
+    )
     by_id = _feature_frame(batch, np.arange(len(rows)))
     # a key of its own: two runs with the same features but other indicators must not share a table
     token = f"wxshock-table-{uuid.uuid4().hex}"

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from service import cluster
+from service.aggregate import Handover
 from service.encode import RunResult
 from service.encode.files import write_atomically  # noqa: F401 - re-exported: pipeline.write_atomically stays
 from service.errors import (
@@ -147,7 +148,7 @@ def _batch_run(
     properties = [f.properties for f in parsed.features]
     local = in_flight is None and not (settings.scheduler or "").strip()
     if local:
-        in_flight = 1  # on local threads: one batch at a time, twice the size
+        in_flight = 1  # on local threads: one batch at a time before its table, twice the size
     cap = LOCAL_BATCH_SERIES_BYTES if local else BATCH_SERIES_BYTES
     if series_bytes is not None:
         cap = min(cap, series_bytes)
@@ -162,6 +163,9 @@ def _batch_run(
         # On local threads the last batch's table is cut in two row parts: no chunk work is left to overlap it,
         # so one core would idle while it runs (the earlier tables overlap the next batch's chunk work instead).
         last_parts = 2 if local else 1
+        # ... and consecutive batches read the chunks they share once: there the batches run one after the other
+        # (compute_each starts a batch's graph once the one before has finished its chunk tasks).
+        handover = Handover() if local else None
         lazy = (
             (
                 k,
@@ -175,6 +179,8 @@ def _batch_run(
                     variables,
                     cached,
                     last_parts if k == len(batches) - 1 else 1,
+                    handover,
+                    batches[k + 1] if k + 1 < len(batches) else None,
                 ),
             )
             for k, rows in enumerate(batches)
