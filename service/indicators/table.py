@@ -1340,7 +1340,7 @@ def add_warning_notes(frame: pd.DataFrame, warnings: Sequence[Mapping[str, Any]]
     its feature_id (all when None), of its year (all when None) and, in the long layout, of its indicator
     (all when None). A frame without a notes column gets one.
     """
-    frame = frame.copy()
+    frame = frame.copy(deep=False)  # copy-on-write (pandas 3): the caller's frame stays as it is
     notes = (
         frame.pop("notes") if "notes" in frame.columns else pd.Series([""] * len(frame), index=frame.index)
     )

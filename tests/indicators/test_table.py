@@ -601,7 +601,11 @@ def test_warnings_made_after_the_table_reach_the_notes_of_their_rows():
         warning("repaired_geometry", "repaired", feature_id="b"),
         warning("feature_skipped", "skipped", feature_id="a", year=1982),
     ]
+    before = frame.copy()
     noted = add_warning_notes(frame, later).set_index(["feature_id", "year"])
+    pd.testing.assert_frame_equal(frame, before)  # the frame given is left as it was
+    assert list(add_warning_notes(frame, []).columns) == [c for c in frame.columns if c != "notes"] + ["notes"]
+    pd.testing.assert_frame_equal(frame, before)
     assert list(noted.columns)[-1] == "notes"
     assert (noted.loc["b", "notes"] == "repaired_geometry").all()
     assert noted.loc[("a", 1982), "notes"] == "feature_skipped" and noted.loc[("a", 1983), "notes"] == ""
