@@ -33,11 +33,10 @@ if TYPE_CHECKING:
 
 VARIABLE_UNITS = {"tmax": "degC", "tmin": "degC", "prcp": "mm/day", "tmean": "degC"}
 # Partial sums combined per reduction step: no step holds more than this many partials at a time, and each
-# level copies the partial sums into fresh memory once. 128: a local batch of the large demo (2,000 features,
-# every one of its 64 spatial chunks) goes straight to ``finish``; at 32 its partials went through one level of
-# ``combine``, which cost a pass over fresh memory and gave nothing back (the finishing task holds every block's
-# sums at once in either case): the 5,000-village batch's peak RSS 2,443 MB against 2,553, the same output
-# (bench/RESULTS.md, "Scale").
+# level copies the partial sums into fresh memory once. 128 rather than 32: a batch of 2,000 of the large demo's
+# villages (all 64 of its spatial chunks) went through one level of ``combine`` at 32, a pass over fresh memory
+# that gave nothing back (the finishing task holds every block's sums at once in either case): the 5,000-village
+# batch's peak RSS 2,443 MB against 2,553 with such batches, the same output (bench/RESULTS.md, "Scale").
 REDUCTION_FAN_IN = 128
 # A day's mean is missing when the weight of its cells with data is below this share of the feature's
 # total weight (guards a denominator that is zero up to rounding).

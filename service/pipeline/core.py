@@ -388,15 +388,14 @@ def _feature_frame(weights: Weights | GridWeights, rows: np.ndarray) -> pd.DataF
 
 # Bytes of daily means (features x days x variables, float64) a feature batch may hold at once: long records
 # get smaller batches, so that memory stays flat in years (1,000 features x 48 years x 3 variables is 420 MB).
-# On a cluster each worker thread computes a batch of up to this.
+# The same on local threads and on a cluster, so that both cut a request into the same batches. On local threads
+# a season run holds two batches' series at once: the next batch's chunk work starts when a batch's table starts
+# (service.cluster.compute_each, overlap_tails); consecutive batches read the chunks they share once
+# (aggregate.Handover), and the last batch's table runs in two row parts. Measured on the 5,000 villages of the
+# large demo, three runs each way at load 1.3-1.7 (bench/RESULTS.md, "Scale"): batches of 1,000 against 2,000
+# (twice this), first run in a process 5.0 against 6.8 s (median), runs after it the same (4.6 s), peak RSS
+# 2.2-2.5 GB against 2.7-3.2; 960 chunk reads either way, as many as the chunks touched.
 BATCH_SERIES_BYTES = 448 << 20
-# On local threads a season run computes batches of up to twice that, one at a time up to its indicator table:
-# the next batch's chunk work starts when a batch's table starts (service.cluster.compute_each, overlap_tails), so
-# two batches' series are held at once. Consecutive batches read the chunks they share once (aggregate.Handover),
-# and the last batch's table runs in two row parts. Measured on the 5,000 villages of the large demo (three
-# batches): 960 chunk reads, as many as the chunks touched (1,200 with every batch reading its own, 1,440 with
-# batches of half the size); peak RSS about 2.5 GB (bench/RESULTS.md, "Scale").
-LOCAL_BATCH_SERIES_BYTES = 2 * BATCH_SERIES_BYTES
 
 
 def batch_size_for(

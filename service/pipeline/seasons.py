@@ -25,7 +25,6 @@ from service.pipeline.checks import _dry_run, _prepare_resolved, _without_skippe
 from service.pipeline.core import (
     BATCH_SERIES_BYTES,
     DEFAULT_BATCH_FEATURES,
-    LOCAL_BATCH_SERIES_BYTES,
     Cancelled,
     Progress,
     _check_years,
@@ -148,8 +147,8 @@ def _batch_run(
     properties = [f.properties for f in parsed.features]
     local = in_flight is None and not (settings.scheduler or "").strip()
     if local:
-        in_flight = 1  # on local threads: one batch at a time before its table, twice the size
-    cap = LOCAL_BATCH_SERIES_BYTES if local else BATCH_SERIES_BYTES
+        in_flight = 1  # on local threads: one batch at a time before its table (core.BATCH_SERIES_BYTES)
+    cap = BATCH_SERIES_BYTES
     if series_bytes is not None:
         cap = min(cap, series_bytes)
     batches = feature_batches(weights, batch_size_for(batch_size, span, variables, cap))
