@@ -900,7 +900,8 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             "",
             f"The older code (`{args.old_code}`), same cluster, same villages (load {cl_old['load']:.1f}): "
             f"the server received **{cl_old['table_bytes_per_feature'] / 1024:.0f} kB per feature** during "
-            f"`pipeline.run` (the daily series; it computed the tables itself); run {cl_old['run_wall_s']:.1f} s.",
+            f"`pipeline.run` (before issue 15 these were the daily series: the server computed the tables); run "
+            f"{cl_old['run_wall_s']:.1f} s.",
         ]
     lines += ["", END]
     return "\n".join(lines)
