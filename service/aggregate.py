@@ -3,8 +3,10 @@
 For every time block (one store chunk along time) and every spatial chunk that some feature touches, one
 task reads the chunk's stored integers (``Store.read_raw``), and multiplies the chunk's sparse weight
 sub-matrix (features touching it x its cells, int16 scale factor folded in) with the (cells x days) block.
-Partial sums (weighted sum and the weight of the cells with data) are added up by a tree reduction;
-the mean is their ratio plus the add_offset, NaN where no weight is left. Only chunks that some feature
+Partial sums (weighted sum and the weight of the cells with data) are added into each feature's series in
+grid order of the chunks, whatever else the batch holds, so a feature's means are the same bits in any batch
+(alone, in a job's small batches, on a cluster); the mean is their ratio plus the add_offset, NaN where no
+weight is left. Only chunks that some feature
 touches are read, each once per variable; a task holds one chunk, so memory is bounded by a few chunks
 per thread, not by the store.
 """
@@ -25,19 +27,13 @@ from scipy import sparse
 
 from service.buffers import series_pool
 from service.errors import RequestError
-from service.weighted_sums import add_rows, chunk_weighted_sums, put_rows, scale_rows
+from service.weighted_sums import chunk_weighted_sums, put_rows, scale_rows
 
 if TYPE_CHECKING:
     from service.geometry import Weights
     from service.store import Store
 
 VARIABLE_UNITS = {"tmax": "degC", "tmin": "degC", "prcp": "mm/day", "tmean": "degC"}
-# Partial sums combined per reduction step: no step holds more than this many partials at a time, and each
-# level copies the partial sums into fresh memory once. 128 rather than 32: a batch of 2,000 of the large demo's
-# villages (all 64 of its spatial chunks) went through one level of ``combine`` at 32, a pass over fresh memory
-# that gave nothing back (the finishing task holds every block's sums at once in either case): the 5,000-village
-# batch's peak RSS 2,443 MB against 2,553 with such batches, the same output (bench/RESULTS.md, "Scale").
-REDUCTION_FAN_IN = 128
 # A day's mean is missing when the weight of its cells with data is below this share of the feature's
 # total weight (guards a denominator that is zero up to rounding).
 MIN_WEIGHT_SHARE = 1e-9
@@ -246,26 +242,6 @@ def row_sums(matrix: sparse.csr_matrix) -> np.ndarray:
     return total
 
 
-def combine(partials: Sequence[Partial]) -> Partial:
-    """The sum of partial sums over different chunks (features may repeat between them)."""
-    if len(partials) == 1:
-        return partials[0]
-    rows = np.unique(np.concatenate([p.rows for p in partials]))
-    days = partials[0].weighted_sum.shape[1]
-    weighted_sum = np.zeros((len(rows), days))
-    total = np.zeros(len(rows))
-    correction = None
-    for p in partials:
-        at = np.searchsorted(rows, p.rows)
-        add_rows(weighted_sum, at, p.weighted_sum)
-        total[at] += p.total
-        if p.correction is not None:
-            if correction is None:
-                correction = np.zeros((len(rows), days))
-            correction[at] += p.correction
-    return Partial(rows, weighted_sum, total, correction)
-
-
 def finish(
     partials: Sequence[Partial], n_features: int, days: int, add_offset: float, out: np.ndarray | None = None
 ) -> np.ndarray:
@@ -290,34 +266,27 @@ def finish(
     if not started.all():
         out[~started] = 0.0  # features no partial reached: no weight, NaN below
     no_weight = total <= 0
+    with np.errstate(divide="ignore"):
+        factor = np.where(no_weight, np.nan, 1.0 / np.where(no_weight, 1.0, total))
     if correction is None:
         # Every cell had data on every day: one reciprocal per feature.
-        with np.errstate(divide="ignore"):
-            scale_rows(out, np.where(no_weight, np.nan, 1.0 / np.where(no_weight, 1.0, total)), add_offset)
+        scale_rows(out, factor, add_offset)
         return out
+    # A day on which all of a feature's cells had data is scaled by the reciprocal as above, whatever other
+    # features of the batch lacked: its value must not depend on the batch it was computed in. Only the days
+    # with cells missing are divided by the weight of the cells that had data.
+    missing = correction != 0.0
     weight = correction
     weight += total[:, None]
     enough = weight > total[:, None] * MIN_WEIGHT_SHARE
     with np.errstate(invalid="ignore", divide="ignore"):
-        out /= weight
-    out[~enough] = np.nan
+        divided = out / weight
+    scale_rows(out, factor, add_offset)
     if add_offset:
-        out += add_offset
+        divided += add_offset
+    np.copyto(out, divided, where=missing)
+    out[~enough] = np.nan
     return out
-
-
-def _tree(dsk: dict[Any, Any], leaves: list[Any], name: str) -> list[Any]:
-    """Add sums of the partials at ``leaves``, REDUCTION_FAN_IN at a time, until at most that many remain."""
-    level = 0
-    while len(leaves) > REDUCTION_FAN_IN:
-        keys = []
-        for i in range(0, len(leaves), REDUCTION_FAN_IN):
-            key = (f"{name}-combine-{level}", i)
-            dsk[key] = (combine, list(leaves[i : i + REDUCTION_FAN_IN]))
-            keys.append(key)
-        leaves = keys
-        level += 1
-    return leaves
 
 
 def _time_range(time: slice, n_times: int) -> tuple[int, int]:
@@ -404,8 +373,9 @@ def _partial_graphs(
     handover: Handover | None = None,
     next_weights: Weights | GridWeights | None = None,
 ) -> dict[str, tuple[dict[Any, Any], str, list[tuple[int, int]], list[list[Any]]]]:
-    """The chunk tasks and reduction tree of each variable, on its own grid: {var: (graph, name, time blocks,
-    the last keys of each block)}; the last keys of a block are the partial sums ``finish`` takes.
+    """The chunk tasks of each variable, on its own grid: {var: (graph, name, time blocks, each block's chunk
+    keys)}; a block's keys, in grid order, are the partial sums ``finish`` adds in that order. No reduction tree:
+    grouping a feature's partials by their place in the batch's list made its sums depend on the batch.
 
     With a ``handover``, a chunk whose partial sums the previous batch left there is not read again, and a chunk
     that ``next_weights`` (the next batch's) also touch is read once for both (:func:`chunk_sums_for_two`).
@@ -489,7 +459,7 @@ def _partial_graphs(
                         cached,
                     )
                 leaves.append(key)
-            lasts.append(_tree(dsk, leaves, f"{name}-{b}"))
+            lasts.append(leaves)
         graphs[var] = (dsk, name, blocks, lasts)
     return graphs
 

@@ -136,14 +136,6 @@ def scale_rows(out: np.ndarray, factor: np.ndarray, offset: float) -> None:
         )
 
 
-def add_rows(out: np.ndarray, rows: np.ndarray, values: np.ndarray) -> None:
-    """Add each row of ``values`` (rows, days) float64 into ``out[rows]`` (a (features, days) float64 array or a
-    view of one; ``rows`` distinct): ``out[rows] += values`` without numpy's gathered copy of ``out[rows]`` and the
-    temporary sum, each element getting the same single addition (so the same bits). put_rows with every row
-    started."""
-    put_rows(out, rows, values, np.ones(out.shape[0], dtype=np.bool_))
-
-
 def chunk_weighted_sums(
     data: np.ndarray,
     indices: np.ndarray,

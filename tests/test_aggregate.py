@@ -363,26 +363,6 @@ def test_chunk_weights_carry_each_rows_total(tmp_path: Path) -> None:
         )
 
 
-def test_a_reduction_tree_gives_the_flat_means(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    """More chunks than REDUCTION_FAN_IN go through combine steps: the same means as partials added straight
-    into ``finish`` (to rounding: the additions are grouped differently), missing cells and days included."""
-    import service.aggregate as aggregate_module
-    from service.aggregate import lazy_series
-
-    store, _ = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=2, time_chunk=400),
-                     missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
-    weights = weights_for(store, random_features(12, np.random.default_rng(5), 10, 9))
-    (flat,) = dask.compute(lazy_series(store, weights, variables=VARIABLES), scheduler="threads")
-    monkeypatch.setattr(aggregate_module, "REDUCTION_FAN_IN", 3)
-    lazy = lazy_series(store, weights, variables=VARIABLES)
-    names = [str(k[0] if isinstance(k, tuple) else k) for k in dict(lazy["prcp"].__dask_graph__())]
-    assert sum("-combine-" in k for k in names) > 3  # at least two levels of combine steps
-    (tree,) = dask.compute(lazy, scheduler="threads")
-    for var in VARIABLES:
-        np.testing.assert_allclose(tree[var], flat[var], rtol=1e-13, atol=1e-12)
-        assert np.array_equal(np.isnan(tree[var]), np.isnan(flat[var]))
-
-
 def _reading_tasks(lazy: dict[str, Any]) -> int:
     """Tasks of a lazy_series graph that read a chunk."""
     from service.aggregate import chunk_sums, chunk_sums_for_two
@@ -426,3 +406,25 @@ def test_consecutive_batches_read_the_chunks_they_share_once(tmp_path: Path) -> 
     for got, want in ((got_first, expected[0]), (got_second, expected[1])):
         for var in VARIABLES:
             assert np.array_equal(got[var].view(np.uint64), want[var].view(np.uint64))
+
+
+def test_a_features_series_is_the_same_bits_in_any_batch(tmp_path: Path) -> None:
+    """A feature's daily means do not depend on the other features of its batch: its chunks' partial sums are
+    added in grid order, however many chunks the batch touches (here more than 128 one-cell chunks, more than
+    a reduction tree's fan-in was), so a job's small batches, an on-demand batch and a cluster's give
+    the same bits."""
+    from service.aggregate import lazy_series
+    from service.pipeline.core import take_weights
+
+    store, _ = write(tmp_path, ny=16, nx=16, years=(2000, 2001), layout=Layout(tile=1, time_chunk=400),
+                     missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
+    weights = weights_for(store, random_features(60, np.random.default_rng(17), 16, 16))
+    lazy = lazy_series(store, weights, variables=VARIABLES)
+    names = [str(k[0] if isinstance(k, tuple) else k) for k in dict(lazy["prcp"].__dask_graph__())]
+    assert sum(k.endswith("-chunk") for k in names) > 2 * 128  # two time blocks of more than 128 chunks each
+    (together,) = dask.compute(lazy, scheduler="threads")
+    for row in range(60):
+        alone = take_weights(weights, np.array([row]))
+        (one,) = dask.compute(lazy_series(store, alone, variables=VARIABLES), scheduler="threads")
+        for var in VARIABLES:
+            assert np.array_equal(one[var][0].view(np.uint64), together[var][row].view(np.uint64)), (row, var)

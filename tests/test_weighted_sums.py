@@ -174,24 +174,6 @@ def test_warm_up_loads_the_kernel_for_writable_and_read_only_chunks() -> None:
     assert readonly and len(kernel.signatures) >= 2
 
 
-def test_add_rows_is_numpys_fancy_index_add_bit_for_bit_on_views() -> None:
-    """add_rows(out, rows, values) gives what ``out[rows] += values`` gives (the numpy reference), on a whole
-    array and on a strided window of days, with rows in any order and a row left untouched."""
-    rng = np.random.default_rng(7)
-    base = rng.normal(size=(6, 50)) * 1e3
-    values = rng.normal(size=(3, 50)) / 7.0
-    rows = np.array([4, 0, 2])
-    expected, got = base.copy(), base.copy()
-    expected[rows] += values
-    weighted_sums.add_rows(got, rows, values)
-    assert np.array_equal(got, expected)
-    expected, got = base.copy(), base.copy()
-    expected[:, 10:30][rows] += values[:, :20]
-    weighted_sums.add_rows(got[:, 10:30], rows, values[:, :20])
-    assert np.array_equal(got, expected)
-    assert np.array_equal(got[[1, 3, 5]], base[[1, 3, 5]])
-
-
 def numpy_finish(partials: list[Partial], n: int, days: int, add_offset: float) -> np.ndarray:
     """The means as numpy makes them (the reference for aggregate.finish): partial sums added into zeros by fancy
     index, times one reciprocal per feature (NaN without weight), plus the offset when it is not 0."""
@@ -229,3 +211,23 @@ def test_finish_into_used_memory_is_numpys_bit_for_bit(add_offset: float) -> Non
     finish(partials, n, days, add_offset, out=series[:, 5 : days + 5])
     assert np.array_equal(series[:, 5 : days + 5].view(np.uint64), expected.view(np.uint64))
     assert (series[:, :5] == -7.0).all() and (series[:, days + 5 :] == -7.0).all()
+
+
+def test_put_rows_into_started_rows_is_numpys_fancy_index_add_bit_for_bit_on_views() -> None:
+    """put_rows into rows already started gives what ``out[rows] += values`` gives (the numpy reference), on a
+    whole array and on a strided window of days (as ``finish`` writes one time block), with rows in any order and
+    a row left untouched."""
+    rng = np.random.default_rng(7)
+    base = rng.normal(size=(6, 50)) * 1e3
+    values = rng.normal(size=(3, 50)) / 7.0
+    rows = np.array([4, 0, 2])
+    started = np.ones(6, dtype=np.bool_)
+    expected, got = base.copy(), base.copy()
+    expected[rows] += values
+    weighted_sums.put_rows(got, rows, values, started)
+    assert np.array_equal(got, expected)
+    expected, got = base.copy(), base.copy()
+    expected[:, 10:30][rows] += values[:, :20]
+    weighted_sums.put_rows(got[:, 10:30], rows, values[:, :20], started)
+    assert np.array_equal(got, expected)
+    assert np.array_equal(got[[1, 3, 5]], base[[1, 3, 5]])
