@@ -604,7 +604,8 @@ def test_warnings_made_after_the_table_reach_the_notes_of_their_rows():
     before = frame.copy()
     noted = add_warning_notes(frame, later).set_index(["feature_id", "year"])
     pd.testing.assert_frame_equal(frame, before)  # the frame given is left as it was
-    assert list(add_warning_notes(frame, []).columns) == [c for c in frame.columns if c != "notes"] + ["notes"]
+    unwarned = add_warning_notes(frame, [])
+    assert list(unwarned.columns) == [c for c in frame.columns if c != "notes"] + ["notes"]
     pd.testing.assert_frame_equal(frame, before)
     assert list(noted.columns)[-1] == "notes"
     assert (noted.loc["b", "notes"] == "repaired_geometry").all()
