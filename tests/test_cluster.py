@@ -158,7 +158,8 @@ def test_overlap_tails_keeps_in_flight_collections_before_their_tails_and_twice_
     )
     assert got.pop("array").tolist() == list(range(0, 20, 2))
     assert got == dict.fromkeys(range(5), 2)
-    assert most == {"first": 1, "running": 2}
+    # never more than the bounds (that two do run at once is the test above's, which does not hang on timing)
+    assert most["first"] == 1 and most["running"] <= 2
 
 
 def test_no_scheduler_means_no_client() -> None:
