@@ -117,3 +117,14 @@ def skipped_warnings(skipped: list[dict[str, Any]]) -> list[dict[str, Any]]:
         warning(SKIPPED_CODE, f"feature skipped ({e['code']}): {e['reason']}", feature_id=e["feature_id"])
         for e in skipped
     ]
+
+
+def later_warnings(repaired: Iterable[str], skipped: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The warnings a run adds after its tables: one repaired_geometry per repaired feature id, then
+    :func:`skipped_warnings`."""
+    from service.warning_codes import warning
+
+    return [
+        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
+        for feature_id in repaired
+    ] + skipped_warnings(skipped)

@@ -38,11 +38,10 @@ from service.pipeline.core import (
     store_daily_series,
     take_weights,
 )
-from service.prepared import Prepared, skipped_warnings
+from service.prepared import Prepared, later_warnings
 from service.schemas import IndicatorRequest
 from service.settings import Settings
 from service.store import Store
-from service.warning_codes import warning
 
 
 def resolve_events_for(request: IndicatorRequest, store: Store, feature_ids: list[str]) -> ResolvedEvents:
@@ -210,10 +209,7 @@ def run_events(
     frame = frame.iloc[np.argsort(np.concatenate(orders), kind="stable")].reset_index(drop=True)
     warnings = _warnings_in_order(warnings, weights.feature_ids)
     frame, warnings = _without_skipped(frame, warnings, prepared.skipped)
-    later = [
-        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
-        for feature_id in parsed.repaired
-    ] + skipped_warnings(prepared.skipped)
+    later = later_warnings(parsed.repaired, prepared.skipped)
     warnings.extend(later)
     frame = add_warning_notes(frame, later)
     document = provenance(resolved.request, store, parsed, prepared.skipped)

@@ -44,11 +44,10 @@ from service.pipeline.core import (
 from service.pipeline.events import prepare_events, run_events
 from service.pipeline.series import SeriesTable
 from service.pipeline.variants import prepare_variants, run_variants
-from service.prepared import Prepared, skipped_warnings
+from service.prepared import Prepared, later_warnings
 from service.schemas import IndicatorRequest
 from service.settings import Settings
 from service.store import Store
-from service.warning_codes import warning
 
 
 def run(
@@ -92,10 +91,7 @@ def run(
     frame = _in_feature_order(pd.concat(frames, ignore_index=True), weights.feature_ids)
     warnings = _warnings_in_order(warnings, weights.feature_ids)
     frame, warnings = _without_skipped(frame, warnings, prepared.skipped)
-    later = [
-        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
-        for feature_id in parsed.repaired
-    ] + skipped_warnings(prepared.skipped)
+    later = later_warnings(parsed.repaired, prepared.skipped)
     warnings.extend(later)
     frame = add_warning_notes(frame, later)  # notes last, with the codes of the warnings made here
     return RunResult(frame=frame, provenance=run_.provenance, warnings=warnings)
@@ -268,10 +264,7 @@ def plan_in_pieces(
         cached,
     )
     parsed, skipped = run_.prepared.parsed, run_.prepared.skipped
-    later = [
-        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
-        for feature_id in parsed.repaired
-    ] + skipped_warnings(skipped)
+    later = later_warnings(parsed.repaired, skipped)
     return PiecesRun(
         provenance=run_.provenance,
         feature_ids=run_.prepared.weights.feature_ids,

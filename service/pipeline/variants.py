@@ -62,11 +62,10 @@ from service.pipeline.events import (
     _row_order,
     resolve_events_for,
 )
-from service.prepared import Prepared, skipped_of, skipped_warnings
+from service.prepared import Prepared, later_warnings, skipped_of
 from service.schemas import IndicatorRequest
 from service.settings import Settings
 from service.store import Store
-from service.warning_codes import warning
 
 
 @dataclass
@@ -402,10 +401,7 @@ def _variant_frame(run_: _VariantRun, parsed: ParsedFeatures) -> tuple[pd.DataFr
         frame = _in_feature_order(frame, ids)
     warnings = _warnings_in_order(run_.warnings, ids)
     frame, warnings = _without_skipped(frame, warnings, run_.skipped)
-    later = [
-        warning("repaired_geometry", "invalid geometry was repaired (make_valid)", feature_id=feature_id)
-        for feature_id in parsed.repaired
-    ] + skipped_warnings(run_.skipped)
+    later = later_warnings(parsed.repaired, run_.skipped)
     frame = add_warning_notes(frame, later)
     return frame, [{**w, "reason": f"variant {run_.name!r}: {w['reason']}"} for w in warnings + later]
 
