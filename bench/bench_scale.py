@@ -772,12 +772,12 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             + " |"
         )
     if batch and batch.get("again"):
-        runs = ", ".join(f"{w:.2f}" for w, _ in batch["again"])
         lines.append(
-            f"| the same batch run {len(batch['again'])} more times in that process (a server that has run one: "
-            f"its memory pool, heap and page cache warm), median | {batch['again_wall_median']:.2f} | "
-            f"{batch['again_cpu_median']:.2f} | {batch['again_load']:.1f} | runs {runs} s; peak RSS over all "
-            f"runs {batch['again_peak_mb']:,.0f} MB |"
+            _again_row(
+                f"the same batch run {len(batch['again'])} more times in that process (a server that has run one: "
+                "its memory pool, heap and page cache warm), median",
+                batch,
+            )
         )
     before = results.get("batch_old_code")
     if before:
@@ -787,12 +787,7 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"reads, peak RSS {before['peak_mb']:,.0f} MB |"
         )
         if before.get("again"):
-            runs = ", ".join(f"{w:.2f}" for w, _ in before["again"])
-            lines.append(
-                f"| the older code's runs after its first, median | {before['again_wall_median']:.2f} | "
-                f"{before['again_cpu_median']:.2f} | {before['again_load']:.1f} | runs {runs} s; peak RSS over all "
-                f"runs {before['again_peak_mb']:,.0f} MB |"
-            )
+            lines.append(_again_row("the older code's runs after its first, median", before))
     old = results.get("batch_old_layout")
     if old:
         lines.append(
@@ -905,6 +900,15 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
         ]
     lines += ["", END]
     return "\n".join(lines)
+
+
+def _again_row(label: str, batch: dict[str, Any]) -> str:
+    """The table row of a batch phase's runs after its first: their median wall and CPU s, each run, peak RSS."""
+    runs = ", ".join(f"{w:.2f}" for w, _ in batch["again"])
+    return (
+        f"| {label} | {batch['again_wall_median']:.2f} | {batch['again_cpu_median']:.2f} | {batch['again_load']:.1f} "
+        f"| runs {runs} s; peak RSS over all runs {batch['again_peak_mb']:,.0f} MB |"
+    )
 
 
 def write_section(text: str) -> None:
