@@ -14,7 +14,7 @@ per thread, not by the store.
 from __future__ import annotations
 
 import threading
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -170,9 +170,10 @@ def chunk_sums(
 
 class Handover:
     """Partial sums that one feature batch computed for the next from the chunks both touch, until the next
-    batch's graph takes them (local threads, one batch before its table at a time: the next batch's graph is
-    made once every chunk task of the one before has run). Keys: (the receiving batch's weights key, variable,
-    first day, end day, chunk's first row, chunk's first column), so that no other batch can take them."""
+    batch's chunk tasks take them (:func:`handed_or_read`; local threads, one batch before its table at a time,
+    so that every chunk task of a batch has run when the next one's start). Keys: (the receiving batch's weights
+    key, variable, first day, end day, chunk's first row, chunk's first column), so that no other batch can take
+    them."""
 
     def __init__(self) -> None:
         self._partials: dict[tuple[Any, ...], Partial] = {}
@@ -211,6 +212,18 @@ def chunk_sums_for_two(
     block = store.read_raw(var, chunk.y, chunk.x, t, cached=cached, scratch=True)
     handover.put(key, block_sums(block, next_chunk, scale_factor, fill_value))
     return block_sums(block, chunk, scale_factor, fill_value)
+
+
+def handed_or_read(
+    handover: Handover, key: tuple[Any, ...], read: Callable[..., Partial], *args: Any
+) -> Partial:
+    """One chunk task of a batch that may follow another: the partial sums the batch before made of this chunk
+    from its own read, kept in ``handover`` under ``key``, else ``read(*args)`` (the same bits either way).
+
+    The batch before has run every chunk task by then: compute_each starts a batch on local threads once the one
+    before has reached its table, which needs all of them."""
+    given = handover.take(key)
+    return given if given is not None else read(*args)
 
 
 def block_sums(block: np.ndarray, chunk: ChunkWeights, scale_factor: float, fill_value: int) -> Partial:
@@ -430,11 +443,9 @@ def _partial_graphs(
                 key = (f"{name}-chunk", b, k)
                 # kept for one batch: its weights' key (each batch's own) with the variable, days and chunk
                 where = (var, t0, t1, chunk.y.start, chunk.x.start)
-                given = handover.take((weights.key, *where)) if handover is not None else None
-                if given is not None:
-                    dsk[key] = given  # the previous batch's read of this chunk made these sums
-                elif (chunk.y.start, chunk.x.start) in shared:
-                    dsk[key] = (
+                read: tuple[Any, ...]
+                if (chunk.y.start, chunk.x.start) in shared:
+                    read = (
                         chunk_sums_for_two,
                         store,
                         var,
@@ -448,7 +459,7 @@ def _partial_graphs(
                         (next_weights.key, *where),  # type: ignore[union-attr]
                     )
                 else:
-                    dsk[key] = (
+                    read = (
                         chunk_sums,
                         store,
                         var,
@@ -458,6 +469,11 @@ def _partial_graphs(
                         enc.fill_value,
                         cached,
                     )
+                # the batch before may have made this chunk's sums from its own read; they are looked for when the
+                # task runs, so that this graph can be made while that batch still runs
+                dsk[key] = (
+                    read if handover is None else (handed_or_read, handover, (weights.key, *where), *read)
+                )
                 leaves.append(key)
             lasts.append(leaves)
         graphs[var] = (dsk, name, blocks, lasts)
@@ -495,8 +511,9 @@ def lazy_series(
     The values of :func:`aggregate`, bit for bit (same chunk tasks, same reduction), each variable's whole
     series made by one task into one array: for a caller that wants the arrays, not an xarray Dataset.
     ``cached`` False reads the chunks around the decoded-tile cache (the same values). ``handover`` and
-    ``next_weights`` let consecutive batches read the chunks both touch once (:func:`_partial_graphs`); the graph
-    of a batch must then be made after every chunk task of the batch before it has run.
+    ``next_weights`` let consecutive batches read the chunks both touch once (:func:`_partial_graphs`); a batch's
+    chunk tasks must then start after every chunk task of the batch before it has run (its graph may be made
+    earlier).
     """
     from dask.delayed import Delayed
 

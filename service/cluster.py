@@ -134,6 +134,7 @@ def compute_each(
     in_flight: int | None = None,
     cancelled: Callable[[], bool] | None = None,
     overlap_tails: bool = False,
+    read_ahead: bool = False,
 ) -> Iterator[tuple[Any, Any]]:
     """Compute many independent collections, a few at a time; yield (key, value) as each one finishes.
 
@@ -142,13 +143,17 @@ def compute_each(
     batch's single-threaded indicator table overlaps the next batch's chunk work; on a cluster one per worker
     thread, at least two). On threads, ``overlap_tails`` counts a collection with one output task (a delayed
     value) as no longer in flight once that task starts: the next one's tasks then run beside it, and at most
-    ``2 * in_flight`` run at once. Values come in the order they finish: the caller puts them in order. When
+    ``2 * in_flight`` run at once. With ``read_ahead`` (threads), the next item is taken from ``items`` as soon as
+    one starts, so that its graph is made while the running ones compute rather than while a thread waits for
+    it. Values come in the order they finish: the caller puts them in order. When
     ``cancelled()`` turns true no further collection starts; those running finish (threads) or are cancelled
     (cluster). Errors are those of :func:`compute`.
     """
     client = client_for(settings)
     if client is None:
-        yield from _each_on_threads(iter(items), settings, in_flight or 2, cancelled, overlap_tails)
+        yield from _each_on_threads(
+            iter(items), settings, in_flight or 2, cancelled, overlap_tails, read_ahead
+        )
         return
     address = settings.scheduler or ""
     with _cluster_errors(address):
@@ -173,6 +178,7 @@ def _each_on_threads(
     in_flight: int,
     cancelled: Callable[[], bool] | None,
     overlap_tails: bool = False,
+    read_ahead: bool = False,
 ) -> Iterator[tuple[Any, Any]]:
     """compute_each on local threads: every collection's tasks share one pool of settings.threads threads."""
     threads = settings.threads or os.cpu_count() or 1
@@ -182,6 +188,25 @@ def _each_on_threads(
     in_tail: set[Future] = set()
     # ("done", future) when a computation ends, ("tail", future) when its output task starts
     events: queue.SimpleQueue[tuple[str, Future]] = queue.SimpleQueue()
+    # read_ahead: the next item, taken from ``items`` before it may start (or the error taking it raised, raised
+    # when it would have started)
+    ahead: list[tuple[Any, Any] | BaseException] = []
+
+    def take() -> tuple[Any, Any]:
+        if ahead:
+            item = ahead.pop()
+            if isinstance(item, BaseException):
+                raise item
+            return item
+        return next(items)
+
+    def take_ahead() -> None:
+        try:
+            ahead.append(next(items))
+        except StopIteration:
+            pass
+        except Exception as error:  # noqa: BLE001 - raised in its turn, after the collections before it
+            ahead.append(error)
 
     def start() -> bool:
         before_tail = len(running) - len(in_tail)
@@ -192,7 +217,7 @@ def _each_on_threads(
         ):
             return False
         try:
-            key, collection = next(items)
+            key, collection = take()
         except StopIteration:
             return False
         tail = _output_key(collection) if overlap_tails else None
@@ -213,6 +238,8 @@ def _each_on_threads(
         started.set()
         running[future] = key
         future.add_done_callback(lambda f: events.put(("done", f)))
+        if read_ahead and not ahead:
+            take_ahead()
         return True
 
     try:

@@ -363,22 +363,29 @@ def test_chunk_weights_carry_each_rows_total(tmp_path: Path) -> None:
         )
 
 
-def _reading_tasks(lazy: dict[str, Any]) -> int:
-    """Tasks of a lazy_series graph that read a chunk."""
-    from service.aggregate import chunk_sums, chunk_sums_for_two
+def _counting_reads(monkeypatch: pytest.MonkeyPatch) -> list[int]:
+    """Counts every chunk read of the lazy_series graphs made from now on (the functions that read a chunk,
+    wrapped: the graph holds the functions it was made with)."""
+    from service import aggregate
 
-    count = 0
-    for series in lazy.values():
-        for task in dict(series.__dask_graph__()).values():
-            func = getattr(task, "func", task[0] if isinstance(task, tuple) and task else None)
-            count += func in (chunk_sums, chunk_sums_for_two)
-    return count
+    reads = [0]
+    for name in ("chunk_sums", "chunk_sums_for_two"):
+        original = getattr(aggregate, name)
+
+        def counted(*args: Any, _original: Any = original) -> Any:
+            reads[0] += 1
+            return _original(*args)
+
+        monkeypatch.setattr(aggregate, name, counted)
+    return reads
 
 
-def test_consecutive_batches_read_the_chunks_they_share_once(tmp_path: Path) -> None:
-    """With a Handover, a batch reads each chunk it shares with the next one once for both, and the next batch
-    takes those sums instead of reading: every value the same bits as each batch alone, with missing cells and
-    days, fewer reads, nothing left over."""
+def test_consecutive_batches_read_the_chunks_they_share_once(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With a Handover, a batch reads each chunk it shares with the next one once for both, and the next batch's
+    chunk tasks take those sums instead of reading, even with its graph made before the first batch ran: every
+    value the same bits as each batch alone, with missing cells and days, fewer reads, nothing left over."""
     from service.aggregate import Handover, lazy_series
     from service.pipeline.core import take_weights
 
@@ -386,24 +393,34 @@ def test_consecutive_batches_read_the_chunks_they_share_once(tmp_path: Path) -> 
                      missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
     weights = weights_for(store, random_features(16, np.random.default_rng(11), 10, 9))
     first, second = take_weights(weights, np.arange(0, 8)), take_weights(weights, np.arange(8, 16))
-    alone = [lazy_series(store, w, variables=VARIABLES) for w in (first, second)]
-    expected = [dask.compute(lazy, scheduler="threads")[0] for lazy in alone]
+    other = take_weights(weights, np.arange(4, 12))
+    reads = _counting_reads(monkeypatch)
+    expected, alone_reads = [], []
+    for batch in (first, second, other):
+        reads[0] = 0
+        expected.append(dask.compute(lazy_series(store, batch, variables=VARIABLES), scheduler="threads")[0])
+        alone_reads.append(reads[0])
     handover = Handover()
     lazy_first = lazy_series(store, first, variables=VARIABLES, handover=handover, next_weights=second)
+    lazy_second = lazy_series(
+        store, second, variables=VARIABLES, handover=handover
+    )  # made ahead, as read_ahead
+    lazy_other = lazy_series(store, other, variables=VARIABLES, handover=handover)
+    reads[0] = 0
     (got_first,) = dask.compute(lazy_first, scheduler="threads")
+    assert reads[0] == alone_reads[0]
     kept = len(handover)
     assert kept > 0  # the two batches share chunks
-    other = take_weights(weights, np.arange(4, 12))  # another batch touching the same chunks takes nothing
-    assert _reading_tasks(
-        lazy_series(store, other, variables=VARIABLES, handover=handover)
-    ) == _reading_tasks(lazy_series(store, other, variables=VARIABLES))
-    assert len(handover) == kept
-    lazy_second = lazy_series(store, second, variables=VARIABLES, handover=handover)
-    assert len(handover) == 0
-    assert _reading_tasks(lazy_first) == _reading_tasks(alone[0])
-    assert _reading_tasks(lazy_second) == _reading_tasks(alone[1]) - kept
+    reads[0] = 0
+    (got_other,) = dask.compute(
+        lazy_other, scheduler="threads"
+    )  # another batch on the same chunks takes nothing
+    assert reads[0] == alone_reads[2] and len(handover) == kept
+    reads[0] = 0
     (got_second,) = dask.compute(lazy_second, scheduler="threads")
-    for got, want in ((got_first, expected[0]), (got_second, expected[1])):
+    assert reads[0] == alone_reads[1] - kept
+    assert len(handover) == 0
+    for got, want in zip((got_first, got_second, got_other), expected, strict=True):
         for var in VARIABLES:
             assert np.array_equal(got[var].view(np.uint64), want[var].view(np.uint64))
 

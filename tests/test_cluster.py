@@ -162,6 +162,45 @@ def test_overlap_tails_keeps_in_flight_collections_before_their_tails_and_twice_
     assert most["first"] == 1 and most["running"] <= 2
 
 
+@pytest.mark.parametrize("ahead", [True, False])
+def test_read_ahead_takes_the_next_item_while_the_one_before_computes(ahead: bool) -> None:
+    """With read_ahead, the next item is taken from the iterator (its graph made) while the collection before it
+    is still computing, not once it may start; without it, only then. Every value comes once either way."""
+    first_done = threading.Event()
+    taken_while_running: list[bool] = []
+
+    def slow() -> int:
+        time.sleep(0.2)
+        first_done.set()
+        return 1
+
+    def items() -> Any:
+        for k in range(3):
+            taken_while_running.append(k > 0 and not first_done.is_set())
+            yield k, (dask.delayed(slow, pure=False)() if k == 0 else dask.delayed(k))
+
+    got = dict(cluster.compute_each(items(), settings=_settings(threads=2), in_flight=1, read_ahead=ahead))
+    assert got == {0: 1, 1: 1, 2: 2}
+    assert taken_while_running[1] is ahead
+
+
+def test_read_ahead_raises_an_items_error_after_the_collections_before_it() -> None:
+    """An error making the next item, taken ahead, is raised when that item would have started: the collection
+    before it still gives its value first."""
+
+    def items() -> Any:
+        yield "a", dask.delayed(lambda: time.sleep(0.1) or 1, pure=False)()
+        raise ValueError("no graph for b")
+
+    seen = []
+    with pytest.raises(ValueError, match="no graph for b"):
+        for key, value in cluster.compute_each(
+            items(), settings=_settings(threads=2), in_flight=1, read_ahead=True
+        ):
+            seen.append((key, value))
+    assert seen == [("a", 1)]
+
+
 def test_no_scheduler_means_no_client() -> None:
     assert cluster.client_for(_settings()) is None
     assert cluster.client_for(_settings(scheduler="  ")) is None

@@ -437,7 +437,7 @@ def lazy_batch_table(
     many tasks over disjoint feature rows (each at least TABLE_PART_FEATURES), joined by the last task: the
     same table, on several threads. With a ``handover``, the chunks this batch shares with the next one
     (``next_rows``) are read once for both, and those it shares with the one before are not read again
-    (service.aggregate.Handover: the batches must run one after the other).
+    (service.aggregate.Handover: the batches' chunk tasks must run one batch after the other).
     """
     return _lazy_batch(
         batch_table,

@@ -159,7 +159,8 @@ def _batch_run(
         # so one core would idle while it runs (the earlier tables overlap the next batch's chunk work instead).
         last_parts = 2 if local else 1
         # ... and consecutive batches read the chunks they share once: there the batches run one after the other
-        # (compute_each starts a batch's graph once the one before has finished its chunk tasks).
+        # (compute_each starts a batch's tasks once the one before has finished its chunk tasks). Each batch's
+        # graph is made while the batch before computes (read_ahead), not while a thread waits for it.
         handover = Handover() if local else None
         lazy = (
             (
@@ -183,7 +184,12 @@ def _batch_run(
         # Each batch's aggregation and its indicator table run where the chunks are read (local threads or the
         # cluster's workers); only the table comes back. Batches finish in any order; rows are put in order later.
         computed = cluster.compute_each(
-            lazy, settings=settings, cancelled=cancelled, in_flight=in_flight, overlap_tails=local
+            lazy,
+            settings=settings,
+            cancelled=cancelled,
+            in_flight=in_flight,
+            overlap_tails=local,
+            read_ahead=local,
         )
     # Taken before the batches, on this thread: on a thread of its own beside the chunk tasks it did not hide
     # behind them (its hashing holds the GIL, which every chunk task needs back after each compiled kernel).
