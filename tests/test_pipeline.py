@@ -276,3 +276,28 @@ def test_the_last_batchs_table_in_two_row_parts_is_the_whole_one(
     batched = run(request, store, settings, batch_size=25)  # batches of 25, 25 and 12: only the last is cut
     assert sorted(cut_at) == [(0, 6), (6, 12)]
     pd.testing.assert_frame_equal(batched.frame, whole.frame, check_exact=True)
+
+
+def test_rows_are_put_in_request_order_of_features_stably_whatever_the_batches() -> None:
+    """Batch tables joined out of order are sorted by the features' request order, each feature's rows kept as
+    its table gave them; joined in order they come back as they are; an id the request lacks sorts last."""
+    from service.pipeline.core import _in_feature_order
+
+    ids = ["c", "a", "b"]
+    frame = pd.DataFrame(
+        {
+            "feature_id": pd.array(["a", "a", "b", "c", "c"], dtype="string"),
+            "year": [2001, 2000, 2000, 2002, 2001],
+        }
+    )
+    got = _in_feature_order(frame, ids)
+    assert list(zip(got["feature_id"], got["year"], strict=True)) == [
+        ("c", 2002), ("c", 2001), ("a", 2001), ("a", 2000), ("b", 2000)
+    ]  # fmt: skip
+    assert list(got.index) == list(range(5))
+    in_order = _in_feature_order(got.iloc[::-1].iloc[::-1], ids)
+    pd.testing.assert_frame_equal(in_order, got)
+    unknown = frame.assign(feature_id=pd.array(["z", "a", "b", "c", "c"], dtype="string"))
+    assert list(_in_feature_order(unknown, ids)["feature_id"]) == ["c", "c", "a", "b", "z"]
+    repeated = _in_feature_order(frame, ["c", "a", "b", "a"])  # not one position per id: the last one counts
+    assert list(repeated["feature_id"]) == ["c", "c", "b", "a", "a"]

@@ -664,10 +664,14 @@ def _first_feature(request: IndicatorRequest) -> Any:
 
 def _in_feature_order(frame: pd.DataFrame, feature_ids: list[str]) -> pd.DataFrame:
     """Rows in request order of features (then as the table gave them), whatever the batching."""
-    position = {fid: i for i, fid in enumerate(feature_ids)}
-    order = frame["feature_id"].map(position).to_numpy()
-    frame = frame.iloc[np.argsort(order, kind="stable")].reset_index(drop=True)
-    return frame
+    ids = pd.Index(feature_ids)
+    order = ids.get_indexer(frame["feature_id"]) if ids.is_unique else np.array([-1])
+    if (order < 0).any():  # not one position per id: the general mapping (an unknown id sorts last)
+        position = {fid: i for i, fid in enumerate(feature_ids)}
+        order = frame["feature_id"].map(position).to_numpy()
+    elif np.all(order[1:] >= order[:-1]):  # batches of consecutive features, joined in order: nothing to move
+        return frame.reset_index(drop=True)
+    return frame.iloc[np.argsort(order, kind="stable")].reset_index(drop=True)
 
 
 def _warnings_in_order(warnings: list[dict[str, Any]], feature_ids: list[str]) -> list[dict[str, Any]]:
