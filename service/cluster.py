@@ -183,6 +183,7 @@ def _each_on_threads(
     """compute_each on local threads: every collection's tasks share one pool of settings.threads threads."""
     threads = settings.threads or os.cpu_count() or 1
     pool, drivers = _pools(threads, 2 * in_flight if overlap_tails else in_flight)
+    queued = _Queued(pool, QUEUED_PER_THREAD * threads)
     # the pools live as long as the process: making threads per request costs an on-demand answer
     running: dict[Future, Any] = {}
     in_tail: set[Future] = set()
@@ -233,7 +234,7 @@ def _each_on_threads(
         if tail is not None:
             # (start, start_state, pretask, posttask, finish); given here, dask's global callbacks stay untouched
             options["callbacks"] = [(None, None, at_task, None, None)]
-        future = drivers.submit(dask.compute, collection, scheduler="threads", pool=pool, **options)
+        future = drivers.submit(dask.compute, collection, scheduler="threads", pool=queued, **options)
         holder.append(future)
         started.set()
         running[future] = key
@@ -264,6 +265,25 @@ def _each_on_threads(
 
 
 _POOLS: dict[tuple[int, int], tuple[ThreadPoolExecutor, ThreadPoolExecutor]] = {}
+
+# A computation on local threads hands its tasks to the pool this many per pool thread at a time: a thread that
+# finishes a chunk task (about 2 ms) finds the next one waiting in the pool's queue, instead of idling until the
+# computation's scheduling thread has learnt of the finished task and submitted another (dask submits only as many
+# as it is told there are workers).
+QUEUED_PER_THREAD = 2
+
+
+class _Queued:
+    """A thread pool as dask's threaded scheduler sees it: ``depth`` workers, so that it keeps that many tasks
+    submitted; they queue in ``pool`` and run on its threads."""
+
+    def __init__(self, pool: ThreadPoolExecutor, depth: int) -> None:
+        self._pool = pool
+        self._max_workers = depth  # the number of workers dask.threaded.get reads from its pool
+
+    def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> Future:
+        """Queue ``fn(*args, **kwargs)`` in the pool."""
+        return self._pool.submit(fn, *args, **kwargs)
 
 
 def _pools(threads: int, in_flight: int) -> tuple[ThreadPoolExecutor, ThreadPoolExecutor]:

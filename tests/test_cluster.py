@@ -201,6 +201,47 @@ def test_read_ahead_raises_an_items_error_after_the_collections_before_it() -> N
     assert seen == [("a", 1)]
 
 
+@pytest.mark.parametrize("depth", [1, 3])
+def test_dask_keeps_as_many_tasks_queued_as_the_pool_says_it_has_workers(depth: int) -> None:
+    """_Queued gives dask's threaded scheduler ``depth`` workers on a pool of one thread: dask hands it that many
+    tasks at once, so a thread that finishes one finds the next waiting. Each of three tasks waits until all
+    three are in the pool (giving up after a while): only with three queued does none give up."""
+    pool = ThreadPoolExecutor(1)
+    lock, submitted = threading.Condition(), [0]
+
+    class Counting(cluster._Queued):
+        def submit(self, fn: Any, /, *args: Any, **kwargs: Any) -> Any:
+            with lock:
+                submitted[0] += 1
+                lock.notify_all()
+            return super().submit(fn, *args, **kwargs)
+
+    def task(_: int) -> bool:
+        with lock:
+            return lock.wait_for(lambda: submitted[0] >= 3, timeout=5.0 if depth > 1 else 0.3)
+
+    tasks = [dask.delayed(task, pure=False)(k) for k in range(3)]
+    try:
+        (got,) = dask.compute(tasks, scheduler="threads", pool=Counting(pool, depth))
+    finally:
+        pool.shutdown()
+    assert all(got) is (depth > 1)
+
+
+def test_compute_each_on_threads_queues_tasks_ahead_of_its_threads(monkeypatch: pytest.MonkeyPatch) -> None:
+    """compute_each hands dask QUEUED_PER_THREAD tasks per pool thread (what the test above relies on)."""
+    depths = []
+    original = cluster._Queued.__init__
+
+    def seen(self: Any, pool: Any, depth: int) -> None:
+        depths.append(depth)
+        original(self, pool, depth)
+
+    monkeypatch.setattr(cluster._Queued, "__init__", seen)
+    got = dict(cluster.compute_each(iter([("a", dask.delayed(1))]), settings=_settings(threads=2)))
+    assert got == {"a": 1} and depths == [cluster.QUEUED_PER_THREAD * 2]
+
+
 def test_no_scheduler_means_no_client() -> None:
     assert cluster.client_for(_settings()) is None
     assert cluster.client_for(_settings(scheduler="  ")) is None
