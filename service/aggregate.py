@@ -1,20 +1,23 @@
 """Weights x chunks -> (feature, time) daily community series, as dask tasks (nothing is computed here).
 
-For every time block (one store chunk along time) and every spatial chunk that some feature touches, one
-task reads the chunk's stored integers (``Store.read_raw``), and multiplies the chunk's sparse weight
-sub-matrix (features touching it x its cells, int16 scale factor folded in) with the (cells x days) block.
+For every time block (one store chunk along time) and every spatial chunk that some feature touches, the
+chunk's stored integers are read (``Store.read_raw``) and the chunk's sparse weight sub-matrix (features
+touching it x its cells, int16 scale factor folded in) multiplied with the (cells x days) block. One task does
+this for all the chunks a batch touches in one stored object (a shard of chunks, or a lone chunk), one after the
+other: a shard's four inner chunks cost one task, not four (dask's own cost per task is about that of summing a
+chunk).
 Partial sums (weighted sum and the weight of the cells with data) are added into each feature's series in
 grid order of the chunks, whatever else the batch holds, so a feature's means are the same bits in any batch
 (alone, in a job's small batches, on a cluster); the mean is their ratio plus the add_offset, NaN where no
 weight is left. Only chunks that some feature
-touches are read, each once per variable; a task holds one chunk, so memory is bounded by a few chunks
-per thread, not by the store.
+touches are read, each once per variable; a task holds one chunk at a time, so memory is bounded by a few
+chunks per thread, not by the store.
 """
 
 from __future__ import annotations
 
 import threading
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -53,6 +56,18 @@ class ChunkWeights:
     rows: np.ndarray
     matrix: sparse.csr_matrix
     total: np.ndarray | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class ReadUnit:
+    """The chunks of one stored object (a shard, or a lone chunk) that a batch touches, summed by one task.
+
+    ``chunks`` in grid order; ``nexts`` the next batch's weights on each of them (None: it does not touch it, or
+    there is no next batch). Compared by identity, so that dask passes it to the task as it is.
+    """
+
+    chunks: tuple[ChunkWeights, ...]
+    nexts: tuple[ChunkWeights | None, ...]
 
 
 @dataclass(frozen=True)
@@ -170,7 +185,7 @@ def chunk_sums(
 
 class Handover:
     """Partial sums that one feature batch computed for the next from the chunks both touch, until the next
-    batch's chunk tasks take them (:func:`handed_or_read`; local threads, one batch before its table at a time,
+    batch's chunk tasks take them (:func:`unit_sums`; local threads, one batch before its table at a time,
     so that every chunk task of a batch has run when the next batch's begin). Keys: (the receiving batch's weights
     key, variable, first day, end day, chunk's first row, chunk's first column), so that no other batch can take
     them."""
@@ -214,16 +229,66 @@ def chunk_sums_for_two(
     return block_sums(block, chunk, scale_factor, fill_value)
 
 
-def handed_or_read(
-    handover: Handover, key: tuple[Any, ...], read: Callable[..., Partial], *args: Any
-) -> Partial:
-    """One chunk task of a batch that may follow another: the partial sums the batch before made of this chunk
-    from its own read, kept in ``handover`` under ``key``, else ``read(*args)`` (the same bits either way).
+def unit_sums(
+    store: Store,
+    var: str,
+    unit: ReadUnit,
+    t: slice,
+    scale_factor: float,
+    fill_value: int,
+    cached: bool,
+    handover: Handover | None,
+    weights_key: str,
+    next_key: str | None,
+) -> list[Partial]:
+    """One task: the partial sums of each chunk of ``unit`` (in its order), chunk after chunk.
 
-    The batch before has run every chunk task by then: compute_each starts a batch on local threads once the one
-    before has reached its table, which needs all of them."""
-    given = handover.take(key)
-    return given if given is not None else read(*args)
+    With a ``handover``, a chunk's sums that the batch before made from its own read are taken instead of reading
+    it (the same bits), and a chunk the next batch also touches is read once for both
+    (:func:`chunk_sums_for_two`). The batch before has run every chunk task by then: compute_each starts a batch
+    on local threads once the one before has reached its table, which needs all of them; they are looked for
+    when the task runs, so that this batch's graph can be made while that batch still runs."""
+    t0, t1 = t.start, t.stop
+    sums = []
+    for chunk, next_chunk in zip(unit.chunks, unit.nexts, strict=True):
+        where = (var, t0, t1, chunk.y.start, chunk.x.start)
+        given = handover.take((weights_key, *where)) if handover is not None else None
+        if given is not None:
+            sums.append(given)
+        elif next_chunk is not None and handover is not None:
+            pair = (chunk, next_chunk, t, scale_factor, fill_value, cached, handover, (next_key, *where))
+            sums.append(chunk_sums_for_two(store, var, *pair))
+        else:
+            sums.append(chunk_sums(store, var, chunk, t, scale_factor, fill_value, cached))
+    return sums
+
+
+def read_units(
+    plan: Sequence[ChunkWeights], unit_shape: tuple[int, int], shared: dict[tuple[int, int], ChunkWeights]
+) -> tuple[list[ReadUnit], np.ndarray]:
+    """The plan's chunks grouped by the stored object ((sy, sx) cells: a shard, or the chunk itself) that holds
+    them, units in the order of their first chunk; and, for each chunk of the plan in grid order, its place in
+    the units' chunks laid end to end (:func:`in_grid_order`)."""
+    sy, sx = unit_shape
+    members: dict[tuple[int, int], list[int]] = {}
+    for k, chunk in enumerate(plan):
+        members.setdefault((chunk.y.start // sy, chunk.x.start // sx), []).append(k)
+    units, laid = [], []
+    for ks in members.values():
+        chunks = tuple(plan[k] for k in ks)
+        nexts = tuple(shared.get((c.y.start, c.x.start)) for c in chunks)
+        units.append(ReadUnit(chunks, nexts))
+        laid.extend(ks)
+    place = np.empty(len(plan), dtype=np.int64)
+    place[np.asarray(laid, dtype=np.int64)] = np.arange(len(plan))
+    return units, place
+
+
+def in_grid_order(units: Sequence[Sequence[Partial]], place: np.ndarray) -> list[Partial]:
+    """The partial sums of the units' tasks (each a list, in unit order) in grid order of their chunks: ``place``
+    from :func:`read_units`."""
+    laid = [p for unit in units for p in unit]
+    return [laid[i] for i in place]
 
 
 def block_sums(block: np.ndarray, chunk: ChunkWeights, scale_factor: float, fill_value: int) -> Partial:
@@ -334,10 +399,10 @@ def aggregate(
     graphs = _partial_graphs(store, weights, variables, start, stop)
     arrays: dict[str, da.Array] = {}
     for var in variables:
-        dsk, name, blocks, lasts = graphs[var]
+        dsk, name, blocks, lasts, place = graphs[var]
         enc = store.encoding(var)
         for b, ((t0, t1), last) in enumerate(zip(blocks, lasts, strict=True)):
-            dsk[(name, 0, b)] = (finish, last, n_features, t1 - t0, enc.add_offset)
+            dsk[(name, 0, b)] = (finish_units, last, place, n_features, t1 - t0, enc.add_offset)
         if blocks:
             graph = HighLevelGraph.from_collections(name, dsk, dependencies=())
             chunks = ((n_features,), tuple(t1 - t0 for t0, t1 in blocks))
@@ -385,10 +450,11 @@ def _partial_graphs(
     cached: bool = True,
     handover: Handover | None = None,
     next_weights: Weights | GridWeights | None = None,
-) -> dict[str, tuple[dict[Any, Any], str, list[tuple[int, int]], list[list[Any]]]]:
-    """The chunk tasks of each variable, on its own grid: {var: (graph, name, time blocks, each block's chunk
-    keys)}; a block's keys, in grid order, are the partial sums ``finish`` adds in that order. No reduction tree:
-    grouping a feature's partials by their place in the batch's list made its sums depend on the batch.
+) -> dict[str, tuple[dict[Any, Any], str, list[tuple[int, int]], list[list[Any]], np.ndarray]]:
+    """The chunk tasks of each variable, on its own grid: {var: (graph, name, time blocks, each block's unit
+    task keys, place)}; a block's tasks give the partial sums of its chunks, which ``finish`` adds in grid order
+    (:func:`in_grid_order` with ``place``). No reduction tree: grouping a feature's partials by their place in
+    the batch's list made its sums depend on the batch.
 
     With a ``handover``, a chunk whose partial sums the previous batch left there is not read again, and a chunk
     that ``next_weights`` (the next batch's) also touch is read once for both (:func:`chunk_sums_for_two`).
@@ -434,56 +500,38 @@ def _partial_graphs(
         blocks = [(b, min(stop, (b // ct + 1) * ct)) for b in _block_starts(start, stop, ct)]
         enc = store.encoding(var)
         name = f"wxshock-{var}-{token}"
+        units, place = read_units(plan, store.storage_shape_of(var)[:2], shared)
+        next_key = next_weights.key if next_weights is not None else None
         # A hand-built graph: dask.delayed would walk every argument (the weights) for each of the tasks.
         dsk: dict[Any, Any] = {}
         lasts = []
         for b, (t0, t1) in enumerate(blocks):
             leaves = []
-            for k, chunk in enumerate(plan):
+            for k, unit in enumerate(units):
                 key = (f"{name}-chunk", b, k)
-                # kept for one batch: its weights' key (each batch's own) with the variable, days and chunk
-                where = (var, t0, t1, chunk.y.start, chunk.x.start)
-                read: tuple[Any, ...]
-                if (chunk.y.start, chunk.x.start) in shared:
-                    read = (
-                        chunk_sums_for_two,
-                        store,
-                        var,
-                        chunk,
-                        shared[(chunk.y.start, chunk.x.start)],
-                        slice(t0, t1),
-                        enc.scale_factor,
-                        enc.fill_value,
-                        cached,
-                        handover,
-                        (next_weights.key, *where),  # type: ignore[union-attr]
-                    )
-                else:
-                    read = (
-                        chunk_sums,
-                        store,
-                        var,
-                        chunk,
-                        slice(t0, t1),
-                        enc.scale_factor,
-                        enc.fill_value,
-                        cached,
-                    )
-                # the batch before may have made this chunk's sums from its own read; they are looked for when the
-                # task runs, so that this graph can be made while that batch still runs
-                dsk[key] = (
-                    read if handover is None else (handed_or_read, handover, (weights.key, *where), *read)
-                )
+                dsk[key] = (unit_sums, store, var, unit, slice(t0, t1), enc.scale_factor, enc.fill_value, cached,
+                            handover, weights.key, next_key)  # fmt: skip
                 leaves.append(key)
             lasts.append(leaves)
-        graphs[var] = (dsk, name, blocks, lasts)
+        graphs[var] = (dsk, name, blocks, lasts, place)
     return graphs
 
 
-def finish_series(
-    lasts: Sequence[Sequence[Partial]], blocks: Sequence[tuple[int, int]], n_features: int, add_offset: float
+def finish_units(
+    units: Sequence[Sequence[Partial]], place: np.ndarray, n_features: int, days: int, add_offset: float
 ) -> np.ndarray:
-    """(feature, day) means over all the time blocks at once, from each block's last partial sums.
+    """:func:`finish` of one time block from its unit tasks' partial sums, added in grid order."""
+    return finish(in_grid_order(units, place), n_features, days, add_offset)
+
+
+def finish_series(
+    lasts: Sequence[Sequence[Sequence[Partial]]],
+    place: np.ndarray,
+    blocks: Sequence[tuple[int, int]],
+    n_features: int,
+    add_offset: float,
+) -> np.ndarray:
+    """(feature, day) means over all the time blocks at once, from each block's unit tasks' partial sums.
 
     One array for the whole series (lent by service.buffers), each block finished into its own columns: the same
     values as ``finish`` per block joined along time, without an array per block and the copy that joins them.
@@ -492,7 +540,8 @@ def finish_series(
     # memory of an earlier batch when there is some: fresh memory costs more than the arithmetic (service.buffers)
     out = series_pool().empty((n_features, (blocks[-1][1] - start) if blocks else 0))
     for partials, (t0, t1) in zip(lasts, blocks, strict=True):
-        finish(partials, n_features, t1 - t0, add_offset, out=out[:, t0 - start : t1 - start])
+        block = out[:, t0 - start : t1 - start]
+        finish(in_grid_order(partials, place), n_features, t1 - t0, add_offset, out=block)
     return out
 
 
@@ -523,10 +572,10 @@ def lazy_series(
     graphs = _partial_graphs(store, weights, variables, start, stop, cached, handover, next_weights)
     series = {}
     for var in variables:
-        dsk, name, blocks, lasts = graphs[var]
+        dsk, name, blocks, lasts, place = graphs[var]
         key = f"{name}-series"
         if blocks:
-            dsk[key] = (finish_series, lasts, blocks, n_features, store.encoding(var).add_offset)
+            dsk[key] = (finish_series, lasts, place, blocks, n_features, store.encoding(var).add_offset)
         else:
             dsk[key] = (np.zeros, (n_features, 0))
         series[var] = Delayed(key, HighLevelGraph.from_collections(key, dsk, dependencies=()))

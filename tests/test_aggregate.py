@@ -380,16 +380,57 @@ def _counting_reads(monkeypatch: pytest.MonkeyPatch) -> list[int]:
     return reads
 
 
-def test_consecutive_batches_read_the_chunks_they_share_once(
+def test_one_task_sums_the_chunks_of_a_shard_with_the_bits_of_one_task_per_chunk(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """On a sharded store one task per shard and time block sums the inner chunks the batch touches, each read
+    once: the daily means are the bits of the same chunks stored unsharded (one task per chunk), missing cells
+    and days included, because the partial sums are still made chunk by chunk and added in grid order."""
+    from service.aggregate import lazy_series
+
+    kwargs: dict[str, Any] = dict(
+        ny=10, nx=9, years=(2000, 2001), missing_cells=[(3, 3)], missing_days=[(250, 5, 5)]
+    )
+    sharded, _ = write(tmp_path, "sharded", layout=Layout(tile=2, shard_tile=4, time_chunk=400), **kwargs)
+    plain, _ = write(tmp_path, "plain", layout=Layout(tile=2, time_chunk=400), **kwargs)
+    assert sharded.storage_shape_of("prcp")[:2] == (4, 4) and sharded.chunk_shape_of("prcp")[:2] == (2, 2)
+    features = random_features(12, np.random.default_rng(5), 10, 9)
+    # a one-cell feature on the cell with a missing day: NaN in its means that day
+    one_cell = fc(poly(cell_box(10, 5, 5, 6, 6)))["features"][0]
+    features["features"].append({**one_cell, "id": "one-cell"})
+    weights = weights_for(sharded, features)
+    plan = chunk_weights(weights, sharded.grid.shape, (2, 2))
+    shards = {(c.y.start // 4, c.x.start // 4) for c in plan}
+    assert len(shards) < len(plan)  # some shard holds several touched chunks
+    reads = _counting_reads(monkeypatch)
+    lazy = lazy_series(sharded, weights, variables=VARIABLES)
+    names = [str(k[0] if isinstance(k, tuple) else k) for k in dict(lazy["prcp"].__dask_graph__())]
+    blocks = 2  # 731 days in chunks of 400
+    assert sum(k.endswith("-chunk") for k in names) == len(shards) * blocks
+    (got,) = dask.compute(lazy, scheduler="threads")
+    assert reads[0] == len(plan) * blocks * len(VARIABLES)
+    (want,) = dask.compute(lazy_series(plain, weights, variables=VARIABLES), scheduler="threads")
+    for var in VARIABLES:
+        assert np.isnan(got[var]).any()  # the missing days reach the means
+        assert np.array_equal(got[var].view(np.uint64), want[var].view(np.uint64)), var
+    as_dataset = series(sharded, weights)  # the xarray path adds them in the same order
+    for var in VARIABLES:
+        assert np.array_equal(as_dataset[var].values.view(np.uint64), want[var].view(np.uint64)), var
+
+
+@pytest.mark.parametrize("layout", [Layout(tile=4, time_chunk=400), Layout(tile=2, shard_tile=4, time_chunk=400)],
+                         ids=["chunks", "shards"])  # fmt: skip
+def test_consecutive_batches_read_the_chunks_they_share_once(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, layout: Layout
 ) -> None:
     """With a Handover, a batch reads each chunk it shares with the next one once for both, and the next batch's
     chunk tasks take those sums instead of reading, even with its graph made before the first batch ran: every
-    value the same bits as each batch alone, with missing cells and days, fewer reads, nothing left over."""
+    value the same bits as each batch alone, with missing cells and days, fewer reads, nothing left over (a
+    shard's task takes some of its chunks' sums and reads the others)."""
     from service.aggregate import Handover, lazy_series
     from service.pipeline.core import take_weights
 
-    store, _ = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=Layout(tile=4, time_chunk=400),
+    store, _ = write(tmp_path, ny=10, nx=9, years=(2000, 2001), layout=layout,
                      missing_cells=[(3, 3)], missing_days=[(250, 5, 5)])  # fmt: skip
     weights = weights_for(store, random_features(16, np.random.default_rng(11), 10, 9))
     first, second = take_weights(weights, np.arange(0, 8)), take_weights(weights, np.arange(8, 16))
