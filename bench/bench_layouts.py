@@ -373,7 +373,7 @@ def phase_pass(args: argparse.Namespace) -> dict[str, Any]:
     ]
 
     passes, sizes = decode_chunks(readers, items)
-    decode_wall, decode_cpu = min(passes)
+    decode_wall, decode_cpu = min(passes)[:2]
     decode_load = load()
     batch = timed_batch(store, BATCH[args.size])
     return {

@@ -56,6 +56,23 @@ def load() -> float:
     return os.getloadavg()[0]
 
 
+def cpu_ticks() -> tuple[int, int]:
+    """(stolen, all) CPU ticks of the machine since boot (/proc/stat; stolen: time the hypervisor ran others on
+    this machine's virtual CPUs while they had work); (0, 0) where there is no /proc/stat."""
+    try:
+        with open("/proc/stat", encoding="ascii") as f:
+            fields = [int(v) for v in f.readline().split()[1:9]]
+    except (OSError, ValueError):
+        return 0, 0
+    return fields[7], sum(fields)
+
+
+def stolen_pct(since: tuple[int, int]) -> float | None:
+    """The share of the machine's CPU time stolen since ``since`` (cpu_ticks()), percent; None if unknown."""
+    stolen, total = cpu_ticks()
+    return 100.0 * (stolen - since[0]) / (total - since[1]) if total > since[1] else None
+
+
 def peak_mb() -> float:
     """This process's peak RSS (MB)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
@@ -123,6 +140,7 @@ def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
         "decoded_gib": sum(s[0] for s in sizes) / 2**30,
         "wall_s": best[0],
         "cpu_s": best[1],
+        "steal_pct": best[2],
         "passes": passes,
         "reused_wall_s": reused[0],
         "reused_cpu_s": reused[1],
@@ -132,9 +150,9 @@ def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
 
 def decode_chunks(
     readers: dict[str, Any], items: list[tuple[str, tuple]], reuse: bool = False
-) -> tuple[list[tuple[float, float]], list[tuple[int, int]]]:
+) -> tuple[list[tuple[float, float, float | None]], list[tuple[int, int]]]:
     """Read each (variable, inner chunk coordinates) item's bytes and blosc-decode them with numcodecs on all
-    cores, twice: ([(wall s, CPU s)] of each pass, [(decoded bytes, compressed bytes)] of each item).
+    cores, twice: ([(wall s, CPU s, % of CPU stolen)] of each pass, [(decoded bytes, compressed bytes)] of each item).
 
     Each chunk is decoded into a fresh array (the issue's measure), or with ``reuse`` into one array per thread
     and shape, reused."""
@@ -168,10 +186,10 @@ def decode_chunks(
         for reader in readers.values():
             if reader.shard_shape is not None:
                 reader._indexes.clear()
-        wall, cpu = time.perf_counter(), time.process_time()
+        wall, cpu, ticks = time.perf_counter(), time.process_time(), cpu_ticks()
         with ThreadPoolExecutor(os.cpu_count() or 1) as pool:
             sizes = list(pool.map(one, items))
-        passes.append((time.perf_counter() - wall, time.process_time() - cpu))
+        passes.append((time.perf_counter() - wall, time.process_time() - cpu, stolen_pct(ticks)))
     return passes, sizes
 
 
@@ -191,6 +209,7 @@ def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
             again_wall_median=statistics.median(r["wall_s"] for r in again),
             again_cpu_median=statistics.median(r["cpu_s"] for r in again),
             again_wall_best=min(r["wall_s"] for r in again),
+            again_steal=[r["steal_pct"] for r in again],
             again_peak_mb=peak_mb(),
             again_load=load(),
         )
@@ -235,15 +254,16 @@ def timed_batch(store: Any, features: int) -> dict[str, Any]:
         warm_up()
     kernel_cpu = time.process_time() - kernel_cpu
     try:
-        wall, cpu = time.perf_counter(), time.process_time()
+        wall, cpu, ticks = time.perf_counter(), time.process_time(), cpu_ticks()
         result = pipeline.run(request, store, settings, prepared=prepared)
-        wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+        wall, cpu, steal = time.perf_counter() - wall, time.process_time() - cpu, stolen_pct(ticks)
     finally:
         for name, original in originals.items():
             setattr(aggregate, name, original)
     return {
         "wall_s": wall,
         "cpu_s": cpu,
+        "steal_pct": steal,
         "kernel_load_cpu_s": kernel_cpu,
         "rows": len(result.frame),
         "columns": len(result.frame.columns),
@@ -737,10 +757,13 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
         f"Measured {results['started']} on {platform.machine()}, {os.cpu_count()} cores, Python "
         f"{platform.python_version()}, in one run (`python bench/bench_scale.py`); each phase in its own process. "
         "The 1-minute load average is beside each figure (2 cores): where it is above 2, others' work shared the "
-        "machine and wall times are upper bounds; CPU seconds are the steadier measure. Store: "
+        "machine and wall times are upper bounds; CPU seconds are the steadier measure. Beside it, where known, the "
+        "share of the machine's CPU time the hypervisor gave to other guests while the figure was taken (steal, "
+        "from /proc/stat): a virtual CPU waiting for its real one is wall time without CPU time, so a wall-time "
+        "figure taken with much stolen is an upper bound too. Store: "
         f"`{Path(args.store).relative_to(ROOT) if Path(args.store).is_relative_to(ROOT) else args.store}`.",
         "",
-        "| what | wall s | CPU s | load | notes |",
+        "| what | wall s | CPU s | load (stolen) | notes |",
         "|---|---:|---:|---:|---|",
     ]
     decode = results.get("decode")
@@ -748,7 +771,7 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
     if decode:
         lines.append(
             f"| raw read + blosc decode of the chunks the batch touches (numcodecs, {os.cpu_count()} threads, best "
-            f"of 2) | {decode['wall_s']:.2f} | {decode['cpu_s']:.2f} | {decode['load']:.1f} | {decode['chunks']} "
+            f"of 2) | {decode['wall_s']:.2f} | {decode['cpu_s']:.2f} | {_load(decode)} | {decode['chunks']} "
             f"chunks, {decode['decoded_gib']:.2f} GiB of int16 |"
         )
         if decode.get("reused_cpu_s"):
@@ -761,7 +784,7 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
         lines.append(
             f"| the {args.features:,}-village batch, indicators included (`pipeline.run`, threads), first run in a "
             "fresh process | "
-            f"{batch['wall_s']:.2f} | {batch['cpu_s']:.2f} | {batch['load']:.1f} | {batch['rows']:,} rows x "
+            f"{batch['wall_s']:.2f} | {batch['cpu_s']:.2f} | {_load(batch)} | {batch['rows']:,} rows x "
             f"{batch['columns']} columns, {batch['chunk_reads']} chunk reads, peak RSS {batch['peak_mb']:,.0f} MB"
             + (
                 f"; the weighted-sum kernel loaded before the clock started ({batch['kernel_load_cpu_s']:.2f} CPU s "
@@ -783,7 +806,7 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
     if before:
         lines.append(
             f"| the same batch on the older code in `{args.old_code}`, first run in a fresh process | "
-            f"{before['wall_s']:.2f} | {before['cpu_s']:.2f} | {before['load']:.1f} | {before['chunk_reads']} chunk "
+            f"{before['wall_s']:.2f} | {before['cpu_s']:.2f} | {_load(before)} | {before['chunk_reads']} chunk "
             f"reads, peak RSS {before['peak_mb']:,.0f} MB |"
         )
         if before.get("again"):
@@ -792,7 +815,7 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
     if old:
         lines.append(
             f"| the same batch on the previous layout (`{args.old_store}`) | {old['wall_s']:.2f} | {old['cpu_s']:.2f} "
-            f"| {old['load']:.1f} | peak RSS {old['peak_mb']:,.0f} MB |"
+            f"| {_load(old)} | peak RSS {old['peak_mb']:,.0f} MB |"
         )
     if decode and batch:
         lines += [
@@ -902,11 +925,19 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
     return "\n".join(lines)
 
 
+def _load(figure: dict[str, Any], load: str = "load", steal: str = "steal_pct") -> str:
+    """A figure's load average, with the share of CPU time stolen while it was taken where known."""
+    stolen = figure.get(steal)
+    return f"{figure[load]:.1f}" + (f" ({stolen:.0f} %)" if stolen is not None else "")
+
+
 def _again_row(label: str, batch: dict[str, Any]) -> str:
     """The table row of a batch phase's runs after its first: their median wall and CPU s, each run, peak RSS."""
     runs = ", ".join(f"{w:.2f}" for w, _ in batch["again"])
+    stolen = [v for v in batch.get("again_steal") or () if v is not None]
+    load = f"{batch['again_load']:.1f}" + (f" ({statistics.median(stolen):.0f} %)" if stolen else "")
     return (
-        f"| {label} | {batch['again_wall_median']:.2f} | {batch['again_cpu_median']:.2f} | {batch['again_load']:.1f} "
+        f"| {label} | {batch['again_wall_median']:.2f} | {batch['again_cpu_median']:.2f} | {load} "
         f"| runs {runs} s; peak RSS over all runs {batch['again_peak_mb']:,.0f} MB |"
     )
 
