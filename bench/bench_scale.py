@@ -728,6 +728,14 @@ def main() -> int:
         print(f"[{time.strftime('%H:%M:%S')}] {name} (load {load():.1f}) ...", file=sys.stderr, flush=True)
         results[name] = run_phase(name, argv)
         print(json.dumps(results[name], default=str), file=sys.stderr, flush=True)
+    if "decode" in results and "batch" in results:
+        # the decode again right after the batch: the machine's speed drifts within minutes (RESULTS.md, sessions 6
+        # and 7), and a ratio against both decodes shows how much of it is drift
+        print(
+            f"[{time.strftime('%H:%M:%S')}] decode again (load {load():.1f}) ...", file=sys.stderr, flush=True
+        )
+        results["decode_after"] = run_phase("decode", argv)
+        print(json.dumps(results["decode_after"], default=str), file=sys.stderr, flush=True)
     if args.old_code:
         for name in ("batch", "cluster"):
             if name in args.only:
@@ -793,6 +801,12 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
                 else ""
             )
             + " |"
+        )
+    after = results.get("decode_after")
+    if after:
+        lines.append(
+            f"| the raw decode again, right after the batch's runs | {after['wall_s']:.2f} | {after['cpu_s']:.2f} | "
+            f"{_load(after)} | the same chunks |"
         )
     if batch and batch.get("again"):
         lines.append(
@@ -920,6 +934,18 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
             f"the server received **{cl_old['table_bytes_per_feature'] / 1024:.0f} kB per feature** during "
             f"`pipeline.run` (before issue 15 these were the daily series: the server computed the tables); run "
             f"{cl_old['run_wall_s']:.1f} s.",
+        ]
+    if decode and batch and after:
+        lines += [
+            "",
+            f"Against the raw decode taken right after the batch's runs: {batch['wall_s'] / after['wall_s']:.1f} in "
+            f"wall time and {batch['cpu_s'] / after['cpu_s']:.1f} in CPU time for the first run"
+            + (
+                f", {batch['again_wall_median'] / after['wall_s']:.1f} and "
+                f"{batch['again_cpu_median'] / after['cpu_s']:.1f} for the median run after it."
+                if batch.get("again")
+                else "."
+            ),
         ]
     lines += ["", END]
     return "\n".join(lines)
