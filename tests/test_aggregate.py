@@ -425,8 +425,8 @@ def test_consecutive_batches_read_the_chunks_they_share_once(
 ) -> None:
     """With a Handover, a batch reads each chunk it shares with the next one once for both, and the next batch's
     chunk tasks take those sums instead of reading, even with its graph made before the first batch ran: every
-    value the same bits as each batch alone, with missing cells and days, fewer reads, nothing left over (a
-    shard's task takes some of its chunks' sums and reads the others)."""
+    value the same bits as each batch alone, with missing cells and days, fewer reads, nothing left over (on a
+    sharded store too, where one task holds several chunks)."""
     from service.aggregate import Handover, lazy_series
     from service.pipeline.core import take_weights
 
