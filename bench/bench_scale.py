@@ -210,6 +210,11 @@ def phase_batch(args: argparse.Namespace) -> dict[str, Any]:
             again_cpu_median=statistics.median(r["cpu_s"] for r in again),
             again_wall_best=min(r["wall_s"] for r in again),
             again_steal=[r["steal_pct"] for r in again],
+            again_steal_median=(
+                statistics.median(stolen)
+                if (stolen := [r["steal_pct"] for r in again if r["steal_pct"] is not None])
+                else None
+            ),
             again_peak_mb=peak_mb(),
             again_load=load(),
         )
@@ -960,8 +965,7 @@ def _load(figure: dict[str, Any], load: str = "load", steal: str = "steal_pct") 
 def _again_row(label: str, batch: dict[str, Any]) -> str:
     """The table row of a batch phase's runs after its first: their median wall and CPU s, each run, peak RSS."""
     runs = ", ".join(f"{w:.2f}" for w, _ in batch["again"])
-    stolen = [v for v in batch.get("again_steal") or () if v is not None]
-    load = f"{batch['again_load']:.1f}" + (f" ({statistics.median(stolen):.0f} %)" if stolen else "")
+    load = _load(batch, "again_load", "again_steal_median")
     return (
         f"| {label} | {batch['again_wall_median']:.2f} | {batch['again_cpu_median']:.2f} | {load} "
         f"| runs {runs} s; peak RSS over all runs {batch['again_peak_mb']:,.0f} MB |"

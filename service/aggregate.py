@@ -185,10 +185,10 @@ def chunk_sums(
 
 class Handover:
     """Partial sums that one feature batch computed for the next from the chunks both touch, until the next
-    batch's chunk tasks take them (:func:`unit_sums`; local threads, one batch before its table at a time,
-    so that every chunk task of a batch has run when the next batch's begin). Keys: (the receiving batch's weights
-    key, variable, first day, end day, chunk's first row, chunk's first column), so that no other batch can take
-    them."""
+    batch's chunk tasks take them (:func:`unit_sums`; local threads, one batch before its table at a time, so
+    that every chunk task of a batch has run when the next batch's chunk tasks begin). Keys: (the receiving
+    batch's weights key, variable, first day, end day, chunk's first row, chunk's first column), so that no other
+    batch can take them."""
 
     def __init__(self) -> None:
         self._partials: dict[tuple[Any, ...], Partial] = {}
