@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 import os
+import subprocess
+import sys
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -245,6 +247,22 @@ def test_compute_each_on_threads_queues_tasks_ahead_of_its_threads(monkeypatch: 
 def test_no_scheduler_means_no_client() -> None:
     assert cluster.client_for(_settings()) is None
     assert cluster.client_for(_settings(scheduler="  ")) is None
+
+
+def test_local_threads_leave_dask_distributed_unimported() -> None:
+    # dask imports dask.distributed (0.7 s of CPU) when its scheduler is named "threads" rather than given as a
+    # function: a fresh process (a server's first request) that computes on local threads must not pay for it
+    code = (
+        "import sys, dask\n"
+        "from service import cluster\n"
+        "from service.settings import Settings\n"
+        "s = Settings(threads=2)\n"
+        "assert cluster.compute(dask.delayed(1), settings=s) == (1,)\n"
+        "assert dict(cluster.compute_each(iter([('a', dask.delayed(2))]), settings=s, read_ahead=True)) == {'a': 2}\n"
+        "print('distributed' in sys.modules)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True)
+    assert done.stdout.strip() == "False", done.stderr
 
 
 # --- on the cluster ---------------------------------------------------------------------------------------------

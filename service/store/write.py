@@ -670,14 +670,15 @@ def _compute_settled(collection: Any, desc: str | None) -> None:
     they recreate it). Joining the pool first makes the clean-up final. ``desc`` shows a progress bar.
     """
     import dask
+    import dask.threaded  # the scheduler given as a function, not "threads": see service.cluster.LOCAL_THREADS
 
     pool = ThreadPoolExecutor(max_workers=max(1, os.cpu_count() or 1))
     try:
         if desc is not None:
             with _TqdmCallback(desc):
-                dask.compute(collection, scheduler="threads", pool=pool)
+                dask.compute(collection, scheduler=dask.threaded.get, pool=pool)
         else:
-            dask.compute(collection, scheduler="threads", pool=pool)
+            dask.compute(collection, scheduler=dask.threaded.get, pool=pool)
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
 
