@@ -11,6 +11,9 @@ Phases (each in its own process, so that its peak memory is its own; ``--only`` 
            passes, so that the disk is not timed (the files are in the page cache after the first)
   batch    the 5,000-village batch, indicators included: ``pipeline.run`` over every feature (default
            indicator set, every season-year), on local threads; wall and CPU seconds, peak RSS, chunk reads
+  turns    the decode and batch phases in turns (decode, batch, decode, ..., decode; each in a fresh process,
+           the batch run twice): each batch over the mean of the two decodes around it, so that the machine's
+           drift over minutes (bench/RESULTS.md, sessions 6-8) cancels
   costs    the per-chunk and per-feature costs bench/SCALE.md builds its model on: read + decode of one
            chunk through Store.read_raw, the weighted sums of one chunk, the table of one feature
   latency  one 25-cell community, default indicators, 48 years, in-process on a warm store (p50, p95 of
@@ -113,15 +116,14 @@ def touched_chunks(
     return [(v, (ty, tx, b)) for v in variables for ty, tx in tiles for b in blocks]
 
 
-def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
-    """Read every touched chunk's bytes and blosc-decode them with numcodecs on all cores; best of two passes."""
+def decode_inputs(store: Any, features: int) -> tuple[dict[str, Any], list[tuple[str, tuple]]]:
+    """(chunk reader of each variable, [(variable, inner chunk coordinates)]) of the chunks the batch of
+    ``features`` villages touches: what the raw decode reads."""
     from service import pipeline
     from service.indicators import table
     from service.settings import Settings
-    from service.store import open_store
 
-    store = open_store(args.store)
-    request = batch_request(polygons(store, args.features))
+    request = batch_request(polygons(store, features))
     resolved = table.resolve_request(request, store.dates, store.calendar, store.variables)
     _, weights = pipeline.features_and_weights(resolved, store, Settings())
     variables = pipeline.needed_variables(resolved)
@@ -130,6 +132,15 @@ def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
     readers = {v: store._chunk_readers[v] for v in variables}
     if any(r is None for r in readers.values()):
         raise SystemExit("the store's codecs are not bytes + blosc: no direct decode to compare with")
+    return readers, chunks
+
+
+def phase_decode(args: argparse.Namespace) -> dict[str, Any]:
+    """Read every touched chunk's bytes and blosc-decode them with numcodecs on all cores; best of two passes."""
+    from service.store import open_store
+
+    store = open_store(args.store)
+    readers, chunks = decode_inputs(store, args.features)
     passes, sizes = decode_chunks(readers, chunks)
     best = min(passes)
     # the same reads decoded into memory reused chunk after chunk (each thread's own), as the service now reads:
@@ -658,6 +669,37 @@ PHASES = {
 }
 
 
+def turns_summary(decodes: list[dict[str, Any]], batches: list[dict[str, Any]]) -> dict[str, Any]:
+    """Each batch's first run and its run after, over the mean of the raw decodes just before and after it (wall
+    and CPU time); their medians."""
+
+    def ratios(run: Any, key: int) -> list[float]:
+        return [
+            run(b)[key] / ((d0[("wall_s", "cpu_s")[key]] + d1[("wall_s", "cpu_s")[key]]) / 2)
+            for b, d0, d1 in zip(batches, decodes, decodes[1:], strict=False)
+        ]
+
+    def first(b: dict[str, Any]) -> tuple[float, float]:
+        return b["wall_s"], b["cpu_s"]
+
+    def after(b: dict[str, Any]) -> tuple[float, float]:
+        return b["again_wall_median"], b["again_cpu_median"]
+
+    stolen = [f["steal_pct"] for f in (*decodes, *batches) if f.get("steal_pct") is not None]
+    out: dict[str, Any] = {
+        "decodes": [(d["wall_s"], d["cpu_s"]) for d in decodes],
+        "batches": [(*first(b), *after(b)) for b in batches],
+        "steal_max_pct": max(stolen) if stolen else None,
+        "load_max": max(f["load"] for f in (*decodes, *batches)),
+    }
+    for name, run in (("first", first), ("after", after)):
+        for key, unit in enumerate(("wall", "cpu")):
+            values = ratios(run, key)
+            out[f"{name}_{unit}_ratios"] = values
+            out[f"{name}_{unit}_median"] = statistics.median(values)
+    return out
+
+
 def run_phase(name: str, argv: list[str], code: Path = ROOT) -> dict[str, Any]:
     """One phase in a fresh process, on the code of checkout ``code``; its JSON result."""
     env = dict(os.environ, PYTHONPATH=str(code), WXSHOCK_BENCH_CODE=str(code))
@@ -671,6 +713,14 @@ def run_phase(name: str, argv: list[str], code: Path = ROOT) -> dict[str, Any]:
     if done.returncode != 0:
         raise SystemExit(f"phase {name} failed:\n{done.stderr[-4000:]}")
     return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def _phase_logged(name: str, argv: list[str], code: Path = ROOT) -> dict[str, Any]:
+    """run_phase, its start and its result logged to stderr."""
+    print(f"[{time.strftime('%H:%M:%S')}] {name} (load {load():.1f}) ...", file=sys.stderr, flush=True)
+    result = run_phase(name, argv, code)
+    print(json.dumps(result, default=str), file=sys.stderr, flush=True)
+    return result
 
 
 def main() -> int:
@@ -705,9 +755,12 @@ def main() -> int:
     parser.add_argument(
         "--batch-again", type=int, default=4, help="runs of the batch after the first, in the same process"
     )
+    parser.add_argument(
+        "--turns", type=int, default=4, help="batch phases of the turns, each between two decode phases"
+    )
     parser.add_argument("--requests", type=int, default=60)
     parser.add_argument("--latency-store", action="append", default=None)
-    parser.add_argument("--only", default="decode,batch,costs,latency,cluster")
+    parser.add_argument("--only", default="decode,batch,turns,costs,latency,cluster")
     parser.add_argument("--phase", help=argparse.SUPPRESS)
     parser.add_argument("--no-write", action="store_true")
     args = parser.parse_args()
@@ -720,7 +773,8 @@ def main() -> int:
         "--store", args.store, "--features", str(args.features), "--requests", str(args.requests),
         "--cluster-features", str(args.cluster_features), "--job-features", str(args.job_features),
         "--job-limit-s", str(args.job_limit_s), "--trim-features", str(args.trim_features),
-        "--batch-again", str(args.batch_again), *(["--job-store", args.job_store] if args.job_store else []),
+        "--batch-again", str(args.batch_again), "--turns", str(args.turns),
+        *(["--job-store", args.job_store] if args.job_store else []),
         "--job-formats", args.job_formats, *(["--job-cluster"] if args.job_cluster else []),
         *(["--job-no-trim"] if args.job_no_trim else []),
     ]  # fmt: skip
@@ -730,9 +784,20 @@ def main() -> int:
         argv += ["--latency-store", location]
     results: dict[str, Any] = {"started": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()), "load": load()}
     for name in args.only.split(","):
-        print(f"[{time.strftime('%H:%M:%S')}] {name} (load {load():.1f}) ...", file=sys.stderr, flush=True)
-        results[name] = run_phase(name, argv)
-        print(json.dumps(results[name], default=str), file=sys.stderr, flush=True)
+        if name == "turns":
+            continue
+        results[name] = _phase_logged(name, argv)
+    if "turns" in args.only.split(","):
+        # decode, batch, decode, batch, ..., decode, each in a fresh process (a decode in the batch's process
+        # after it ran slower, 2.9-3.1 s against 2.3); each batch over the mean of the decodes around it
+        turn_argv = [*argv]
+        turn_argv[turn_argv.index("--batch-again") + 1] = "1"
+        decodes = [results.get("decode") or _phase_logged("decode", argv)]
+        batches = []
+        for _ in range(args.turns):
+            batches.append(_phase_logged("batch", turn_argv))
+            decodes.append(_phase_logged("decode", argv))
+        results["turns"] = turns_summary(decodes, batches)
     if "decode" in results and "batch" in results:
         # the decode again right after the batch: the machine's speed drifts within minutes (RESULTS.md, sessions 6
         # and 7), and a ratio against both decodes shows how much of it is drift
@@ -866,6 +931,26 @@ def report(results: dict[str, Any], args: argparse.Namespace) -> str:
                 if before
                 else "."
             ),
+        ]
+    turns = results.get("turns")
+    if turns:
+        stolen = turns["steal_max_pct"]
+        lines += [
+            "",
+            f"**In turns** (decode, batch, decode, ..., {len(turns['batches'])} batch phases, each phase in a fresh "
+            "process; each batch over the mean of the two decodes around it, so that the machine's drift over "
+            f"minutes cancels): **batch / raw decode {turns['first_wall_median']:.1f} in wall time, "
+            f"{turns['first_cpu_median']:.1f} in CPU time** for the first run in a process (medians; each "
+            + ", ".join(f"{w:.1f}" for w in turns["first_wall_ratios"])
+            + f"), **{turns['after_wall_median']:.1f} and {turns['after_cpu_median']:.1f}** for the run after it ("
+            + ", ".join(f"{w:.1f}" for w in turns["after_wall_ratios"])
+            + "). Decodes "
+            + ", ".join(f"{w:.2f}" for w, _ in turns["decodes"])
+            + " s; batches (first, after) "
+            + ", ".join(f"{w:.2f}/{a:.2f}" for w, _, a, _ in turns["batches"])
+            + f" s; load at most {turns['load_max']:.1f}"
+            + (f", at most {stolen:.0f} % of the CPU stolen" if stolen is not None else "")
+            + ".",
         ]
     costs = results.get("costs")
     if costs:
