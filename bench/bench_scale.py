@@ -788,8 +788,9 @@ def main() -> int:
             continue
         results[name] = _phase_logged(name, argv)
     if "turns" in args.only.split(","):
-        # decode, batch, decode, batch, ..., decode, each in a fresh process (a decode in the batch's process
-        # after it ran slower, 2.9-3.1 s against 2.3); each batch over the mean of the decodes around it
+        # decode, batch, decode, batch, ..., decode, each in a fresh process as when measured alone (a decode in
+        # the batch's process after its runs took 2.4-2.6 s against 2.7 before them in one check, 2.9-3.1 against
+        # 2.3 in another: no effect of the process beyond the drift); each batch over the decodes around it
         turn_argv = [*argv]
         turn_argv[turn_argv.index("--batch-again") + 1] = "1"
         decodes = [results.get("decode") or _phase_logged("decode", argv)]
