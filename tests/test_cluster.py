@@ -261,7 +261,9 @@ def test_local_threads_leave_dask_distributed_unimported() -> None:
         "assert dict(cluster.compute_each(iter([('a', dask.delayed(2))]), settings=s, read_ahead=True)) == {'a': 2}\n"
         "print('distributed' in sys.modules)\n"
     )
-    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=False)
+    done = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=False
+    )
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "False", "a computation on local threads imported dask.distributed"
 

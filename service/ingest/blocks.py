@@ -193,7 +193,7 @@ def stage_dataset(
     the store is written.
     """
     import dask
-    import dask.threaded
+    import dask.threaded  # the scheduler given as a function, not "threads": see cluster.LOCAL_THREADS
 
     stage = StagedGrid(directory, (ds.sizes["y"], ds.sizes["x"]))
     blocks = time_blocks(ds, variables, budget)
@@ -205,7 +205,7 @@ def stage_dataset(
     for start, stop in blocks:
         for v in variables:
             lazy = ds[v].isel(time=slice(start, stop)).transpose("time", "y", "x").data
-            with dask.config.set(scheduler=dask.threaded.get):  # a function, not "threads": cluster.LOCAL_THREADS
+            with dask.config.set(scheduler=dask.threaded.get):
                 values = np.asarray(dask.compute(lazy)[0] if hasattr(lazy, "dask") else lazy)
             encoded = _encode_block(values, v)
             del values
