@@ -673,21 +673,21 @@ def turns_summary(decodes: list[dict[str, Any]], batches: list[dict[str, Any]]) 
     """Each batch's first run and its run after, over the mean of the raw decodes just before and after it (wall
     and CPU time); their medians."""
 
-    def ratios(run: Any, key: int) -> list[float]:
-        return [
-            run(b)[key] / ((d0[("wall_s", "cpu_s")[key]] + d1[("wall_s", "cpu_s")[key]]) / 2)
-            for b, d0, d1 in zip(batches, decodes, decodes[1:], strict=False)
-        ]
-
     def first(b: dict[str, Any]) -> tuple[float, float]:
         return b["wall_s"], b["cpu_s"]
+
+    def ratios(run: Any, key: int) -> list[float]:
+        return [
+            run(b)[key] / ((first(d0)[key] + first(d1)[key]) / 2)
+            for b, d0, d1 in zip(batches, decodes, decodes[1:], strict=False)
+        ]
 
     def after(b: dict[str, Any]) -> tuple[float, float]:
         return b["again_wall_median"], b["again_cpu_median"]
 
     stolen = [f["steal_pct"] for f in (*decodes, *batches) if f.get("steal_pct") is not None]
     out: dict[str, Any] = {
-        "decodes": [(d["wall_s"], d["cpu_s"]) for d in decodes],
+        "decodes": [first(d) for d in decodes],
         "batches": [(*first(b), *after(b)) for b in batches],
         "steal_max_pct": max(stolen) if stolen else None,
         "load_max": max(f["load"] for f in (*decodes, *batches)),
@@ -783,30 +783,30 @@ def main() -> int:
     for location in args.latency_store:
         argv += ["--latency-store", location]
     results: dict[str, Any] = {"started": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()), "load": load()}
-    for name in args.only.split(","):
+    names = args.only.split(",")
+    last_decode = None  # the result of the last phase run, when that phase was a decode
+    for name in names:
         if name == "turns":
             continue
         results[name] = _phase_logged(name, argv)
-    if "turns" in args.only.split(","):
+        last_decode = results[name] if name == "decode" else None
+        if name == "batch" and "decode" in results:
+            # the decode again right after the batch: the machine's speed drifts within minutes (RESULTS.md,
+            # sessions 6-8), and a ratio against both decodes shows how much of it is drift
+            results["decode_after"] = last_decode = _phase_logged("decode", argv)
+    if "turns" in names:
         # decode, batch, decode, batch, ..., decode, each in a fresh process as when measured alone (a decode in
         # the batch's process after its runs took 2.4-2.6 s against 2.7 before them in one check, 2.9-3.1 against
-        # 2.3 in another: no effect of the process beyond the drift); each batch over the decodes around it
+        # 2.3 in another: no effect of the process beyond the drift); each batch over the decodes around it. The
+        # first decode is the phase that ran just before, when that was a decode, else one of its own.
         turn_argv = [*argv]
         turn_argv[turn_argv.index("--batch-again") + 1] = "1"
-        decodes = [results.get("decode") or _phase_logged("decode", argv)]
+        decodes = [last_decode or _phase_logged("decode", argv)]
         batches = []
         for _ in range(args.turns):
             batches.append(_phase_logged("batch", turn_argv))
             decodes.append(_phase_logged("decode", argv))
         results["turns"] = turns_summary(decodes, batches)
-    if "decode" in results and "batch" in results:
-        # the decode again right after the batch: the machine's speed drifts within minutes (RESULTS.md, sessions 6
-        # and 7), and a ratio against both decodes shows how much of it is drift
-        print(
-            f"[{time.strftime('%H:%M:%S')}] decode again (load {load():.1f}) ...", file=sys.stderr, flush=True
-        )
-        results["decode_after"] = run_phase("decode", argv)
-        print(json.dumps(results["decode_after"], default=str), file=sys.stderr, flush=True)
     if args.old_code:
         for name in ("batch", "cluster"):
             if name in args.only:
